@@ -1,0 +1,630 @@
+//! The scenario header, solver settings, stages and expectations.
+
+use super::expr::Ty;
+use super::Checker;
+use crate::diagnostic::{nearest, Problem};
+use crate::model::*;
+use crate::span::Span;
+use crate::syntax::{self, EntryKind, StmtKind};
+use crate::units::Dim;
+
+pub(crate) struct Header {
+    pub name: Option<String>,
+    pub title: Option<String>,
+    pub start_age: f64,
+    pub end_age: f64,
+    pub cadence: f64,
+    pub solver: SolverSettings,
+}
+
+const SOLVER_KEYS: &[&str] = &[
+    "rtol",
+    "atol",
+    "method",
+    "max_step",
+    "initial_step",
+    "max_steps",
+    "budget_tolerance",
+];
+
+/// Most report rows a run may ask for; more is almost surely a typo in the
+/// cadence, and would allocate gigabytes.
+pub const MAX_REPORT_ROWS: f64 = 1e7;
+
+fn format_age(years: f64) -> String {
+    format!("{} Ga", years / 1e9)
+}
+
+impl Checker {
+    /// A constant of the wanted dimension, evaluated now.
+    fn const_value(&mut self, e: &syntax::Expr, want: Dim, what: &str) -> Option<f64> {
+        let (x, t) = self.check_expr(e);
+        if t.ty == Ty::Error {
+            return None;
+        }
+        if !self.expect_dim(&t, want, e.span, what) {
+            return None;
+        }
+        if !t.constant {
+            self.expect_constant(&t, e.span, what);
+            return None;
+        }
+        let model = self.partial_model();
+        let v = super::eval_const(&model, &x);
+        if v.is_none_or(|v| !v.is_finite()) {
+            self.error(
+                Problem::error(
+                    "H0303",
+                    format!("{what} does not evaluate to a finite number"),
+                )
+                .label(e.span, "not finite"),
+            );
+            return None;
+        }
+        v
+    }
+
+    /// A model view over what is checked so far, for constant folding.
+    fn partial_model(&self) -> Model {
+        Model {
+            name: None,
+            title: None,
+            start_age: 0.0,
+            end_age: 0.0,
+            cadence: 0.0,
+            solver: SolverSettings::default(),
+            defs: self.defs.clone(),
+            tables: self.tables.clone(),
+            stages: Vec::new(),
+            expects: Vec::new(),
+            sources: Default::default(),
+        }
+    }
+
+    fn solver_setting(
+        &mut self,
+        key: &syntax::Ident,
+        value: &syntax::Expr,
+        s: &mut SolverSettings,
+    ) {
+        match key.text.as_str() {
+            "method" => {
+                let word = match &value.kind {
+                    syntax::ExprKind::Name(id) => Some(id.text.as_str()),
+                    _ => None,
+                };
+                s.method = match word {
+                    Some("auto") => Method::Auto,
+                    Some("explicit") => Method::Explicit,
+                    Some("implicit") => Method::Implicit,
+                    _ => {
+                        self.error(
+                            Problem::error("H0411", "unknown solver method")
+                                .label(value.span, "not a method")
+                                .help("choose `auto`, `explicit` (adaptive Runge-Kutta) or `implicit` (for stiff stages)"),
+                        );
+                        return;
+                    }
+                };
+            }
+            "rtol" | "atol" | "budget_tolerance" | "max_steps" => {
+                let Some(v) = self.const_value(value, Dim::NONE, &format!("`{}`", key.text)) else {
+                    return;
+                };
+                let ok = match key.text.as_str() {
+                    "max_steps" => v >= 1.0 && v.fract() == 0.0 && v <= 1e12,
+                    "rtol" => v > 0.0 && v < 1.0,
+                    _ => v > 0.0,
+                };
+                if !ok {
+                    let hint = if key.text == "max_steps" {
+                        "a whole number of steps, at least 1"
+                    } else {
+                        "a positive number below 1, such as 1e-8"
+                    };
+                    self.error(
+                        Problem::error("H0411", format!("`{}` is out of range", key.text))
+                            .label(value.span, "not allowed")
+                            .help(hint),
+                    );
+                    return;
+                }
+                match key.text.as_str() {
+                    "rtol" => s.rtol = v,
+                    "atol" => s.atol = v,
+                    "budget_tolerance" => s.budget_tolerance = v,
+                    _ => s.max_steps = v as u64,
+                }
+            }
+            "max_step" | "initial_step" => {
+                let Some(v) = self.const_value(value, Dim::TIME, &format!("`{}`", key.text)) else {
+                    return;
+                };
+                if v <= 0.0 {
+                    self.error(
+                        Problem::error("H0411", format!("`{}` must be positive", key.text))
+                            .label(value.span, "not positive"),
+                    );
+                    return;
+                }
+                if key.text == "max_step" {
+                    s.max_step = Some(v);
+                } else {
+                    s.initial_step = Some(v);
+                }
+            }
+            other => {
+                let mut p = Problem::error("H0207", format!("unknown solver setting `{other}`"))
+                    .label(key.span, "not a setting");
+                p = match nearest(other, SOLVER_KEYS.iter().copied()) {
+                    Some(n) => p.help(format!("did you mean `{n}`?")),
+                    None => p.help(format!("the settings are: {}", SOLVER_KEYS.join(", "))),
+                };
+                self.error(p);
+            }
+        }
+    }
+
+    pub(crate) fn check_header(&mut self) -> Header {
+        let mut h = Header {
+            name: None,
+            title: None,
+            start_age: 0.0,
+            end_age: 0.0,
+            cadence: 0.0,
+            solver: SolverSettings::default(),
+        };
+        let header = std::mem::take(&mut self.header);
+        let mut seen: std::collections::HashMap<&'static str, Span> = Default::default();
+        let mut scenario_span = None;
+        let mut span_given = false;
+        let mut report_given = false;
+        for stmt in &header {
+            let key: Option<&'static str> = match &stmt.kind {
+                StmtKind::Scenario { .. } => Some("scenario"),
+                StmtKind::Span { .. } => Some("span"),
+                StmtKind::Report { .. } => Some("report"),
+                _ => None,
+            };
+            if let Some(k) = key {
+                if let Some(first) = seen.get(k) {
+                    self.error(
+                        Problem::error("H0409", format!("`{k}` is given twice"))
+                            .label(stmt.span, "again here")
+                            .label(*first, "first here")
+                            .help("a scenario has one of each header line"),
+                    );
+                    continue;
+                }
+                seen.insert(k, stmt.span);
+            }
+            match &stmt.kind {
+                StmtKind::Scenario { name, title } => {
+                    h.name = Some(name.text.clone());
+                    h.title = title.as_ref().map(|t| t.value.clone());
+                    scenario_span = Some(stmt.span);
+                }
+                StmtKind::Span { from, to } => {
+                    let a = self.const_value(from, Dim::AGE, "the start of the span");
+                    let b = self.const_value(to, Dim::AGE, "the end of the span");
+                    if let (Some(a), Some(b)) = (a, b) {
+                        if a <= b {
+                            self.error(
+                                Problem::error(
+                                    "H0410",
+                                    "the span must run from an older age to a younger one",
+                                )
+                                .label(
+                                    stmt.span,
+                                    format!("from {} to {}", format_age(a), format_age(b)),
+                                )
+                                .help("write the oldest age first, e.g. `span 4.5 Ga to 0 Ga`"),
+                            );
+                        } else {
+                            h.start_age = a;
+                            h.end_age = b;
+                            span_given = true;
+                        }
+                    }
+                }
+                StmtKind::Report { every } => {
+                    if let Some(c) = self.const_value(every, Dim::TIME, "the report cadence") {
+                        if c <= 0.0 {
+                            self.error(
+                                Problem::error("H0411", "the report cadence must be positive")
+                                    .label(every.span, "not positive"),
+                            );
+                        } else {
+                            h.cadence = c;
+                            report_given = true;
+                        }
+                    }
+                }
+                StmtKind::Solver { key, value } => {
+                    let mut s = h.solver;
+                    self.solver_setting(key, value, &mut s);
+                    h.solver = s;
+                }
+                _ => {}
+            }
+        }
+        // Expectations stay for later.
+        self.header = header
+            .into_iter()
+            .filter(|s| matches!(s.kind, StmtKind::Expect { .. }))
+            .collect();
+
+        if let Some(sspan) = scenario_span {
+            let label_span = Span {
+                end: sspan.start + 8,
+                ..sspan
+            };
+            if !span_given && !seen.contains_key("span") {
+                self.error(
+                    Problem::error("H0401", "the scenario has no span")
+                        .label(label_span, "scenario declared here")
+                        .help("add a line such as `span 4.5 Ga to 0 Ga`"),
+                );
+            }
+            if !report_given && !seen.contains_key("report") {
+                self.error(
+                    Problem::error("H0401", "the scenario has no report cadence")
+                        .label(label_span, "scenario declared here")
+                        .help("add a line such as `report every 10 Myr`"),
+                );
+            }
+            if self.stages.is_empty() {
+                self.error(
+                    Problem::error("H0401", "the scenario has no stages")
+                        .label(label_span, "scenario declared here")
+                        .help("add at least one stage covering the span, e.g. `stage whole from 4.5 Ga to 0 Ga`"),
+                );
+            }
+            if span_given && report_given {
+                let rows = (h.start_age - h.end_age) / h.cadence;
+                if rows > MAX_REPORT_ROWS {
+                    self.error(
+                        Problem::error("H0412", format!("the report would have {rows:.0} rows"))
+                            .label(*seen.get("report").unwrap_or(&sspan), "cadence too fine for the span")
+                            .help(format!("at most {MAX_REPORT_ROWS:.0} rows are written; choose a coarser cadence")),
+                    );
+                }
+            }
+        } else {
+            for (k, s) in &seen {
+                if *k != "scenario" {
+                    self.error(
+                        Problem::error("H0401", format!("`{k}` without a `scenario` line"))
+                            .label(*s, "header line in a file without `scenario`")
+                            .help("start the file with `scenario NAME \"title\"`, or drop the header lines from a library file"),
+                    );
+                }
+            }
+            if let Some((stmt, _)) = self.stages.first() {
+                let span = stmt.span;
+                self.error(
+                    Problem::error("H0401", "stages without a `scenario` line")
+                        .label(span, "stage in a file without `scenario`")
+                        .help("start the file with `scenario NAME \"title\"`"),
+                );
+            }
+        }
+        if span_given && !report_given {
+            h.cadence = h.start_age - h.end_age;
+        }
+        h
+    }
+
+    pub(crate) fn check_stages(&mut self, h: &Header) -> Vec<Stage> {
+        let stages = std::mem::take(&mut self.stages);
+        let mut out: Vec<Stage> = Vec::new();
+        let mut names: std::collections::HashMap<String, Span> = Default::default();
+        for (stmt, body) in &stages {
+            let StmtKind::Stage { name, from, to, .. } = &stmt.kind else {
+                continue;
+            };
+            if let Some(first) = names.get(&name.text) {
+                self.error(
+                    Problem::error("H0202", format!("stage `{}` is defined twice", name.text))
+                        .label(name.span, "defined again here")
+                        .label(*first, "first defined here"),
+                );
+            }
+            names.insert(name.text.clone(), name.span);
+            let a = self.const_value(from, Dim::AGE, "the start of a stage");
+            let b = self.const_value(to, Dim::AGE, "the end of a stage");
+            let mut stage = Stage {
+                name: name.text.clone(),
+                start_age: a.unwrap_or(f64::NAN),
+                end_age: b.unwrap_or(f64::NAN),
+                sets: Vec::new(),
+                fluxes: Vec::new(),
+                solver: h.solver,
+                span: stmt.span,
+            };
+            if let (Some(a), Some(b)) = (a, b) {
+                if a <= b {
+                    self.error(
+                        Problem::error("H0410", format!("stage `{}` runs backwards", name.text))
+                            .label(
+                                stmt.span,
+                                format!("from {} to {}", format_age(a), format_age(b)),
+                            )
+                            .help("a stage runs from its older age to its younger one"),
+                    );
+                }
+            }
+            for entry in body {
+                let EntryKind::Stmt(s) = &entry.kind else {
+                    continue;
+                };
+                match &s.kind {
+                    StmtKind::Set { name: p, value } => self.stage_set(p, value, &mut stage),
+                    StmtKind::Solver { key, value } => {
+                        let mut settings = stage.solver;
+                        self.solver_setting(key, value, &mut settings);
+                        stage.solver = settings;
+                    }
+                    _ => {}
+                }
+            }
+            out.push(stage);
+        }
+        if h.name.is_some() && h.start_age > h.end_age {
+            self.check_stage_cover(h, &out, &stages);
+        }
+        out
+    }
+
+    fn stage_set(&mut self, p: &syntax::Ident, value: &syntax::Expr, stage: &mut Stage) {
+        let Some(&id) = self.symbols.get(&p.text) else {
+            let params: Vec<String> = self
+                .defs
+                .iter()
+                .filter(|d| matches!(d.kind, DefKind::Param))
+                .map(|d| d.name.clone())
+                .collect();
+            let mut pr = Problem::error("H0201", format!("unknown parameter `{}`", p.text))
+                .label(p.span, "no such parameter");
+            if let Some(s) = nearest(&p.text, params.iter().map(String::as_str)) {
+                pr = pr.help(format!("did you mean `{s}`?"));
+            }
+            self.error(pr);
+            return;
+        };
+        if !matches!(self.defs[id].kind, DefKind::Param) {
+            let word = self.defs[id].kind.word();
+            self.error(
+                Problem::error(
+                    "H0408",
+                    format!("`{}` is a {word}; a stage can set only parameters", p.text),
+                )
+                .label(p.span, "not a parameter")
+                .label(self.defs[id].span, "defined here")
+                .help("declare it with `param` to let stages override it"),
+            );
+            return;
+        }
+        let (x, t) = self.check_expr(value);
+        let want = self.defs[id].dim;
+        let what = format!("the value of `{}`", p.text);
+        if self.expect_dim(&t, want, value.span, &what) {
+            self.expect_constant(&t, value.span, &what);
+        }
+        if stage.sets.iter().any(|(d, _)| *d == id) {
+            self.error(
+                Problem::error("H0202", format!("`{}` is set twice in this stage", p.text))
+                    .label(p.span, "set again here"),
+            );
+            return;
+        }
+        stage.sets.push((id, x));
+    }
+
+    fn check_stage_cover(
+        &mut self,
+        h: &Header,
+        stages: &[Stage],
+        stmts: &[(syntax::Stmt, Vec<syntax::Entry>)],
+    ) {
+        let mut expected = h.start_age;
+        for (i, st) in stages.iter().enumerate() {
+            if st.start_age.is_nan() || st.end_age.is_nan() {
+                return;
+            }
+            let span = stmts[i].0.span;
+            if st.start_age > h.start_age || st.end_age < h.end_age {
+                self.error(
+                    Problem::error(
+                        "H0404",
+                        format!("stage `{}` reaches outside the span", st.name),
+                    )
+                    .label(
+                        span,
+                        format!(
+                            "from {} to {}, but the span is {} to {}",
+                            format_age(st.start_age),
+                            format_age(st.end_age),
+                            format_age(h.start_age),
+                            format_age(h.end_age)
+                        ),
+                    )
+                    .help("stages must lie within the span"),
+                );
+                return;
+            }
+            if st.start_age < expected {
+                let what = if i == 0 {
+                    "starts after the span starts"
+                } else {
+                    "leaves a gap"
+                };
+                self.error(
+                    Problem::error("H0402", format!("stage `{}` {what}", st.name))
+                        .label(
+                            span,
+                            format!(
+                                "starts at {}, but the previous part ends at {}",
+                                format_age(st.start_age),
+                                format_age(expected)
+                            ),
+                        )
+                        .help(format!(
+                            "start it at {} so the stages are contiguous",
+                            format_age(expected)
+                        )),
+                );
+                return;
+            }
+            if st.start_age > expected {
+                self.error(
+                    Problem::error(
+                        "H0403",
+                        format!("stage `{}` overlaps the stage before it", st.name),
+                    )
+                    .label(
+                        span,
+                        format!(
+                            "starts at {}, but the previous stage already reaches {}",
+                            format_age(st.start_age),
+                            format_age(expected)
+                        ),
+                    )
+                    .help("list stages oldest first, each starting where the last one ends"),
+                );
+                return;
+            }
+            expected = st.end_age;
+        }
+        if expected > h.end_age {
+            if let Some((stmt, _)) = stmts.last() {
+                self.error(
+                    Problem::error("H0402", "the stages stop before the span ends")
+                        .label(
+                            stmt.span,
+                            format!(
+                                "the last stage ends at {}, the span at {}",
+                                format_age(expected),
+                                format_age(h.end_age)
+                            ),
+                        )
+                        .help("extend the last stage or add one that reaches the end of the span"),
+                );
+            }
+        }
+    }
+
+    pub(crate) fn check_expects(&mut self) -> Vec<Expect> {
+        let header = std::mem::take(&mut self.header);
+        let mut out = Vec::new();
+        for stmt in header {
+            let StmtKind::Expect { subject, check } = &stmt.kind else {
+                continue;
+            };
+            let text = {
+                let src = &self.sources.get(stmt.span.file).text;
+                src[stmt.span.start as usize..stmt.span.end as usize].to_owned()
+            };
+            if let syntax::ExpectCheck::Event { before, age } = check {
+                let event = match &subject.kind {
+                    syntax::ExprKind::Name(id) => self
+                        .symbols
+                        .get(&id.text)
+                        .copied()
+                        .filter(|&d| matches!(self.defs[d].kind, DefKind::Event)),
+                    _ => None,
+                };
+                let Some(event) = event else {
+                    self.error(
+                        Problem::error("H0206", "`before` and `after` need the name of an event")
+                            .label(subject.span, "not an event")
+                            .help("declare one with `event NAME = CONDITION`"),
+                    );
+                    continue;
+                };
+                let Some(a) = self.const_value(age, Dim::AGE, "the age of an expectation") else {
+                    continue;
+                };
+                out.push(Expect {
+                    subject: Expr {
+                        kind: ExprKind::Ref(event),
+                        span: subject.span,
+                    },
+                    check: ExpectCheck::Event {
+                        event,
+                        before: *before,
+                        age: a,
+                    },
+                    span: stmt.span,
+                    text,
+                });
+                continue;
+            }
+            let (subj, ts) = self.check_expr(subject);
+            let Ty::Num(dim) = ts.ty else {
+                if ts.ty == Ty::Bool {
+                    self.error(
+                        Problem::error("H0306", "an expectation needs a number to compare")
+                            .label(subject.span, "this is a condition"),
+                    );
+                }
+                continue;
+            };
+            let value_of = |c: &mut Checker, e: &syntax::Expr, what: &str| -> Option<Expr> {
+                let (x, t) = c.check_expr(e);
+                if c.expect_dim(&t, dim.plain(), e.span, what) {
+                    c.expect_constant(&t, e.span, what);
+                    Some(x)
+                } else {
+                    None
+                }
+            };
+            let checked = match check {
+                syntax::ExpectCheck::Target { at, value, sigma } => {
+                    let a = self.const_value(at, Dim::AGE, "the age of an expectation");
+                    let v = value_of(self, value, "the expected value");
+                    let s = value_of(self, sigma, "the uncertainty");
+                    match (a, v, s) {
+                        (Some(age), Some(value), Some(sigma)) => {
+                            Some(ExpectCheck::Target { age, value, sigma })
+                        }
+                        _ => None,
+                    }
+                }
+                syntax::ExpectCheck::Range { at, low, high } => {
+                    let a = self.const_value(at, Dim::AGE, "the age of an expectation");
+                    let l = value_of(self, low, "the lower end");
+                    let hi = value_of(self, high, "the upper end");
+                    match (a, l, hi) {
+                        (Some(age), Some(low), Some(high)) => {
+                            Some(ExpectCheck::Range { age, low, high })
+                        }
+                        _ => None,
+                    }
+                }
+                syntax::ExpectCheck::Bound { at, op, value } => {
+                    let a = self.const_value(at, Dim::AGE, "the age of an expectation");
+                    let v = value_of(self, value, "the bound");
+                    match (a, v) {
+                        (Some(age), Some(value)) => Some(ExpectCheck::Bound {
+                            age,
+                            op: *op,
+                            value,
+                        }),
+                        _ => None,
+                    }
+                }
+                syntax::ExpectCheck::Event { .. } => None,
+            };
+            if let Some(check) = checked {
+                out.push(Expect {
+                    subject: subj,
+                    check,
+                    span: stmt.span,
+                    text,
+                });
+            }
+        }
+        out
+    }
+}

@@ -1,0 +1,976 @@
+//! Phase 2, check: syntax trees of a scenario and its includes to a
+//! [`Model`] with every name resolved and every dimension known.
+//!
+//! Invariant: this module never evaluates the model over time; it only reads
+//! files (scenario, includes, tables) and reasons about names and units.
+
+mod expr;
+mod tables;
+
+use std::collections::HashMap;
+use std::path::{Path, PathBuf};
+
+use crate::diagnostic::{nearest, Problem};
+use crate::model::*;
+use crate::span::{Sources, Span};
+use crate::syntax::{self, Entry, EntryKind, StmtKind};
+use crate::units::Dim;
+
+pub use expr::eval_const;
+
+/// Deepest chain of includes accepted.
+pub const MAX_INCLUDE_DEPTH: usize = 16;
+/// Largest scenario or table file read, bytes.
+pub const MAX_FILE_BYTES: u64 = 16 * 1024 * 1024;
+
+const PRELUDE: &str = include_str!("prelude.hadal");
+
+/// Options that change the checked model without editing the file.
+#[derive(Debug, Clone, Default)]
+pub struct CheckOptions {
+    /// `--set NAME=VALUE` overrides of parameters, value as written (`0.3`,
+    /// `1500 K`).
+    pub overrides: Vec<(String, String)>,
+}
+
+/// Why checking failed.
+#[derive(Debug)]
+pub enum CheckError {
+    /// The root file could not be read (a usage or I/O problem, exit 2).
+    Io { path: PathBuf, message: String },
+    /// The scenario has errors (exit 1). Sources are included for rendering.
+    Invalid {
+        sources: Sources,
+        problems: Vec<Problem>,
+    },
+}
+
+/// A successful check: the model, and warnings worth showing.
+#[derive(Debug)]
+pub struct Checked {
+    pub model: Model,
+    pub warnings: Vec<Problem>,
+}
+
+/// Read, parse and check the scenario at `path` and everything it includes.
+pub fn check_file(path: &Path, options: &CheckOptions) -> Result<Checked, CheckError> {
+    let text = read_limited(path).map_err(|message| CheckError::Io {
+        path: path.to_owned(),
+        message,
+    })?;
+    let root_dir = path
+        .parent()
+        .map(|p| {
+            if p.as_os_str().is_empty() {
+                Path::new(".")
+            } else {
+                p
+            }
+        })
+        .unwrap_or(Path::new("."))
+        .to_owned();
+    let name = display_name(path);
+    check_text(&name, path, &text, &root_dir, options)
+}
+
+/// Check `text` as if it were the file `path` under `root_dir` (the project
+/// root: includes and tables may not reach outside it).
+pub fn check_text(
+    name: &str,
+    path: &Path,
+    text: &str,
+    root_dir: &Path,
+    options: &CheckOptions,
+) -> Result<Checked, CheckError> {
+    let mut c = Checker::new(root_dir);
+    let prelude = c
+        .sources
+        .add("<prelude>".into(), PathBuf::new(), PRELUDE.to_owned());
+    let root = c
+        .sources
+        .add(name.to_owned(), path.to_owned(), text.to_owned());
+    c.load(prelude, Origin::Prelude, &mut Vec::new());
+    let canonical = std::fs::canonicalize(path).unwrap_or_else(|_| path.to_owned());
+    c.load(root, Origin::Root, &mut vec![canonical]);
+    let model = c.finish(options);
+    let (errors, warnings): (Vec<Problem>, Vec<Problem>) =
+        c.problems.into_iter().partition(|p| !p.warning);
+    match model {
+        Some(model) if errors.is_empty() => Ok(Checked { model, warnings }),
+        _ => {
+            let mut problems = errors;
+            problems.extend(warnings);
+            Err(CheckError::Invalid {
+                sources: c.sources,
+                problems,
+            })
+        }
+    }
+}
+
+fn display_name(path: &Path) -> String {
+    path.to_string_lossy().replace('\\', "/")
+}
+
+/// Read a scenario file: size-limited, UTF-8, byte-order mark removed.
+pub fn read_text(path: &Path) -> Result<String, String> {
+    read_limited(path)
+}
+
+pub(crate) fn read_limited(path: &Path) -> Result<String, String> {
+    let meta = std::fs::metadata(path).map_err(|e| io_words(&e))?;
+    if meta.is_dir() {
+        return Err("is a directory, not a file".into());
+    }
+    if meta.len() > MAX_FILE_BYTES {
+        return Err(format!(
+            "is {} bytes, more than the limit of {} bytes",
+            meta.len(),
+            MAX_FILE_BYTES
+        ));
+    }
+    let bytes = std::fs::read(path).map_err(|e| io_words(&e))?;
+    let mut text = String::from_utf8(bytes).map_err(|e| {
+        format!(
+            "is not UTF-8 text (bad byte at offset {})",
+            e.utf8_error().valid_up_to()
+        )
+    })?;
+    if text.starts_with('\u{feff}') {
+        // A byte-order mark; replace by a space so spans keep their offsets.
+        text.replace_range(0..3, "   ");
+    }
+    Ok(text)
+}
+
+pub(crate) fn io_words(e: &std::io::Error) -> String {
+    match e.kind() {
+        std::io::ErrorKind::NotFound => "no such file".into(),
+        std::io::ErrorKind::PermissionDenied => "permission denied".into(),
+        _ => e.to_string(),
+    }
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Origin {
+    Prelude,
+    Root,
+    Included,
+}
+
+/// A definition statement waiting to be checked.
+struct Item {
+    stmt: syntax::Stmt,
+    doc: Option<String>,
+    origin: Origin,
+    /// Index of the enclosing stage statement, for stage-local fluxes.
+    stage: Option<usize>,
+}
+
+#[derive(Clone)]
+enum Slot {
+    Todo,
+    InProgress,
+    Done(expr::Typed),
+}
+
+pub(crate) struct Checker {
+    pub(crate) sources: Sources,
+    pub(crate) problems: Vec<Problem>,
+    root_dir: PathBuf,
+    items: Vec<Item>,
+    header: Vec<syntax::Stmt>,
+    stages: Vec<(syntax::Stmt, Vec<Entry>)>,
+    pub(crate) defs: Vec<Def>,
+    pub(crate) tables: Vec<Table>,
+    /// Name to definition; user definitions shadow the prelude.
+    pub(crate) symbols: HashMap<String, DefId>,
+    /// Syntax of each definition's main expression, by id.
+    def_syntax: Vec<Option<syntax::Expr>>,
+    slots: Vec<Slot>,
+    /// Definitions being checked, innermost last (for cycle reports).
+    pub(crate) stack: Vec<DefId>,
+    /// Which definitions were declared with which item.
+    def_item: Vec<usize>,
+}
+
+impl Checker {
+    fn new(root_dir: &Path) -> Checker {
+        Checker {
+            sources: Sources::default(),
+            problems: Vec::new(),
+            root_dir: std::fs::canonicalize(root_dir).unwrap_or_else(|_| root_dir.to_owned()),
+            items: Vec::new(),
+            header: Vec::new(),
+            stages: Vec::new(),
+            defs: Vec::new(),
+            tables: Vec::new(),
+            symbols: HashMap::new(),
+            def_syntax: Vec::new(),
+            slots: Vec::new(),
+            stack: Vec::new(),
+            def_item: Vec::new(),
+        }
+    }
+
+    pub(crate) fn error(&mut self, p: Problem) {
+        self.problems.push(p);
+    }
+
+    /// Resolve a path written in `file` (relative to that file's directory)
+    /// and make sure it stays inside the project root.
+    pub(crate) fn resolve_path(&mut self, file: u32, written: &str, span: Span) -> Option<PathBuf> {
+        let base = self
+            .sources
+            .get(file)
+            .path
+            .parent()
+            .map(Path::to_owned)
+            .unwrap_or_default();
+        let candidate = Path::new(written);
+        if candidate.is_absolute() {
+            self.error(
+                Problem::error("H0505", format!("the path `{written}` is absolute"))
+                    .label(span, "absolute path")
+                    .help("write paths relative to the scenario file, inside its project"),
+            );
+            return None;
+        }
+        let joined = base.join(candidate);
+        // Resolve `..` and symlinks when the file exists, to see where it
+        // really points; otherwise resolve lexically.
+        let real = std::fs::canonicalize(&joined).ok().or_else(|| {
+            let mut out = std::fs::canonicalize(&base).ok()?;
+            for part in candidate.components() {
+                match part {
+                    std::path::Component::ParentDir => {
+                        out.pop();
+                    }
+                    std::path::Component::Normal(p) => out.push(p),
+                    _ => {}
+                }
+            }
+            Some(out)
+        });
+        if let Some(real) = &real {
+            if !real.starts_with(&self.root_dir) {
+                self.error(
+                    Problem::error(
+                        "H0505",
+                        format!("the path `{written}` leads outside the project"),
+                    )
+                    .label(span, "outside the project root")
+                    .help(format!(
+                        "scenarios may read only files below {}; copy the file into the project",
+                        self.root_dir.display()
+                    )),
+                );
+                return None;
+            }
+        }
+        Some(joined)
+    }
+
+    /// Parse a file and sort its statements into header, stages and
+    /// definitions; includes are followed where they stand.
+    fn load(&mut self, file: u32, origin: Origin, chain: &mut Vec<PathBuf>) {
+        let text = self.sources.get(file).text.clone();
+        let parsed = match syntax::parse(&text, file) {
+            Ok(f) => f,
+            Err(problems) => {
+                self.problems.extend(problems);
+                return;
+            }
+        };
+        let mut doc: Vec<String> = Vec::new();
+        for entry in parsed.entries {
+            let stmt = match entry.kind {
+                EntryKind::Comment(c) => {
+                    if let Some(d) = c.strip_prefix("##") {
+                        doc.push(d.trim().to_owned());
+                    } else {
+                        doc.clear();
+                    }
+                    continue;
+                }
+                EntryKind::Stmt(s) => *s,
+            };
+            let doc_text = if doc.is_empty() {
+                None
+            } else {
+                Some(doc.join(" "))
+            };
+            doc.clear();
+            match &stmt.kind {
+                StmtKind::Include { path } => {
+                    let (path_text, span) = (path.value.clone(), path.span);
+                    self.include(file, &path_text, span, chain);
+                }
+                StmtKind::Scenario { .. }
+                | StmtKind::Span { .. }
+                | StmtKind::Report { .. }
+                | StmtKind::Solver { .. }
+                | StmtKind::Expect { .. }
+                | StmtKind::Stage { .. }
+                    if origin != Origin::Root =>
+                {
+                    self.error(
+                        Problem::error(
+                            "H0208",
+                            "an included file may hold only definitions",
+                        )
+                        .label(stmt.span, "not a definition")
+                        .help("move header lines, stages and expectations into the scenario file itself"),
+                    );
+                }
+                StmtKind::Scenario { .. }
+                | StmtKind::Span { .. }
+                | StmtKind::Report { .. }
+                | StmtKind::Solver { .. }
+                | StmtKind::Expect { .. } => self.header.push(stmt),
+                StmtKind::Stage { body, .. } => {
+                    let stage_index = self.stages.len();
+                    let mut rest = Vec::new();
+                    if let Some(body) = body {
+                        for e in &body.entries {
+                            if let EntryKind::Stmt(s) = &e.kind {
+                                if let StmtKind::Flux { .. } = s.kind {
+                                    self.items.push(Item {
+                                        stmt: (**s).clone(),
+                                        doc: None,
+                                        origin,
+                                        stage: Some(stage_index),
+                                    });
+                                    continue;
+                                }
+                            }
+                            rest.push(e.clone());
+                        }
+                    }
+                    self.stages.push((stmt, rest));
+                }
+                StmtKind::Set { .. } => {
+                    // The grammar admits `set` only inside stage bodies.
+                    self.error(
+                        Problem::error("H0208", "`set` belongs inside a stage")
+                            .label(stmt.span, "outside any stage"),
+                    );
+                }
+                _ => self.items.push(Item {
+                    stmt,
+                    doc: doc_text,
+                    origin,
+                    stage: None,
+                }),
+            }
+        }
+    }
+
+    fn include(&mut self, from: u32, written: &str, span: Span, chain: &mut Vec<PathBuf>) {
+        let Some(path) = self.resolve_path(from, written, span) else {
+            return;
+        };
+        let canonical = std::fs::canonicalize(&path).unwrap_or_else(|_| path.clone());
+        if let Some(pos) = chain.iter().position(|p| *p == canonical) {
+            let cycle: Vec<String> = chain[pos..]
+                .iter()
+                .chain(std::iter::once(&canonical))
+                .map(|p| {
+                    p.file_name()
+                        .map(|n| n.to_string_lossy().into_owned())
+                        .unwrap_or_default()
+                })
+                .collect();
+            self.error(
+                Problem::error("H0502", format!("include cycle: {}", cycle.join(" -> ")))
+                    .label(span, "this include closes the cycle")
+                    .help("move the shared definitions into a file that includes nothing of the others"),
+            );
+            return;
+        }
+        if chain.len() > MAX_INCLUDE_DEPTH {
+            self.error(
+                Problem::error(
+                    "H0506",
+                    format!("includes nested more than {MAX_INCLUDE_DEPTH} deep"),
+                )
+                .label(span, "too deep")
+                .help("flatten the chain of includes"),
+            );
+            return;
+        }
+        let text = match read_limited(&path) {
+            Ok(t) => t,
+            Err(why) => {
+                self.error(
+                    Problem::error(
+                        "H0501",
+                        format!("cannot read included file `{written}`: {why}"),
+                    )
+                    .label(span, "included here")
+                    .help("paths are relative to the file that includes them"),
+                );
+                return;
+            }
+        };
+        let base_name = self.sources.get(from).name.clone();
+        let name = Path::new(&base_name)
+            .parent()
+            .map(|p| display_name(&p.join(written)))
+            .unwrap_or_else(|| written.to_owned());
+        let id = self.sources.add(name, path, text);
+        chain.push(canonical);
+        self.load(id, Origin::Included, chain);
+        chain.pop();
+    }
+
+    /// Declare every definition, check every expression, assemble the model.
+    fn finish(&mut self, options: &CheckOptions) -> Option<Model> {
+        self.declare();
+        self.apply_overrides(options);
+        for id in 0..self.defs.len() {
+            self.def_type(id);
+        }
+        self.check_def_extras();
+        let header = self.check_header();
+        let mut stages = self.check_stages(&header);
+        let expects = self.check_expects();
+        // Stage-local fluxes know their stage.
+        for (id, def) in self.defs.iter_mut().enumerate() {
+            if let DefKind::Flux { stage: Some(s), .. } = def.kind {
+                if let Some(st) = stages.get_mut(s) {
+                    st.fluxes.push(id);
+                }
+            }
+        }
+        for st in &mut stages {
+            st.fluxes.sort_unstable();
+        }
+        Some(Model {
+            name: header.name,
+            title: header.title,
+            start_age: header.start_age,
+            end_age: header.end_age,
+            cadence: header.cadence,
+            solver: header.solver,
+            defs: std::mem::take(&mut self.defs),
+            tables: std::mem::take(&mut self.tables),
+            stages,
+            expects,
+            sources: self.sources.clone(),
+        })
+    }
+
+    fn declare(&mut self) {
+        // User names first, so they shadow the prelude.
+        let mut order: Vec<usize> = (0..self.items.len())
+            .filter(|&i| self.items[i].origin != Origin::Prelude)
+            .collect();
+        let prelude: Vec<usize> = (0..self.items.len())
+            .filter(|&i| self.items[i].origin == Origin::Prelude)
+            .collect();
+        let mut spans: HashMap<String, Span> = HashMap::new();
+        let mut accepted = Vec::new();
+        for &i in &order {
+            let Some((name, span)) = item_name(&self.items[i].stmt) else {
+                continue;
+            };
+            if expr::is_reserved(&name) {
+                self.error(
+                    Problem::error("H0202", format!("`{name}` is a built-in name"))
+                        .label(span, "reserved")
+                        .help(
+                            "choose another name; `age`, `time` and `outside` have fixed meanings",
+                        ),
+                );
+                continue;
+            }
+            if let Some(first) = spans.get(&name) {
+                self.error(
+                    Problem::error("H0202", format!("`{name}` is defined twice"))
+                        .label(span, "defined again here")
+                        .label(*first, "first defined here")
+                        .help("rename one of them, or delete the second"),
+                );
+                continue;
+            }
+            spans.insert(name.clone(), span);
+            accepted.push(i);
+        }
+        let mut with_prelude: Vec<usize> = prelude
+            .into_iter()
+            .filter(|&i| {
+                item_name(&self.items[i].stmt).is_some_and(|(n, _)| !spans.contains_key(&n))
+            })
+            .collect();
+        with_prelude.extend(accepted);
+        order = with_prelude;
+        for i in order {
+            let item = &self.items[i];
+            let (name, span) = item_name(&item.stmt).expect("filtered above");
+            let placeholder = Expr {
+                kind: ExprKind::Num(0.0),
+                span,
+            };
+            let (kind, syntax_expr) = match &item.stmt.kind {
+                StmtKind::Const { value, .. } => (DefKind::Const, Some(value.clone())),
+                StmtKind::Param { value, .. } => (DefKind::Param, Some(value.clone())),
+                StmtKind::Let { value, .. } => (DefKind::Let, Some(value.clone())),
+                StmtKind::Output { value, .. } => (DefKind::Output, Some(value.clone())),
+                StmtKind::Event { condition, .. } => (DefKind::Event, Some(condition.clone())),
+                StmtKind::Table { .. } => (DefKind::Table(usize::MAX), None),
+                StmtKind::Reservoir { initial, .. } => {
+                    (DefKind::Reservoir { capacity: None }, Some(initial.clone()))
+                }
+                StmtKind::State { initial, .. } => (
+                    DefKind::State {
+                        rate: placeholder.clone(),
+                    },
+                    Some(initial.clone()),
+                ),
+                StmtKind::Flux { rate, .. } => (
+                    DefKind::Flux {
+                        from: Endpoint::Outside,
+                        to: Endpoint::Outside,
+                        stage: item.stage,
+                    },
+                    Some(rate.clone()),
+                ),
+                _ => continue,
+            };
+            let id = self.defs.len();
+            self.symbols.insert(name.clone(), id);
+            self.defs.push(Def {
+                name,
+                kind,
+                dim: Dim::NONE,
+                expr: placeholder,
+                doc: item.doc.clone(),
+                span,
+                display_unit: None,
+                prelude: item.origin == Origin::Prelude,
+            });
+            self.def_syntax.push(syntax_expr);
+            self.slots.push(Slot::Todo);
+            self.def_item.push(i);
+        }
+        // Tables are read now, so that calls can be checked against their units.
+        for id in 0..self.defs.len() {
+            let item = &self.items[self.def_item[id]];
+            if let StmtKind::Table {
+                path,
+                x_unit,
+                y_unit,
+                ..
+            } = &item.stmt.kind
+            {
+                let (path, x_unit, y_unit) = (path.clone(), x_unit.clone(), y_unit.clone());
+                let t = self.load_table(id, &path, &x_unit, &y_unit);
+                self.defs[id].kind = DefKind::Table(t);
+                self.slots[id] = Slot::Done(expr::Typed::error());
+            }
+        }
+    }
+
+    /// Replace parameter values by `--set` overrides, parsed as expressions
+    /// of their own.
+    fn apply_overrides(&mut self, options: &CheckOptions) {
+        for (name, value) in &options.overrides {
+            let text = format!("param {name} = {value}\n");
+            let file = self.sources.add(
+                format!("--set {name}={value}"),
+                PathBuf::new(),
+                text.clone(),
+            );
+            let parsed = match syntax::parse(&text, file) {
+                Ok(p) => p,
+                Err(problems) => {
+                    self.problems.extend(problems);
+                    continue;
+                }
+            };
+            let Some(EntryKind::Stmt(stmt)) = parsed.entries.into_iter().next().map(|e| e.kind)
+            else {
+                continue;
+            };
+            let StmtKind::Param { name: ident, value } = stmt.kind else {
+                continue;
+            };
+            match self.symbols.get(name).copied() {
+                Some(id) if matches!(self.defs[id].kind, DefKind::Param) => {
+                    self.def_syntax[id] = Some(value);
+                }
+                Some(id) => {
+                    let word = self.defs[id].kind.word();
+                    self.error(
+                        Problem::error("H0209", format!("`{name}` is a {word}, not a parameter"))
+                            .label(ident.span, "only parameters can be set")
+                            .help("declare it with `param` to make it adjustable"),
+                    );
+                }
+                None => {
+                    let params: Vec<&str> = self
+                        .defs
+                        .iter()
+                        .filter(|d| matches!(d.kind, DefKind::Param))
+                        .map(|d| d.name.as_str())
+                        .collect();
+                    let mut p = Problem::error("H0201", format!("unknown parameter `{name}`"))
+                        .label(ident.span, "no such parameter");
+                    p = match nearest(name, params.iter().copied()) {
+                        Some(s) => p.help(format!("did you mean `{s}`?")),
+                        None => p.help(format!("the parameters are: {}", params.join(", "))),
+                    };
+                    self.error(p);
+                }
+            }
+        }
+    }
+
+    /// Type of a definition's value, checking its expression on first use.
+    pub(crate) fn def_type(&mut self, id: DefId) -> expr::Typed {
+        match self.slots[id].clone() {
+            Slot::Done(t) => return t,
+            Slot::InProgress => {
+                self.report_cycle(id);
+                return expr::Typed::error();
+            }
+            Slot::Todo => {}
+        }
+        if matches!(self.defs[id].kind, DefKind::Reservoir { .. }) {
+            // A reservoir's value is its inventory: a mass, whatever the
+            // initial expression says (checked separately).
+            self.slots[id] = Slot::Done(expr::Typed::num(Dim::MASS, false));
+        }
+        let Some(syn) = self.def_syntax[id].clone() else {
+            return expr::Typed::error();
+        };
+        if !matches!(self.slots[id], Slot::Done(_)) {
+            self.slots[id] = Slot::InProgress;
+        }
+        self.stack.push(id);
+        let (checked, typed) = self.check_expr(&syn);
+        self.stack.pop();
+        let kind = self.defs[id].kind.clone();
+        let result = match kind {
+            DefKind::Reservoir { .. } => {
+                self.expect_dim(
+                    &typed,
+                    Dim::MASS,
+                    syn.span,
+                    "the initial inventory of a reservoir",
+                );
+                self.expect_constant(&typed, syn.span, "the initial inventory");
+                expr::Typed::num(Dim::MASS, false)
+            }
+            DefKind::State { .. } => {
+                self.expect_constant(&typed, syn.span, "the initial value of a state");
+                match typed.ty {
+                    expr::Ty::Bool => {
+                        self.error(
+                            Problem::error("H0303", "a state variable must be a number")
+                                .label(syn.span, "this is a condition"),
+                        );
+                        expr::Typed::error()
+                    }
+                    _ => expr::Typed {
+                        constant: false,
+                        ..typed
+                    },
+                }
+            }
+            DefKind::Const | DefKind::Param => {
+                self.expect_constant(&typed, syn.span, "a constant or parameter");
+                typed
+            }
+            DefKind::Flux { .. } => {
+                if let expr::Ty::Num(d) = typed.ty {
+                    if !d.same_base(Dim::MASS_RATE) {
+                        self.error(
+                            Problem::error(
+                                "H0302",
+                                format!("the rate of flux `{}` is not mass per time", self.defs[id].name),
+                            )
+                            .label(syn.span, format!("this is {}", d.words()))
+                            .label(self.defs[id].span, "flux defined here")
+                            .help("a flux moves water mass: give its rate in mass per time, e.g. `1e12 kg/yr` or `mass / 10 kyr`"),
+                        );
+                    }
+                } else if typed.ty == expr::Ty::Bool {
+                    self.expect_dim(&typed, Dim::MASS_RATE, syn.span, "a flux rate");
+                }
+                expr::Typed::num(Dim::MASS_RATE, false)
+            }
+            DefKind::Event => {
+                if let expr::Ty::Num(d) = typed.ty {
+                    self.error(
+                        Problem::error("H0306", "an event needs a condition")
+                            .label(syn.span, format!("this is a number ({})", d.words()))
+                            .help("write a comparison, e.g. `land_fraction(hyps, volume) > 0`"),
+                    );
+                }
+                typed
+            }
+            _ => typed,
+        };
+        if let expr::Ty::Num(d) = result.ty {
+            self.defs[id].dim = d;
+        }
+        self.defs[id].expr = checked;
+        if self.defs[id].display_unit.is_none() {
+            if let syntax::ExprKind::Quantity { unit: Some(u), .. } = &syn.kind {
+                if let Ok(unit) =
+                    crate::units::combine(u.factors.iter().map(|f| (f.name.as_str(), f.power)))
+                {
+                    self.defs[id].display_unit = Some((u.text.clone(), unit));
+                }
+            }
+        }
+        self.slots[id] = Slot::Done(result);
+        result
+    }
+
+    fn report_cycle(&mut self, id: DefId) {
+        let pos = self.stack.iter().position(|&d| d == id).unwrap_or(0);
+        let cycle: Vec<DefId> = self.stack[pos..].to_vec();
+        let mut names: Vec<String> = cycle.iter().map(|&d| self.defs[d].name.clone()).collect();
+        names.push(self.defs[id].name.clone());
+        let mut p = Problem::error(
+            "H0406",
+            format!(
+                "definitions depend on each other in a cycle: {}",
+                names.join(" -> ")
+            ),
+        );
+        for (i, &d) in cycle.iter().enumerate() {
+            let next = &names[i + 1];
+            p = p.label(
+                self.defs[d].span,
+                format!("`{}` uses `{next}`", self.defs[d].name),
+            );
+        }
+        p = p.help(
+            "break the cycle: one of these must be a state variable (with a rate) or a constant",
+        );
+        self.error(p);
+    }
+
+    pub(crate) fn expect_constant(&mut self, t: &expr::Typed, span: Span, what: &str) {
+        if !t.constant && t.ty != expr::Ty::Error {
+            self.error(
+                Problem::error("H0407", format!("{what} must be a constant"))
+                    .label(span, "this changes during the run")
+                    .help("use numbers, constants and parameters only; a value that changes needs `let` or `state`"),
+            );
+        }
+    }
+
+    pub(crate) fn expect_dim(
+        &mut self,
+        t: &expr::Typed,
+        want: Dim,
+        span: Span,
+        what: &str,
+    ) -> bool {
+        match t.ty {
+            expr::Ty::Error => false,
+            expr::Ty::Bool => {
+                self.error(
+                    Problem::error(
+                        "H0303",
+                        format!("{what} must be {}, not a condition", want.words()),
+                    )
+                    .label(span, "this is a condition"),
+                );
+                false
+            }
+            expr::Ty::Num(d) => {
+                let ok = if want.point && want.same_base(Dim::TIME) {
+                    d.is_age()
+                } else {
+                    d.same_base(want)
+                };
+                if !ok {
+                    let mut p = Problem::error(
+                        "H0303",
+                        format!("{what} must be {}, found {}", want.words(), d.words()),
+                    )
+                    .label(span, format!("this is {}", d.words()));
+                    p = p.help(expr::dim_hint(want, d));
+                    self.error(p);
+                }
+                ok
+            }
+        }
+    }
+
+    /// Capacities, state rates and flux endpoints.
+    fn check_def_extras(&mut self) {
+        for id in 0..self.defs.len() {
+            let item_index = self.def_item[id];
+            let stmt = self.items[item_index].stmt.clone();
+            match &stmt.kind {
+                StmtKind::Reservoir { clauses, .. } => {
+                    let mut capacity = None;
+                    for c in clauses {
+                        if c.key.text == "capacity" && capacity.is_none() {
+                            self.stack.push(id);
+                            let (e, t) = self.check_expr(&c.value);
+                            self.stack.pop();
+                            self.expect_dim(&t, Dim::MASS, c.value.span, "a capacity");
+                            capacity = Some(e);
+                        } else {
+                            self.bad_clause(&c.key, &["capacity"]);
+                        }
+                    }
+                    self.defs[id].kind = DefKind::Reservoir { capacity };
+                }
+                StmtKind::State { clauses, name, .. } => {
+                    let mut rate = None;
+                    for c in clauses {
+                        if c.key.text == "rate" && rate.is_none() {
+                            self.stack.push(id);
+                            let (e, t) = self.check_expr(&c.value);
+                            self.stack.pop();
+                            let want = self.defs[id]
+                                .dim
+                                .plain()
+                                .per(Dim::TIME)
+                                .unwrap_or(Dim::NONE);
+                            let what = format!("the rate of `{}`", self.defs[id].name);
+                            self.expect_dim(&t, want, c.value.span, &what);
+                            rate = Some(e);
+                        } else {
+                            self.bad_clause(&c.key, &["rate"]);
+                        }
+                    }
+                    match rate {
+                        Some(r) => self.defs[id].kind = DefKind::State { rate: r },
+                        None => self.error(
+                            Problem::error("H0401", format!("state `{}` has no rate", name.text))
+                                .label(name.span, "no `, rate = ...`")
+                                .help("add `, rate = EXPR` (its dimension per time); a prescribed history is a `let` of `age`"),
+                        ),
+                    }
+                }
+                StmtKind::Flux { from, to, .. } => {
+                    let a = self.endpoint(from);
+                    let b = self.endpoint(to);
+                    if let (Some(a), Some(b)) = (a, b) {
+                        if a == b {
+                            self.error(
+                                Problem::error("H0405", "a flux must connect two different places")
+                                    .label(to.span, "same as the source")
+                                    .help("a flux moves water from one reservoir to another, or to or from `outside`"),
+                            );
+                        }
+                        if let DefKind::Flux { from, to, .. } = &mut self.defs[id].kind {
+                            *from = a;
+                            *to = b;
+                        }
+                    }
+                }
+                StmtKind::Output { unit: Some(u), .. } => {
+                    match crate::units::combine(
+                        u.factors.iter().map(|f| (f.name.as_str(), f.power)),
+                    ) {
+                        Ok(unit) => {
+                            let d = self.defs[id].dim;
+                            if !unit.dim.same_base(d) {
+                                self.error(
+                                    Problem::error(
+                                        "H0301",
+                                        format!(
+                                            "cannot show {} in `{}` ({})",
+                                            d.words(),
+                                            u.text,
+                                            unit.dim.words()
+                                        ),
+                                    )
+                                    .label(u.span, format!("a unit of {}", unit.dim.words()))
+                                    .help(format!("use a unit of {}", d.words())),
+                                );
+                            } else {
+                                self.defs[id].display_unit = Some((u.text.clone(), unit));
+                            }
+                        }
+                        Err(e) => self.unit_error(u, e),
+                    }
+                }
+                _ => {}
+            }
+        }
+    }
+
+    fn bad_clause(&mut self, key: &syntax::Ident, allowed: &[&str]) {
+        let mut p = Problem::error("H0207", format!("unexpected `{}` here", key.text))
+            .label(key.span, "not allowed here (or given twice)");
+        p = p.help(format!("this statement takes: {}", allowed.join(", ")));
+        self.error(p);
+    }
+
+    fn endpoint(&mut self, ident: &syntax::Ident) -> Option<Endpoint> {
+        if ident.text == "outside" {
+            return Some(Endpoint::Outside);
+        }
+        match self.symbols.get(&ident.text).copied() {
+            Some(id) if matches!(self.defs[id].kind, DefKind::Reservoir { .. }) => {
+                Some(Endpoint::Reservoir(id))
+            }
+            Some(id) => {
+                let word = self.defs[id].kind.word();
+                self.error(
+                    Problem::error(
+                        "H0405",
+                        format!("`{}` is a {word}, not a reservoir", ident.text),
+                    )
+                    .label(ident.span, "fluxes connect reservoirs")
+                    .label(self.defs[id].span, "defined here")
+                    .help("declare it with `reservoir`, or use `outside` for a source or sink"),
+                );
+                None
+            }
+            None => {
+                let names: Vec<String> = self
+                    .reservoirs_named()
+                    .into_iter()
+                    .chain(std::iter::once("outside".to_owned()))
+                    .collect();
+                let mut p = Problem::error("H0405", format!("unknown reservoir `{}`", ident.text))
+                    .label(ident.span, "not declared");
+                p = match nearest(&ident.text, names.iter().map(String::as_str)) {
+                    Some(s) => p.help(format!("did you mean `{s}`?")),
+                    None => p.help("declare it with `reservoir NAME = INITIAL`, or use `outside`"),
+                };
+                self.error(p);
+                None
+            }
+        }
+    }
+
+    fn reservoirs_named(&self) -> Vec<String> {
+        self.defs
+            .iter()
+            .filter(|d| matches!(d.kind, DefKind::Reservoir { .. }))
+            .map(|d| d.name.clone())
+            .collect()
+    }
+}
+
+fn item_name(stmt: &syntax::Stmt) -> Option<(String, Span)> {
+    let id = match &stmt.kind {
+        StmtKind::Const { name, .. }
+        | StmtKind::Param { name, .. }
+        | StmtKind::Let { name, .. }
+        | StmtKind::Output { name, .. }
+        | StmtKind::Event { name, .. }
+        | StmtKind::Table { name, .. }
+        | StmtKind::Reservoir { name, .. }
+        | StmtKind::State { name, .. }
+        | StmtKind::Flux { name, .. } => name,
+        _ => return None,
+    };
+    Some((id.text.clone(), id.span))
+}
+
+mod header;

@@ -1,0 +1,309 @@
+//! The command-line layer: argument parsing, rendering diagnostics, exit
+//! codes. Everything it does goes through the library's public API.
+//!
+//! Exit codes: 0 success; 1 the scenario or the result is wrong (errors,
+//! drift, `fmt --check` would change a file); 2 usage or I/O problem.
+
+use std::io::{IsTerminal, Write};
+use std::path::{Path, PathBuf};
+
+use clap::{Parser, Subcommand};
+
+use crate::check::{self, CheckError, CheckOptions};
+use crate::diagnostic::Problem;
+use crate::span::Sources;
+
+pub const EXIT_OK: i32 = 0;
+pub const EXIT_INVALID: i32 = 1;
+pub const EXIT_USAGE: i32 = 2;
+
+#[derive(Parser, Debug)]
+#[command(
+    name = "hadal",
+    version,
+    about = "Box models of a planet's deep water cycle: check, format and run scenario files",
+    long_about = None,
+    after_help = "Exit codes: 0 success, 1 the scenario or result is wrong, 2 usage or I/O problem.\nSee docs/language.md for the scenario language and docs/errors.md for every diagnostic."
+)]
+struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Subcommand, Debug)]
+enum Command {
+    /// Check scenario files (and their includes) for names, structure and units
+    Check {
+        /// Scenario files or directories (directories are searched for .hadal files)
+        #[arg(required = true)]
+        files: Vec<PathBuf>,
+        /// Report problems as JSON on stdout
+        #[arg(long)]
+        json: bool,
+    },
+    /// Rewrite scenario files in the canonical layout, keeping comments
+    Fmt {
+        #[arg(required = true)]
+        files: Vec<PathBuf>,
+        /// Change nothing; exit 1 if any file is not in canonical layout
+        #[arg(long)]
+        check: bool,
+    },
+    /// Print the dependency graph of a scenario's definitions as DOT
+    Graph { file: PathBuf },
+}
+
+pub fn main() -> i32 {
+    let cli = match Cli::try_parse() {
+        Ok(c) => c,
+        Err(e) => {
+            let code = if e.use_stderr() { EXIT_USAGE } else { EXIT_OK };
+            let _ = e.print();
+            return code;
+        }
+    };
+    match cli.command {
+        Command::Check { files, json } => cmd_check(&files, json),
+        Command::Fmt { files, check } => cmd_fmt(&files, check),
+        Command::Graph { file } => cmd_graph(&file),
+    }
+}
+
+/// Expand directories into the `.hadal` files below them, sorted.
+fn expand(paths: &[PathBuf]) -> Result<Vec<PathBuf>, String> {
+    let mut out = Vec::new();
+    for p in paths {
+        if p.is_dir() {
+            let mut found = Vec::new();
+            walk(p, &mut found).map_err(|e| format!("{}: {e}", p.display()))?;
+            found.sort();
+            out.extend(found);
+        } else {
+            out.push(p.clone());
+        }
+    }
+    Ok(out)
+}
+
+fn walk(dir: &Path, out: &mut Vec<PathBuf>) -> std::io::Result<()> {
+    for entry in std::fs::read_dir(dir)? {
+        let path = entry?.path();
+        if path.is_dir() {
+            walk(&path, out)?;
+        } else if path.extension().is_some_and(|e| e == "hadal") {
+            out.push(path);
+        }
+    }
+    Ok(())
+}
+
+fn color_wanted() -> bool {
+    std::env::var_os("NO_COLOR").is_none_or(|v| v.is_empty()) && std::io::stderr().is_terminal()
+}
+
+/// Render problems to stderr, graphically with colour only on a terminal.
+pub fn report(sources: &Sources, problems: &[Problem]) {
+    let theme = if color_wanted() {
+        miette::GraphicalTheme::unicode()
+    } else {
+        miette::GraphicalTheme::unicode_nocolor()
+    };
+    let handler = miette::GraphicalReportHandler::new_themed(theme).with_width(100);
+    let mut stderr = std::io::stderr().lock();
+    for p in problems {
+        let rendered = p.render(sources);
+        let mut out = String::new();
+        if handler.render_report(&mut out, &rendered).is_err() {
+            out = format!("{}: {}\n", p.code, p.message);
+        }
+        let _ = writeln!(stderr, "{out}");
+    }
+}
+
+fn problems_json(sources: &Sources, problems: &[Problem]) -> Vec<serde_json::Value> {
+    problems
+        .iter()
+        .map(|p| {
+            let loc = p.location(sources);
+            serde_json::json!({
+                "code": p.code,
+                "severity": if p.warning { "warning" } else { "error" },
+                "message": p.message,
+                "file": loc.as_ref().map(|l| l.0.clone()),
+                "line": loc.as_ref().map(|l| l.1),
+                "column": loc.as_ref().map(|l| l.2),
+                "labels": p.labels.iter().map(|l| serde_json::json!({
+                    "text": l.text,
+                    "file": sources.get(l.span.file).name,
+                    "start": l.span.start,
+                    "end": l.span.end,
+                })).collect::<Vec<_>>(),
+                "help": p.help,
+            })
+        })
+        .collect()
+}
+
+fn usage_error(msg: impl std::fmt::Display) -> i32 {
+    eprintln!("error: {msg}");
+    EXIT_USAGE
+}
+
+fn cmd_check(files: &[PathBuf], json: bool) -> i32 {
+    let files = match expand(files) {
+        Ok(f) => f,
+        Err(e) => return usage_error(e),
+    };
+    let mut worst = EXIT_OK;
+    let mut results = Vec::new();
+    for file in &files {
+        match check::check_file(file, &CheckOptions::default()) {
+            Ok(checked) => {
+                let m = &checked.model;
+                let summary = summarize(m);
+                if json {
+                    results.push(serde_json::json!({
+                        "file": file.to_string_lossy(),
+                        "ok": true,
+                        "summary": summary,
+                        "problems": problems_json(&m.sources, &checked.warnings),
+                    }));
+                } else {
+                    report(&m.sources, &checked.warnings);
+                    println!("ok {}: {summary}", file.display());
+                }
+            }
+            Err(CheckError::Io { path, message }) => {
+                worst = worst.max(EXIT_USAGE);
+                if json {
+                    results.push(serde_json::json!({
+                        "file": path.to_string_lossy(), "ok": false, "io_error": message,
+                    }));
+                } else {
+                    eprintln!("error: cannot read {}: {message}", path.display());
+                }
+            }
+            Err(CheckError::Invalid { sources, problems }) => {
+                worst = worst.max(EXIT_INVALID);
+                let n = problems.iter().filter(|p| !p.warning).count();
+                if json {
+                    results.push(serde_json::json!({
+                        "file": file.to_string_lossy(),
+                        "ok": false,
+                        "problems": problems_json(&sources, &problems),
+                    }));
+                } else {
+                    report(&sources, &problems);
+                    let s = if n == 1 { "" } else { "s" };
+                    eprintln!("{}: {n} error{s}", file.display());
+                }
+            }
+        }
+    }
+    if json {
+        println!(
+            "{}",
+            serde_json::to_string_pretty(&results).unwrap_or_default()
+        );
+    }
+    worst
+}
+
+fn summarize(m: &crate::model::Model) -> String {
+    use crate::model::DefKind;
+    let count =
+        |f: fn(&DefKind) -> bool| m.defs.iter().filter(|d| !d.prelude && f(&d.kind)).count();
+    let plural = |n: usize, w: &str| format!("{n} {w}{}", if n == 1 { "" } else { "s" });
+    let reservoirs = count(|k| matches!(k, DefKind::Reservoir { .. }));
+    let states = count(|k| matches!(k, DefKind::State { .. }));
+    let fluxes = count(|k| matches!(k, DefKind::Flux { .. }));
+    let params = count(|k| matches!(k, DefKind::Param));
+    if m.is_library() {
+        let defs = m.defs.iter().filter(|d| !d.prelude).count();
+        return format!("library, {}", plural(defs, "definition"));
+    }
+    format!(
+        "{}, {}, {}, {}, {}",
+        plural(reservoirs, "reservoir"),
+        plural(states, "state"),
+        plural(fluxes, "flux"),
+        plural(params, "parameter"),
+        plural(m.stages.len(), "stage")
+    )
+    .replace("fluxs", "fluxes")
+}
+
+fn cmd_fmt(files: &[PathBuf], check_only: bool) -> i32 {
+    let files = match expand(files) {
+        Ok(f) => f,
+        Err(e) => return usage_error(e),
+    };
+    let mut worst = EXIT_OK;
+    for file in &files {
+        let text = match check::read_text(file) {
+            Ok(t) => t,
+            Err(msg) => {
+                eprintln!("error: cannot read {}: {msg}", file.display());
+                worst = worst.max(EXIT_USAGE);
+                continue;
+            }
+        };
+        let mut sources = Sources::default();
+        let id = sources.add(
+            file.to_string_lossy().into_owned(),
+            file.clone(),
+            text.clone(),
+        );
+        let formatted = match crate::syntax::parse(&text, id) {
+            Ok(tree) => crate::syntax::format_file(&tree),
+            Err(problems) => {
+                report(&sources, &problems);
+                eprintln!("{}: not formatted (syntax errors)", file.display());
+                worst = worst.max(EXIT_INVALID);
+                continue;
+            }
+        };
+        if formatted == text {
+            continue;
+        }
+        if check_only {
+            let line = first_difference(&text, &formatted);
+            println!(
+                "would reformat {} (first change at line {line})",
+                file.display()
+            );
+            worst = worst.max(EXIT_INVALID);
+        } else if let Err(e) = crate::fsutil::write_atomic(file, formatted.as_bytes()) {
+            eprintln!("error: cannot write {}: {e}", file.display());
+            worst = worst.max(EXIT_USAGE);
+        } else {
+            println!("formatted {}", file.display());
+        }
+    }
+    worst
+}
+
+fn first_difference(a: &str, b: &str) -> usize {
+    a.lines()
+        .zip(b.lines())
+        .position(|(x, y)| x != y)
+        .unwrap_or_else(|| a.lines().count().min(b.lines().count()))
+        + 1
+}
+
+fn cmd_graph(file: &Path) -> i32 {
+    match check::check_file(file, &CheckOptions::default()) {
+        Ok(checked) => {
+            let g = crate::graph::DepGraph::build(&checked.model);
+            print!("{}", g.to_dot(&checked.model));
+            EXIT_OK
+        }
+        Err(CheckError::Io { path, message }) => {
+            usage_error(format!("cannot read {}: {message}", path.display()))
+        }
+        Err(CheckError::Invalid { sources, problems }) => {
+            report(&sources, &problems);
+            EXIT_INVALID
+        }
+    }
+}

@@ -1,0 +1,209 @@
+//! Problems found in a scenario, as values. The library never prints; the
+//! command-line layer renders these with miette.
+
+use std::fmt;
+
+use miette::{LabeledSpan, NamedSource, Severity, SourceSpan};
+
+use crate::span::{Sources, Span};
+
+/// One labelled place in the source.
+#[derive(Debug, Clone)]
+pub struct Label {
+    pub span: Span,
+    pub text: String,
+}
+
+/// A diagnostic: a plain primary message, labels on exact spans, an optional
+/// `help:` line and a stable code explained in `docs/errors.md`.
+#[derive(Debug, Clone)]
+pub struct Problem {
+    pub code: &'static str,
+    pub message: String,
+    pub labels: Vec<Label>,
+    pub help: Option<String>,
+    pub warning: bool,
+}
+
+impl Problem {
+    pub fn error(code: &'static str, message: impl Into<String>) -> Problem {
+        Problem {
+            code,
+            message: message.into(),
+            labels: Vec::new(),
+            help: None,
+            warning: false,
+        }
+    }
+
+    pub fn warning(code: &'static str, message: impl Into<String>) -> Problem {
+        Problem {
+            warning: true,
+            ..Problem::error(code, message)
+        }
+    }
+
+    pub fn label(mut self, span: Span, text: impl Into<String>) -> Problem {
+        self.labels.push(Label {
+            span,
+            text: text.into(),
+        });
+        self
+    }
+
+    pub fn help(mut self, text: impl Into<String>) -> Problem {
+        self.help = Some(text.into());
+        self
+    }
+
+    /// The primary span (the first label), if any.
+    pub fn primary(&self) -> Option<Span> {
+        self.labels.first().map(|l| l.span)
+    }
+
+    /// Attach the source text so miette can render it. Labels in other files
+    /// than the primary one are folded into the help text with their location.
+    pub fn render(&self, sources: &Sources) -> Rendered {
+        let mut help = self.help.clone();
+        let mut labels = Vec::new();
+        let mut source = None;
+        if let Some(primary) = self.primary() {
+            let file = sources.get(primary.file);
+            source = Some(NamedSource::new(
+                file.name.clone(),
+                file.text.as_str().to_owned(),
+            ));
+            for label in &self.labels {
+                if label.span.file == primary.file {
+                    labels.push(LabeledSpan::new(
+                        Some(label.text.clone()),
+                        label.span.start as usize,
+                        label.span.len(),
+                    ));
+                } else {
+                    let (line, col) = sources.line_col(label.span);
+                    let note = format!(
+                        "{} (at {}:{}:{})",
+                        label.text,
+                        sources.get(label.span.file).name,
+                        line,
+                        col
+                    );
+                    help = Some(match help {
+                        Some(h) => format!("{h}\n{note}"),
+                        None => note,
+                    });
+                }
+            }
+        }
+        Rendered {
+            problem: self.clone(),
+            help,
+            labels,
+            source,
+        }
+    }
+
+    /// `file:line:col` of the primary span, for plain-text and JSON output.
+    pub fn location(&self, sources: &Sources) -> Option<(String, usize, usize)> {
+        self.primary().map(|span| {
+            let (line, col) = sources.line_col(span);
+            (sources.get(span.file).name.clone(), line, col)
+        })
+    }
+}
+
+impl fmt::Display for Problem {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(&self.message)
+    }
+}
+
+/// A [`Problem`] with its source attached, ready for miette.
+#[derive(Debug)]
+pub struct Rendered {
+    problem: Problem,
+    help: Option<String>,
+    labels: Vec<LabeledSpan>,
+    source: Option<NamedSource<String>>,
+}
+
+impl fmt::Display for Rendered {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(&self.problem.message)
+    }
+}
+
+impl std::error::Error for Rendered {}
+
+impl miette::Diagnostic for Rendered {
+    fn code<'a>(&'a self) -> Option<Box<dyn fmt::Display + 'a>> {
+        Some(Box::new(self.problem.code))
+    }
+
+    fn severity(&self) -> Option<Severity> {
+        Some(if self.problem.warning {
+            Severity::Warning
+        } else {
+            Severity::Error
+        })
+    }
+
+    fn help<'a>(&'a self) -> Option<Box<dyn fmt::Display + 'a>> {
+        self.help
+            .as_ref()
+            .map(|h| Box::new(h.as_str()) as Box<dyn fmt::Display>)
+    }
+
+    fn source_code(&self) -> Option<&dyn miette::SourceCode> {
+        self.source.as_ref().map(|s| s as &dyn miette::SourceCode)
+    }
+
+    fn labels(&self) -> Option<Box<dyn Iterator<Item = LabeledSpan> + '_>> {
+        if self.labels.is_empty() {
+            None
+        } else {
+            Some(Box::new(self.labels.iter().cloned()))
+        }
+    }
+}
+
+impl From<Span> for SourceSpan {
+    fn from(span: Span) -> SourceSpan {
+        SourceSpan::new((span.start as usize).into(), span.len())
+    }
+}
+
+/// Levenshtein distance, for "did you mean" suggestions.
+pub fn edit_distance(a: &str, b: &str) -> usize {
+    let b: Vec<char> = b.chars().collect();
+    let mut row: Vec<usize> = (0..=b.len()).collect();
+    for (i, ca) in a.chars().enumerate() {
+        let mut prev = row[0];
+        row[0] = i + 1;
+        for (j, cb) in b.iter().enumerate() {
+            let cur = row[j + 1];
+            row[j + 1] = if ca == *cb {
+                prev
+            } else {
+                1 + prev.min(row[j]).min(row[j + 1])
+            };
+            prev = cur;
+        }
+    }
+    row[b.len()]
+}
+
+/// The closest candidate to `name`, if it is close enough to be a likely typo.
+pub fn nearest<'a>(name: &str, candidates: impl IntoIterator<Item = &'a str>) -> Option<&'a str> {
+    let lower = name.to_lowercase();
+    let mut best: Option<(usize, &str)> = None;
+    for cand in candidates {
+        let d = edit_distance(&lower, &cand.to_lowercase());
+        let limit = (name.chars().count().max(cand.chars().count()) / 3).max(1);
+        if d <= limit && best.is_none_or(|(bd, bc)| d < bd || (d == bd && cand < bc)) {
+            best = Some((d, cand));
+        }
+    }
+    best.map(|(_, c)| c)
+}

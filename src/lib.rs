@@ -1,0 +1,17 @@
+//! hadal: a scenario language, solver and stage cache for box models of a
+//! planet's deep water cycle.
+//!
+//! The pipeline, one module per phase (see docs/ARCHITECTURE.md):
+//! [`syntax`] (parse) → [`check`] (names, units) → [`model`] (the checked
+//! model) → [`graph`] (dependencies) → later phases.
+
+pub mod check;
+pub mod cli;
+pub mod diagnostic;
+pub mod fsutil;
+pub mod graph;
+pub mod model;
+pub mod numeric;
+pub mod span;
+pub mod syntax;
+pub mod units;

@@ -1,0 +1,439 @@
+//! The checked model: every name resolved to a definition, every number in
+//! internal units (kg, m, yr, K; ages in years before present) with a known
+//! dimension. Produced by [`crate::check`], consumed by the graph, compile and
+//! solve phases.
+//!
+//! Invariant: nothing here refers to syntax; spans are kept only so later
+//! phases can point diagnostics at the source.
+
+use std::fmt::Write;
+use std::path::PathBuf;
+
+use crate::span::{Sources, Span};
+pub use crate::syntax::BinOp;
+use crate::units::{Dim, Unit};
+
+pub type DefId = usize;
+pub type TableId = usize;
+
+#[derive(Debug, Clone)]
+pub struct Model {
+    /// Scenario name; `None` for a library file (definitions only).
+    pub name: Option<String>,
+    pub title: Option<String>,
+    /// Oldest age of the span, years before present.
+    pub start_age: f64,
+    /// Youngest age of the span, years before present.
+    pub end_age: f64,
+    /// Report cadence, years.
+    pub cadence: f64,
+    pub solver: SolverSettings,
+    pub defs: Vec<Def>,
+    pub tables: Vec<Table>,
+    pub stages: Vec<Stage>,
+    pub expects: Vec<Expect>,
+    pub sources: Sources,
+}
+
+#[derive(Debug, Clone)]
+pub struct Def {
+    pub name: String,
+    pub kind: DefKind,
+    /// Dimension of the value (for a flux: mass per time).
+    pub dim: Dim,
+    /// The defining expression: value, initial inventory, rate of a flux, or
+    /// condition of an event.
+    pub expr: Expr,
+    pub doc: Option<String>,
+    /// Span of the defining statement's name.
+    pub span: Span,
+    /// Unit chosen for display: the `in UNIT` of an output, or the unit of a
+    /// literal that is the whole definition.
+    pub display_unit: Option<(String, Unit)>,
+    /// Defined in the built-in prelude.
+    pub prelude: bool,
+}
+
+#[derive(Debug, Clone)]
+pub enum DefKind {
+    Const,
+    Param,
+    Let,
+    Output,
+    Event,
+    Table(TableId),
+    Reservoir {
+        capacity: Option<Expr>,
+    },
+    State {
+        rate: Expr,
+    },
+    Flux {
+        from: Endpoint,
+        to: Endpoint,
+        /// A flux declared inside a stage is active only there.
+        stage: Option<usize>,
+    },
+}
+
+impl DefKind {
+    pub fn word(&self) -> &'static str {
+        match self {
+            DefKind::Const => "constant",
+            DefKind::Param => "parameter",
+            DefKind::Let => "derived quantity",
+            DefKind::Output => "output",
+            DefKind::Event => "event",
+            DefKind::Table(_) => "table",
+            DefKind::Reservoir { .. } => "reservoir",
+            DefKind::State { .. } => "state variable",
+            DefKind::Flux { .. } => "flux",
+        }
+    }
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Endpoint {
+    Reservoir(DefId),
+    Outside,
+}
+
+#[derive(Debug, Clone)]
+pub struct Table {
+    pub name: String,
+    /// Path as written, relative to the including file.
+    pub display_path: String,
+    pub path: PathBuf,
+    pub x_dim: Dim,
+    pub y_dim: Dim,
+    /// Knots in internal units, strictly increasing in x.
+    pub xs: Vec<f64>,
+    pub ys: Vec<f64>,
+    /// blake3 of the file's bytes.
+    pub hash: String,
+}
+
+#[derive(Debug, Clone)]
+pub struct Stage {
+    pub name: String,
+    pub start_age: f64,
+    pub end_age: f64,
+    /// Parameter overrides: (parameter, constant value expression).
+    pub sets: Vec<(DefId, Expr)>,
+    /// Fluxes declared in this stage.
+    pub fluxes: Vec<DefId>,
+    /// The run's settings with this stage's own on top.
+    pub solver: SolverSettings,
+    pub span: Span,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Method {
+    Auto,
+    Explicit,
+    Implicit,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct SolverSettings {
+    pub rtol: f64,
+    pub atol: f64,
+    pub method: Method,
+    /// Largest step, years; `None` is no limit beyond the stage length.
+    pub max_step: Option<f64>,
+    pub initial_step: Option<f64>,
+    pub max_steps: u64,
+    pub budget_tolerance: f64,
+}
+
+impl Default for SolverSettings {
+    fn default() -> Self {
+        SolverSettings {
+            rtol: 1e-8,
+            atol: 1e-10,
+            method: Method::Auto,
+            max_step: None,
+            initial_step: None,
+            max_steps: 1_000_000,
+            budget_tolerance: 1e-9,
+        }
+    }
+}
+
+#[derive(Debug, Clone)]
+pub struct Expect {
+    pub subject: Expr,
+    pub check: ExpectCheck,
+    pub span: Span,
+    /// The statement as written, for reports.
+    pub text: String,
+}
+
+#[derive(Debug, Clone)]
+pub enum ExpectCheck {
+    Target {
+        age: f64,
+        value: Expr,
+        sigma: Expr,
+    },
+    Range {
+        age: f64,
+        low: Expr,
+        high: Expr,
+    },
+    Bound {
+        age: f64,
+        op: crate::syntax::CmpOp,
+        value: Expr,
+    },
+    Event {
+        event: DefId,
+        before: bool,
+        age: f64,
+    },
+}
+
+/// A checked expression node.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Expr {
+    pub kind: ExprKind,
+    pub span: Span,
+}
+
+#[derive(Debug, Clone, PartialEq)]
+pub enum ExprKind {
+    /// A number in internal units (booleans are 0 and 1).
+    Num(f64),
+    Ref(DefId),
+    Age,
+    Time,
+    Neg(Box<Expr>),
+    Not(Box<Expr>),
+    Binary(BinOp, Box<Expr>, Box<Expr>),
+    If(Box<Expr>, Box<Expr>, Box<Expr>),
+    Call(Builtin, Vec<Expr>),
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Builtin {
+    Exp,
+    Ln,
+    Log10,
+    Sqrt,
+    Abs,
+    Min,
+    Max,
+    Clamp,
+    Smoothstep,
+    Decay,
+    Capacity(DefId),
+    Fill(DefId),
+    Excess(DefId),
+    Interp(TableId),
+    SeaLevel(TableId),
+    SeaLevelIsostatic(TableId),
+    LandFraction(TableId),
+    BasinVolume(TableId),
+}
+
+impl Expr {
+    /// Every definition this expression refers to directly, including the
+    /// reservoirs behind `capacity`/`fill`/`excess` and the tables it reads.
+    pub fn refs(&self, out: &mut Vec<Ref>) {
+        match &self.kind {
+            ExprKind::Num(_) | ExprKind::Age | ExprKind::Time => {}
+            ExprKind::Ref(d) => out.push(Ref::Def(*d)),
+            ExprKind::Neg(e) | ExprKind::Not(e) => e.refs(out),
+            ExprKind::Binary(_, a, b) => {
+                a.refs(out);
+                b.refs(out);
+            }
+            ExprKind::If(c, a, b) => {
+                c.refs(out);
+                a.refs(out);
+                b.refs(out);
+            }
+            ExprKind::Call(f, args) => {
+                match f {
+                    Builtin::Capacity(r) | Builtin::Fill(r) | Builtin::Excess(r) => {
+                        out.push(Ref::Capacity(*r));
+                        if !matches!(f, Builtin::Capacity(_)) {
+                            out.push(Ref::Def(*r));
+                        }
+                    }
+                    Builtin::Interp(t)
+                    | Builtin::SeaLevel(t)
+                    | Builtin::SeaLevelIsostatic(t)
+                    | Builtin::LandFraction(t)
+                    | Builtin::BasinVolume(t) => out.push(Ref::Table(*t)),
+                    _ => {}
+                }
+                for a in args {
+                    a.refs(out);
+                }
+            }
+        }
+    }
+
+    /// Whether the expression reads the clock (age or time).
+    pub fn reads_clock(&self) -> bool {
+        match &self.kind {
+            ExprKind::Age | ExprKind::Time => true,
+            ExprKind::Num(_) | ExprKind::Ref(_) => false,
+            ExprKind::Neg(e) | ExprKind::Not(e) => e.reads_clock(),
+            ExprKind::Binary(_, a, b) => a.reads_clock() || b.reads_clock(),
+            ExprKind::If(c, a, b) => c.reads_clock() || a.reads_clock() || b.reads_clock(),
+            ExprKind::Call(f, args) => {
+                matches!(f, Builtin::Decay) || args.iter().any(|a| a.reads_clock())
+            }
+        }
+    }
+}
+
+/// What an expression depends on.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord)]
+pub enum Ref {
+    Def(DefId),
+    /// The capacity expression of a reservoir.
+    Capacity(DefId),
+    Table(TableId),
+}
+
+impl Model {
+    pub fn is_library(&self) -> bool {
+        self.name.is_none()
+    }
+
+    pub fn find(&self, name: &str) -> Option<DefId> {
+        self.defs.iter().position(|d| d.name == name)
+    }
+
+    pub fn reservoirs(&self) -> impl Iterator<Item = (DefId, &Def)> {
+        self.defs
+            .iter()
+            .enumerate()
+            .filter(|(_, d)| matches!(d.kind, DefKind::Reservoir { .. }))
+    }
+
+    pub fn states(&self) -> impl Iterator<Item = (DefId, &Def)> {
+        self.defs
+            .iter()
+            .enumerate()
+            .filter(|(_, d)| matches!(d.kind, DefKind::State { .. }))
+    }
+
+    /// A formatting-independent text of an expression: numbers in internal
+    /// units with shortest round-trip digits, names resolved, no redundant
+    /// parentheses. Two spellings of the same model print the same.
+    pub fn canonical_expr(&self, expr: &Expr) -> String {
+        let mut out = String::new();
+        self.write_canonical(&mut out, expr);
+        out
+    }
+
+    fn write_canonical(&self, out: &mut String, expr: &Expr) {
+        match &expr.kind {
+            ExprKind::Num(v) => {
+                let mut buf = ryu::Buffer::new();
+                out.push_str(buf.format(*v));
+            }
+            ExprKind::Ref(d) => out.push_str(&self.defs[*d].name),
+            ExprKind::Age => out.push_str("age"),
+            ExprKind::Time => out.push_str("time"),
+            ExprKind::Neg(e) => {
+                out.push_str("(neg ");
+                self.write_canonical(out, e);
+                out.push(')');
+            }
+            ExprKind::Not(e) => {
+                out.push_str("(not ");
+                self.write_canonical(out, e);
+                out.push(')');
+            }
+            ExprKind::Binary(op, a, b) => {
+                let _ = write!(out, "({} ", op.symbol());
+                self.write_canonical(out, a);
+                out.push(' ');
+                self.write_canonical(out, b);
+                out.push(')');
+            }
+            ExprKind::If(c, a, b) => {
+                out.push_str("(if ");
+                self.write_canonical(out, c);
+                out.push(' ');
+                self.write_canonical(out, a);
+                out.push(' ');
+                self.write_canonical(out, b);
+                out.push(')');
+            }
+            ExprKind::Call(f, args) => {
+                out.push('(');
+                out.push_str(&self.builtin_name(*f));
+                for a in args {
+                    out.push(' ');
+                    self.write_canonical(out, a);
+                }
+                out.push(')');
+            }
+        }
+    }
+
+    pub fn builtin_name(&self, f: Builtin) -> String {
+        match f {
+            Builtin::Exp => "exp".into(),
+            Builtin::Ln => "ln".into(),
+            Builtin::Log10 => "log10".into(),
+            Builtin::Sqrt => "sqrt".into(),
+            Builtin::Abs => "abs".into(),
+            Builtin::Min => "min".into(),
+            Builtin::Max => "max".into(),
+            Builtin::Clamp => "clamp".into(),
+            Builtin::Smoothstep => "smoothstep".into(),
+            Builtin::Decay => "decay".into(),
+            Builtin::Capacity(r) => format!("capacity {}", self.defs[r].name),
+            Builtin::Fill(r) => format!("fill {}", self.defs[r].name),
+            Builtin::Excess(r) => format!("excess {}", self.defs[r].name),
+            Builtin::Interp(t) => format!("table {}", self.tables[t].name),
+            Builtin::SeaLevel(t) => format!("sea_level {}", self.tables[t].name),
+            Builtin::SeaLevelIsostatic(t) => {
+                format!("sea_level_isostatic {}", self.tables[t].name)
+            }
+            Builtin::LandFraction(t) => format!("land_fraction {}", self.tables[t].name),
+            Builtin::BasinVolume(t) => format!("basin_volume {}", self.tables[t].name),
+        }
+    }
+
+    /// The canonical text of one definition: kind, name, dimension and every
+    /// expression it carries. Comments, layout and declaration order do not
+    /// enter it.
+    pub fn canonical_def(&self, id: DefId) -> String {
+        let d = &self.defs[id];
+        let mut out = format!("{} {} [{:?}] = ", d.kind.word(), d.name, d.dim);
+        out.push_str(&self.canonical_expr(&d.expr));
+        match &d.kind {
+            DefKind::Reservoir { capacity: Some(c) } => {
+                out.push_str(" capacity ");
+                out.push_str(&self.canonical_expr(c));
+            }
+            DefKind::State { rate } => {
+                out.push_str(" rate ");
+                out.push_str(&self.canonical_expr(rate));
+            }
+            DefKind::Flux { from, to, stage } => {
+                let ep = |e: &Endpoint| match e {
+                    Endpoint::Outside => "outside".to_owned(),
+                    Endpoint::Reservoir(r) => self.defs[*r].name.clone(),
+                };
+                let _ = write!(out, " from {} to {}", ep(from), ep(to));
+                if let Some(s) = stage {
+                    let _ = write!(out, " in stage {}", self.stages[*s].name);
+                }
+            }
+            DefKind::Table(t) => {
+                let _ = write!(out, " table {}", self.tables[*t].hash);
+            }
+            _ => {}
+        }
+        out
+    }
+}

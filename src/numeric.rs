@@ -1,0 +1,93 @@
+//! Numeric kernels shared by the constant folder and the compiled evaluator.
+//! Transcendental functions come from `libm`, so results are the same bits on
+//! every platform.
+
+use crate::syntax::BinOp;
+
+/// Apply a binary operator; comparisons and logic give 1.0 or 0.0.
+#[inline]
+pub fn binary(op: BinOp, a: f64, b: f64) -> f64 {
+    let truth = |c: bool| if c { 1.0 } else { 0.0 };
+    match op {
+        BinOp::Add => a + b,
+        BinOp::Sub => a - b,
+        BinOp::Mul => a * b,
+        BinOp::Div => a / b,
+        BinOp::Pow => pow(a, b),
+        BinOp::Eq => truth(a == b),
+        BinOp::Ne => truth(a != b),
+        BinOp::Lt => truth(a < b),
+        BinOp::Le => truth(a <= b),
+        BinOp::Gt => truth(a > b),
+        BinOp::Ge => truth(a >= b),
+        BinOp::And => truth(a != 0.0 && b != 0.0),
+        BinOp::Or => truth(a != 0.0 || b != 0.0),
+    }
+}
+
+/// `a^b`, exact by repeated multiplication for small integer exponents.
+#[inline]
+pub fn pow(a: f64, b: f64) -> f64 {
+    if b == 2.0 {
+        a * a
+    } else if b == 1.0 {
+        a
+    } else if b == 3.0 {
+        a * a * a
+    } else {
+        libm::pow(a, b)
+    }
+}
+
+/// 0 below `e0`, 1 above `e1`, the cubic Hermite step between.
+#[inline]
+pub fn smoothstep(x: f64, e0: f64, e1: f64) -> f64 {
+    if e1 == e0 {
+        return if x < e0 { 0.0 } else { 1.0 };
+    }
+    let t = ((x - e0) / (e1 - e0)).clamp(0.0, 1.0);
+    t * t * (3.0 - 2.0 * t)
+}
+
+/// Linear interpolation in strictly increasing knots `xs`, held constant
+/// beyond the ends.
+#[inline]
+pub fn interp(xs: &[f64], ys: &[f64], x: f64) -> f64 {
+    let n = xs.len();
+    if n == 0 {
+        return f64::NAN;
+    }
+    if x <= xs[0] {
+        return ys[0];
+    }
+    if x >= xs[n - 1] {
+        return ys[n - 1];
+    }
+    // First knot greater than x.
+    let i = xs.partition_point(|&k| k <= x);
+    let (x0, x1, y0, y1) = (xs[i - 1], xs[i], ys[i - 1], ys[i]);
+    y0 + (y1 - y0) * (x - x0) / (x1 - x0)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn interp_inside_and_beyond_the_ends() {
+        let xs = [0.0, 1.0, 3.0];
+        let ys = [10.0, 20.0, 0.0];
+        assert_eq!(interp(&xs, &ys, -1.0), 10.0);
+        assert_eq!(interp(&xs, &ys, 0.5), 15.0);
+        assert_eq!(interp(&xs, &ys, 1.0), 20.0);
+        assert_eq!(interp(&xs, &ys, 2.0), 10.0);
+        assert_eq!(interp(&xs, &ys, 9.0), 0.0);
+    }
+
+    #[test]
+    fn smoothstep_ends_and_middle() {
+        assert_eq!(smoothstep(-1.0, 0.0, 2.0), 0.0);
+        assert_eq!(smoothstep(1.0, 0.0, 2.0), 0.5);
+        assert_eq!(smoothstep(3.0, 0.0, 2.0), 1.0);
+    }
+}

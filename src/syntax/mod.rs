@@ -1,0 +1,12 @@
+//! Phase 1, parse: text to syntax tree, and the canonical printer.
+//!
+//! Invariant: this module knows nothing of units, dimensions or physics.
+//! Spans live here; meaning does not.
+
+pub mod ast;
+mod format;
+mod parse;
+
+pub use ast::*;
+pub use format::{format_expr, format_file};
+pub use parse::{parse, MAX_NESTING};

@@ -1,0 +1,722 @@
+//! Text to syntax tree, through the pest grammar in `grammar/hadal.pest`.
+
+use std::sync::OnceLock;
+
+use pest::iterators::{Pair, Pairs};
+use pest::pratt_parser::{Assoc, Op, PrattParser};
+use pest::Parser;
+
+use super::ast::*;
+use crate::diagnostic::Problem;
+use crate::span::Span;
+
+#[derive(pest_derive::Parser)]
+#[grammar = "../grammar/hadal.pest"]
+struct HadalParser;
+
+/// Most syntax errors reported for one file before giving up.
+const MAX_SYNTAX_ERRORS: usize = 25;
+
+/// Deepest expression nesting accepted; deeper input is a diagnostic, not a
+/// stack overflow.
+pub const MAX_NESTING: usize = 64;
+
+/// Parse one file. On failure, every independent syntax error is reported:
+/// after an error the offending line is blanked out and parsing restarts,
+/// which works because statements are line-oriented.
+pub fn parse(text: &str, file: u32) -> Result<SyntaxFile, Vec<Problem>> {
+    if let Some(problem) = nesting_problem(text, file) {
+        return Err(vec![problem]);
+    }
+    let mut errors = Vec::new();
+    let mut work = text.to_owned();
+    loop {
+        match HadalParser::parse(Rule::file, &work) {
+            Ok(mut pairs) => {
+                if errors.is_empty() {
+                    let root = pairs.next().expect("file rule yields one pair");
+                    return Ok(build_file(root, file));
+                }
+                return Err(errors);
+            }
+            Err(err) => {
+                let pos = match err.location {
+                    pest::error::InputLocation::Pos(p) => p,
+                    pest::error::InputLocation::Span((s, _)) => s,
+                };
+                errors.push(syntax_problem(&work, &err, pos, file));
+                let line_start = work[..pos].rfind('\n').map_or(0, |i| i + 1);
+                let line_end = work[pos..].find('\n').map_or(work.len(), |i| pos + i);
+                let blank_from = if work[line_start..line_end].trim().is_empty() {
+                    // The error sits on an empty line (e.g. a missing `}`); nothing
+                    // more can be learned by blanking it.
+                    return Err(errors);
+                } else {
+                    line_start
+                };
+                // Replace the line by spaces so offsets of later lines stay valid.
+                let blank: String = work[blank_from..line_end]
+                    .chars()
+                    .map(|c| if c == '\r' { '\r' } else { ' ' })
+                    .collect();
+                work.replace_range(blank_from..line_end, &blank);
+                if errors.len() >= MAX_SYNTAX_ERRORS {
+                    return Err(errors);
+                }
+            }
+        }
+    }
+}
+
+/// Reject pathologically deep brackets before the recursive-descent parser
+/// sees them.
+fn nesting_problem(text: &str, file: u32) -> Option<Problem> {
+    let mut depth = 0usize;
+    for (i, c) in text.char_indices() {
+        match c {
+            '(' => {
+                depth += 1;
+                if depth > MAX_NESTING {
+                    return Some(
+                        Problem::error(
+                            "H0102",
+                            format!("expression nested more than {MAX_NESTING} deep"),
+                        )
+                        .label(Span::new(file, i, i + 1), "too deep here")
+                        .help("split the expression into `let` definitions"),
+                    );
+                }
+            }
+            ')' => depth = depth.saturating_sub(1),
+            '\n' => depth = 0,
+            _ => {}
+        }
+    }
+    None
+}
+
+fn syntax_problem(text: &str, err: &pest::error::Error<Rule>, pos: usize, file: u32) -> Problem {
+    let found = describe_found(text, pos);
+    let mut expected: Vec<&'static str> = match &err.variant {
+        pest::error::ErrorVariant::ParsingError { positives, .. } => {
+            positives.iter().filter_map(|r| rule_words(*r)).collect()
+        }
+        pest::error::ErrorVariant::CustomError { .. } => Vec::new(),
+    };
+    expected.sort_unstable();
+    expected.dedup();
+    // Say the most useful thing: a statement subsumes comments and the end of
+    // the file, an expression subsumes names and numbers.
+    if expected.contains(&"a statement") {
+        expected.retain(|w| *w != "a comment" && *w != "end of file" && *w != "end of line");
+    }
+    if expected.contains(&"an expression") {
+        expected.retain(|w| *w != "a name" && *w != "a number");
+    }
+    let at_line_start = text[..pos]
+        .rsplit('\n')
+        .next()
+        .is_none_or(|l| l.trim().is_empty());
+    if expected.is_empty() && at_line_start {
+        expected.push("a statement");
+    }
+    let message = if expected.is_empty() {
+        format!("unexpected {found}")
+    } else {
+        format!("expected {}, found {found}", join_words(&expected))
+    };
+    let end = text[pos..].chars().next().map_or(pos, |c| {
+        if c == '\n' || c == '\r' {
+            pos
+        } else {
+            pos + c.len_utf8()
+        }
+    });
+    let mut problem =
+        Problem::error("H0101", message).label(Span::new(file, pos, end.max(pos)), "here");
+    problem = problem.help(syntax_hint(text, pos, &expected));
+    problem
+}
+
+fn syntax_hint(text: &str, pos: usize, expected: &[&str]) -> String {
+    let line_start = text[..pos].rfind('\n').map_or(0, |i| i + 1);
+    let before = text[line_start..pos].trim_end();
+    let rest = &text[pos..];
+    if rest.starts_with('=')
+        && before.ends_with(|c: char| c.is_alphanumeric())
+        && !before.contains('=')
+    {
+        return "every statement starts with a keyword such as `param`, `let` or `reservoir`; see docs/language.md".into();
+    }
+    if rest.starts_with("+-") || rest.starts_with('±') {
+        return "`+-` belongs only in `expect NAME at AGE = VALUE +- SIGMA`".into();
+    }
+    if before.is_empty() {
+        return "a line starts with a keyword: scenario, span, report, solver, include, const, param, table, reservoir, state, let, output, flux, event, expect or stage".into();
+    }
+    if expected.contains(&"an operator") || expected.contains(&"end of line") {
+        return "one statement per line; put a comment after `#`, and write a product with `*`"
+            .into();
+    }
+    "see docs/language.md for the form of each statement".into()
+}
+
+fn describe_found(text: &str, pos: usize) -> String {
+    let rest = &text[pos..];
+    match rest.chars().next() {
+        None => "end of file".into(),
+        Some('\n') | Some('\r') => "end of line".into(),
+        Some(c) if c.is_alphanumeric() || c == '_' => {
+            let word: String = rest
+                .chars()
+                .take_while(|c| c.is_alphanumeric() || *c == '_' || *c == '.')
+                .collect();
+            format!("`{word}`")
+        }
+        Some(c) => format!("`{c}`"),
+    }
+}
+
+fn join_words(words: &[&str]) -> String {
+    match words {
+        [] => String::new(),
+        [one] => (*one).to_owned(),
+        [init @ .., last] => format!("{} or {last}", init.join(", ")),
+    }
+}
+
+/// Grammar rule names in plain words; `None` hides a rule from messages.
+fn rule_words(rule: Rule) -> Option<&'static str> {
+    Some(match rule {
+        Rule::EOI => "end of file",
+        Rule::line_end => "end of line",
+        Rule::comment => "a comment",
+        Rule::name => "a name",
+        Rule::string => "a quoted string",
+        Rule::expr | Rule::op_expr | Rule::if_expr | Rule::age_expr => "an expression",
+        Rule::quantity | Rule::number => "a number",
+        Rule::unit | Rule::unit_factor | Rule::unit_name | Rule::unit_one => "a unit",
+        Rule::call | Rule::paren => "an expression",
+        Rule::neg | Rule::not => "an expression",
+        Rule::or
+        | Rule::and
+        | Rule::eq
+        | Rule::ne
+        | Rule::le
+        | Rule::ge
+        | Rule::lt
+        | Rule::gt
+        | Rule::add
+        | Rule::sub
+        | Rule::mul
+        | Rule::div
+        | Rule::pow => "an operator",
+        Rule::clause => "`, capacity = ...` or `, rate = ...`",
+        Rule::cmp_op => "a comparison",
+        Rule::expect_target => "`= VALUE +- SIGMA`",
+        Rule::expect_range => "`in LOW to HIGH`",
+        Rule::expect_bound => "a bound such as `< VALUE`",
+        Rule::expect_event => "`before AGE` or `after AGE`",
+        Rule::stage_body => "`{`",
+        Rule::stage_close => "`}`",
+        Rule::scenario_stmt
+        | Rule::span_stmt
+        | Rule::report_stmt
+        | Rule::solver_stmt
+        | Rule::include_stmt
+        | Rule::const_stmt
+        | Rule::param_stmt
+        | Rule::table_stmt
+        | Rule::reservoir_stmt
+        | Rule::state_stmt
+        | Rule::let_stmt
+        | Rule::output_stmt
+        | Rule::flux_stmt
+        | Rule::event_stmt
+        | Rule::expect_stmt
+        | Rule::stage_stmt => "a statement",
+        Rule::set_stmt => "a `set`, `flux` or `solver` line",
+        Rule::kw_scenario
+        | Rule::kw_span
+        | Rule::kw_report
+        | Rule::kw_solver
+        | Rule::kw_include
+        | Rule::kw_const
+        | Rule::kw_param
+        | Rule::kw_table
+        | Rule::kw_reservoir
+        | Rule::kw_state
+        | Rule::kw_let
+        | Rule::kw_output
+        | Rule::kw_flux
+        | Rule::kw_event
+        | Rule::kw_expect
+        | Rule::kw_stage => "a statement",
+        Rule::kw_set => "a `set`, `flux` or `solver` line",
+        Rule::kw_if => "an expression",
+        Rule::kw_to => "`to`",
+        Rule::kw_at => "`at`",
+        Rule::kw_in => "`in`",
+        Rule::kw_from => "`from`",
+        Rule::kw_every => "`every`",
+        Rule::kw_then => "`then`",
+        Rule::kw_else => "`else`",
+        Rule::kw_before | Rule::kw_after => "`before` or `after`",
+        _ => return None,
+    })
+}
+
+fn pratt() -> &'static PrattParser<Rule> {
+    static PRATT: OnceLock<PrattParser<Rule>> = OnceLock::new();
+    PRATT.get_or_init(|| {
+        PrattParser::new()
+            .op(Op::infix(Rule::or, Assoc::Left))
+            .op(Op::infix(Rule::and, Assoc::Left))
+            .op(Op::prefix(Rule::not))
+            .op(Op::infix(Rule::eq, Assoc::Left)
+                | Op::infix(Rule::ne, Assoc::Left)
+                | Op::infix(Rule::lt, Assoc::Left)
+                | Op::infix(Rule::le, Assoc::Left)
+                | Op::infix(Rule::gt, Assoc::Left)
+                | Op::infix(Rule::ge, Assoc::Left))
+            .op(Op::infix(Rule::add, Assoc::Left) | Op::infix(Rule::sub, Assoc::Left))
+            .op(Op::infix(Rule::mul, Assoc::Left) | Op::infix(Rule::div, Assoc::Left))
+            .op(Op::prefix(Rule::neg))
+            .op(Op::infix(Rule::pow, Assoc::Right))
+    })
+}
+
+struct Builder {
+    file: u32,
+}
+
+fn build_file(root: Pair<Rule>, file: u32) -> SyntaxFile {
+    let b = Builder { file };
+    SyntaxFile {
+        entries: b.entries(root.into_inner()),
+    }
+}
+
+impl Builder {
+    fn span(&self, pair: &Pair<Rule>) -> Span {
+        let s = pair.as_span();
+        Span::new(self.file, s.start(), s.end())
+    }
+
+    fn entries<'i>(&self, pairs: impl IntoIterator<Item = Pair<'i, Rule>>) -> Vec<Entry> {
+        let mut out: Vec<Entry> = Vec::new();
+        let mut last_stmt_line: Option<usize> = None;
+        for pair in pairs {
+            let line = pair.line_col().0 - 1;
+            match pair.as_rule() {
+                Rule::comment => {
+                    let text = pair.as_str().trim_end().to_owned();
+                    // A comment on the same line as the statement before it trails it.
+                    if let (Some(l), Some(last)) = (last_stmt_line, out.last_mut()) {
+                        if l == line && last.trailing.is_none() {
+                            last.trailing = Some(text);
+                            continue;
+                        }
+                    }
+                    out.push(Entry {
+                        line,
+                        kind: EntryKind::Comment(text),
+                        trailing: None,
+                    });
+                    last_stmt_line = None;
+                }
+                Rule::EOI | Rule::stage_close | Rule::line_end => {}
+                _ => {
+                    let stmt = self.stmt(pair);
+                    // A statement ending with a stage body ends on the `}` line.
+                    last_stmt_line = Some(match &stmt.kind {
+                        StmtKind::Stage {
+                            body: Some(body), ..
+                        } => body.close_line,
+                        _ => line,
+                    });
+                    out.push(Entry {
+                        line,
+                        kind: EntryKind::Stmt(Box::new(stmt)),
+                        trailing: None,
+                    });
+                }
+            }
+        }
+        out
+    }
+
+    fn ident(&self, pair: Pair<Rule>) -> Ident {
+        Ident {
+            text: pair.as_str().to_owned(),
+            span: self.span(&pair),
+        }
+    }
+
+    fn string(&self, pair: Pair<Rule>) -> StringLit {
+        let span = self.span(&pair);
+        let inner = pair.into_inner().next().map_or("", |p| p.as_str());
+        let mut value = String::with_capacity(inner.len());
+        let mut chars = inner.chars();
+        while let Some(c) = chars.next() {
+            if c == '\\' {
+                if let Some(n) = chars.next() {
+                    value.push(n);
+                }
+            } else {
+                value.push(c);
+            }
+        }
+        StringLit { value, span }
+    }
+
+    fn unit(&self, pair: Pair<Rule>) -> UnitText {
+        let span = self.span(&pair);
+        let text = pair.as_str().to_owned();
+        let mut factors = Vec::new();
+        // Walk the unit text: factors separated by `.` (times) or `/` (per).
+        let mut sign = 1;
+        let base = span.start as usize;
+        let mut i = 0;
+        let bytes = text.as_bytes();
+        if text.starts_with("1/") {
+            i = 2;
+            sign = -1;
+        }
+        while i < bytes.len() {
+            let start = i;
+            while i < bytes.len() && bytes[i] != b'.' && bytes[i] != b'/' {
+                i += 1;
+            }
+            let factor = &text[start..i];
+            let (name, power) = match factor.split_once('^') {
+                Some((n, p)) => (n, p.parse::<i32>().unwrap_or(1)),
+                None => (factor, 1),
+            };
+            factors.push(UnitFactor {
+                name: name.to_owned(),
+                power: power * sign,
+                span: Span::new(self.file, base + start, base + i),
+            });
+            if i < bytes.len() {
+                sign = if bytes[i] == b'/' { -1 } else { 1 };
+                i += 1;
+            }
+        }
+        UnitText {
+            text,
+            factors,
+            span,
+        }
+    }
+
+    fn stmt(&self, pair: Pair<Rule>) -> Stmt {
+        let span = self.span(&pair);
+        let rule = pair.as_rule();
+        // Keywords are tokens in the tree; drop them.
+        let mut it = pair.into_inner().filter(|p| !is_keyword(p.as_rule()));
+        let mut next = || it.next().expect("grammar guarantees this child");
+        let kind = match rule {
+            Rule::scenario_stmt => {
+                let name = self.ident(next());
+                StmtKind::Scenario { name, title: None }
+            }
+            Rule::span_stmt => StmtKind::Span {
+                from: self.expr(next()),
+                to: self.expr(next()),
+            },
+            Rule::report_stmt => StmtKind::Report {
+                every: self.expr(next()),
+            },
+            Rule::solver_stmt => StmtKind::Solver {
+                key: self.ident(next()),
+                value: self.expr(next()),
+            },
+            Rule::include_stmt => StmtKind::Include {
+                path: self.string(next()),
+            },
+            Rule::const_stmt => StmtKind::Const {
+                name: self.ident(next()),
+                value: self.expr(next()),
+            },
+            Rule::param_stmt => StmtKind::Param {
+                name: self.ident(next()),
+                value: self.expr(next()),
+            },
+            Rule::set_stmt => StmtKind::Set {
+                name: self.ident(next()),
+                value: self.expr(next()),
+            },
+            Rule::let_stmt => StmtKind::Let {
+                name: self.ident(next()),
+                value: self.expr(next()),
+            },
+            Rule::event_stmt => StmtKind::Event {
+                name: self.ident(next()),
+                condition: self.expr(next()),
+            },
+            Rule::table_stmt => StmtKind::Table {
+                name: self.ident(next()),
+                path: self.string(next()),
+                x_unit: self.unit(next()),
+                y_unit: self.unit(next()),
+            },
+            Rule::reservoir_stmt | Rule::state_stmt => {
+                let name = self.ident(next());
+                let initial = self.expr(next());
+                let mut clauses = Vec::new();
+                for c in it.by_ref() {
+                    let mut ci = c.into_inner();
+                    let key = self.ident(ci.next().expect("clause key"));
+                    let value = self.expr(ci.next().expect("clause value"));
+                    clauses.push(Clause { key, value });
+                }
+                if rule == Rule::reservoir_stmt {
+                    StmtKind::Reservoir {
+                        name,
+                        initial,
+                        clauses,
+                    }
+                } else {
+                    StmtKind::State {
+                        name,
+                        initial,
+                        clauses,
+                    }
+                }
+            }
+            Rule::output_stmt => {
+                let name = self.ident(next());
+                let value = self.expr(next());
+                let unit = it.next().map(|p| self.unit(p));
+                StmtKind::Output { name, value, unit }
+            }
+            Rule::flux_stmt => StmtKind::Flux {
+                name: self.ident(next()),
+                from: self.ident(next()),
+                to: self.ident(next()),
+                rate: self.expr(next()),
+            },
+            Rule::expect_stmt => {
+                let subject = self.expr(next());
+                let first = next();
+                let check = if first.as_rule() == Rule::expect_event {
+                    let mut ei = first.into_inner();
+                    let kw = ei.next().expect("before/after");
+                    let before = kw.as_rule() == Rule::kw_before;
+                    ExpectCheck::Event {
+                        before,
+                        age: self.expr(ei.next().expect("event age")),
+                    }
+                } else {
+                    let at = self.expr(first);
+                    let value = next();
+                    let vr = value.as_rule();
+                    let mut vi = value.into_inner().filter(|p| !is_keyword(p.as_rule()));
+                    match vr {
+                        Rule::expect_target => ExpectCheck::Target {
+                            at,
+                            value: self.expr(vi.next().expect("target")),
+                            sigma: self.expr(vi.next().expect("sigma")),
+                        },
+                        Rule::expect_range => ExpectCheck::Range {
+                            at,
+                            low: self.expr(vi.next().expect("low")),
+                            high: self.expr(vi.next().expect("high")),
+                        },
+                        _ => {
+                            let op = match vi.next().expect("cmp").as_str() {
+                                "<" => CmpOp::Lt,
+                                "<=" => CmpOp::Le,
+                                ">" => CmpOp::Gt,
+                                _ => CmpOp::Ge,
+                            };
+                            ExpectCheck::Bound {
+                                at,
+                                op,
+                                value: self.expr(vi.next().expect("bound")),
+                            }
+                        }
+                    }
+                };
+                StmtKind::Expect { subject, check }
+            }
+            Rule::stage_stmt => {
+                let name = self.ident(next());
+                let from = self.expr(next());
+                let to = self.expr(next());
+                let body = it.next().map(|b| {
+                    let mut open_comment = None;
+                    let mut close_line = b.line_col().0 - 1;
+                    let mut inner: Vec<Pair<Rule>> = b.into_inner().collect();
+                    if let Some(first) = inner.first() {
+                        if first.as_rule() == Rule::comment && first.line_col().0 - 1 == close_line
+                        {
+                            open_comment = Some(first.as_str().trim_end().to_owned());
+                            inner.remove(0);
+                        }
+                    }
+                    if let Some(close) = inner.iter().find(|p| p.as_rule() == Rule::stage_close) {
+                        close_line = close.line_col().0 - 1;
+                    }
+                    let entries = self.entries(inner);
+                    StageBody {
+                        open_comment,
+                        entries,
+                        close_line,
+                    }
+                });
+                StmtKind::Stage {
+                    name,
+                    from,
+                    to,
+                    body,
+                }
+            }
+            other => unreachable!("not a statement rule: {other:?}"),
+        };
+        // The scenario title is optional and comes last.
+        let kind = match kind {
+            StmtKind::Scenario { name, .. } => StmtKind::Scenario {
+                name,
+                title: it.next().map(|p| self.string(p)),
+            },
+            k => k,
+        };
+        Stmt { kind, span }
+    }
+
+    fn expr(&self, pair: Pair<Rule>) -> Expr {
+        let span = self.span(&pair);
+        match pair.as_rule() {
+            Rule::expr => {
+                let inner = pair.into_inner().next().expect("expr has one child");
+                self.expr(inner)
+            }
+            Rule::if_expr => {
+                let mut it = pair.into_inner().filter(|p| !is_keyword(p.as_rule()));
+                let cond = self.expr(it.next().expect("cond"));
+                let then = self.expr(it.next().expect("then"));
+                let otherwise = self.expr(it.next().expect("else"));
+                Expr {
+                    kind: ExprKind::If {
+                        cond: Box::new(cond),
+                        then: Box::new(then),
+                        otherwise: Box::new(otherwise),
+                    },
+                    span,
+                }
+            }
+            Rule::op_expr | Rule::age_expr => self.pratt_expr(pair.into_inner()),
+            _ => self.primary(pair),
+        }
+    }
+
+    fn pratt_expr(&self, pairs: Pairs<Rule>) -> Expr {
+        pratt()
+            .map_primary(|p| self.primary(p))
+            .map_prefix(|op, operand| {
+                let span = self.span(&op).join(operand.span);
+                let op = if op.as_rule() == Rule::neg {
+                    UnOp::Neg
+                } else {
+                    UnOp::Not
+                };
+                Expr {
+                    kind: ExprKind::Unary {
+                        op,
+                        operand: Box::new(operand),
+                    },
+                    span,
+                }
+            })
+            .map_infix(|lhs, op, rhs| {
+                let span = lhs.span.join(rhs.span);
+                let op = match op.as_rule() {
+                    Rule::or => BinOp::Or,
+                    Rule::and => BinOp::And,
+                    Rule::eq => BinOp::Eq,
+                    Rule::ne => BinOp::Ne,
+                    Rule::lt => BinOp::Lt,
+                    Rule::le => BinOp::Le,
+                    Rule::gt => BinOp::Gt,
+                    Rule::ge => BinOp::Ge,
+                    Rule::add => BinOp::Add,
+                    Rule::sub => BinOp::Sub,
+                    Rule::mul => BinOp::Mul,
+                    Rule::div => BinOp::Div,
+                    _ => BinOp::Pow,
+                };
+                Expr {
+                    kind: ExprKind::Binary {
+                        op,
+                        lhs: Box::new(lhs),
+                        rhs: Box::new(rhs),
+                    },
+                    span,
+                }
+            })
+            .parse(pairs)
+    }
+
+    fn primary(&self, pair: Pair<Rule>) -> Expr {
+        let span = self.span(&pair);
+        let kind = match pair.as_rule() {
+            Rule::quantity => {
+                let mut it = pair.into_inner();
+                let num = it.next().expect("number");
+                let text = num.as_str().to_owned();
+                // The grammar admits only decimal digits, so this parses; an
+                // overlong exponent becomes infinity and the checker rejects it.
+                let value = text.parse::<f64>().unwrap_or(f64::INFINITY);
+                let unit = it.next().map(|u| self.unit(u));
+                ExprKind::Quantity { text, value, unit }
+            }
+            Rule::name => ExprKind::Name(self.ident(pair)),
+            Rule::call => {
+                let mut it = pair.into_inner();
+                let func = self.ident(it.next().expect("function name"));
+                let args = it.map(|a| self.expr(a)).collect();
+                ExprKind::Call { func, args }
+            }
+            Rule::paren => {
+                let inner = pair.into_inner().next().expect("paren content");
+                ExprKind::Paren(Box::new(self.expr(inner)))
+            }
+            Rule::expr | Rule::op_expr | Rule::if_expr => return self.expr(pair),
+            other => unreachable!("not a primary rule: {other:?}"),
+        };
+        Expr { kind, span }
+    }
+}
+
+fn is_keyword(rule: Rule) -> bool {
+    matches!(
+        rule,
+        Rule::kw_scenario
+            | Rule::kw_span
+            | Rule::kw_report
+            | Rule::kw_every
+            | Rule::kw_solver
+            | Rule::kw_include
+            | Rule::kw_const
+            | Rule::kw_param
+            | Rule::kw_table
+            | Rule::kw_reservoir
+            | Rule::kw_state
+            | Rule::kw_let
+            | Rule::kw_output
+            | Rule::kw_flux
+            | Rule::kw_event
+            | Rule::kw_expect
+            | Rule::kw_stage
+            | Rule::kw_from
+            | Rule::kw_to
+            | Rule::kw_at
+            | Rule::kw_in
+            | Rule::kw_set
+            | Rule::kw_if
+            | Rule::kw_then
+            | Rule::kw_else
+    )
+}
