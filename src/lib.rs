@@ -7,11 +7,14 @@
 
 pub mod check;
 pub mod cli;
+pub mod compile;
 pub mod diagnostic;
 pub mod fsutil;
 pub mod graph;
 pub mod model;
 pub mod numeric;
+pub mod report;
+pub mod solve;
 pub mod span;
 pub mod syntax;
 pub mod units;

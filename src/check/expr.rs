@@ -70,15 +70,13 @@ pub fn dim_hint(want: Dim, found: Dim) -> String {
     if want.same_base(Dim::TIME) && !want.point && found.is_age() {
         return "a duration is written in Gyr, Myr, kyr or yr; Ga, Ma and ka are ages".into();
     }
-    if let Some(f) = found.per(want) {
-        if f.same_base(Dim::TIME) {
-            return "multiply by a time, or divide by a rate".into();
-        }
-        if let Some(inv) = want.per(found) {
-            if inv.same_base(Dim::TIME) {
-                return "divide by a time, e.g. `/ 1 Myr`, to make a rate".into();
-            }
-        }
+    // found = want * time: one time too many.
+    if found.per(want).is_some_and(|f| f.same_base(Dim::TIME)) {
+        return "divide by a time, e.g. `/ 1 Myr`, to make a rate".into();
+    }
+    // want = found * time: a rate where an amount belongs.
+    if want.per(found).is_some_and(|f| f.same_base(Dim::TIME)) {
+        return "multiply a rate by a time, e.g. `* 1 Myr`, to make an amount".into();
     }
     format!(
         "expected {}; check the units of the numbers and names involved",
@@ -220,7 +218,8 @@ impl Checker {
                                 "one branch of `if` is a condition and the other a number",
                             )
                             .label(then.span, "then")
-                            .label(otherwise.span, "else"),
+                            .label(otherwise.span, "else")
+                            .help("both branches must be numbers of one dimension, or both conditions"),
                         );
                         Ty::Error
                     }
@@ -545,7 +544,8 @@ impl Checker {
                 "H0304",
                 "the dimension of this expression has too large a power",
             )
-            .label(span, "here"),
+            .label(span, "here")
+            .help("no physical quantity has such powers; check the powers and repeated products here"),
         );
         Ty::Error
     }
@@ -890,7 +890,10 @@ impl Checker {
             }
         }
         let mut p = Problem::error("H0206", format!("`{func}` needs the name of a reservoir"))
-            .label(arg.span, "not a reservoir name");
+            .label(arg.span, "not a reservoir name")
+            .help(format!(
+                "write the name of a reservoir that has a capacity, e.g. `{func}(mantle)`"
+            ));
         if let syntax::ExprKind::Name(id) = &arg.kind {
             if !self.symbols.contains_key(&id.text) {
                 let names = self.reservoirs_named();

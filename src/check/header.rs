@@ -57,7 +57,8 @@ impl Checker {
                     "H0303",
                     format!("{what} does not evaluate to a finite number"),
                 )
-                .label(e.span, "not finite"),
+                .label(e.span, "not finite")
+                .help("look for a division by zero or a result too large for a number"),
             );
             return None;
         }
@@ -143,7 +144,8 @@ impl Checker {
                 if v <= 0.0 {
                     self.error(
                         Problem::error("H0411", format!("`{}` must be positive", key.text))
-                            .label(value.span, "not positive"),
+                            .label(value.span, "not positive")
+                            .help("give a positive duration, e.g. `1 Myr`"),
                     );
                     return;
                 }
@@ -232,7 +234,8 @@ impl Checker {
                         if c <= 0.0 {
                             self.error(
                                 Problem::error("H0411", "the report cadence must be positive")
-                                    .label(every.span, "not positive"),
+                                    .label(every.span, "not positive")
+                                    .help("give the time between report rows, e.g. `report every 10 Myr`"),
                             );
                         } else {
                             h.cadence = c;
@@ -327,7 +330,8 @@ impl Checker {
                 self.error(
                     Problem::error("H0202", format!("stage `{}` is defined twice", name.text))
                         .label(name.span, "defined again here")
-                        .label(*first, "first defined here"),
+                        .label(*first, "first defined here")
+                        .help("give each stage its own name"),
                 );
             }
             names.insert(name.text.clone(), name.span);
@@ -414,7 +418,8 @@ impl Checker {
         if stage.sets.iter().any(|(d, _)| *d == id) {
             self.error(
                 Problem::error("H0202", format!("`{}` is set twice in this stage", p.text))
-                    .label(p.span, "set again here"),
+                    .label(p.span, "set again here")
+                    .help("keep one `set` line for each parameter in a stage"),
             );
             return;
         }
@@ -565,14 +570,17 @@ impl Checker {
                 if ts.ty == Ty::Bool {
                     self.error(
                         Problem::error("H0306", "an expectation needs a number to compare")
-                            .label(subject.span, "this is a condition"),
+                            .label(subject.span, "this is a condition")
+                            .help("expect a number, e.g. `expect ocean at 0 Ga > 1e21 kg`; for the first time a condition holds, declare an `event` and expect it `before` or `after` an age"),
                     );
                 }
                 continue;
             };
-            let value_of = |c: &mut Checker, e: &syntax::Expr, what: &str| -> Option<Expr> {
+            // Values are of the subject's kind (an age for an age); an
+            // uncertainty is a difference.
+            let value_of = |c: &mut Checker, e: &syntax::Expr, want: Dim, what: &str| {
                 let (x, t) = c.check_expr(e);
-                if c.expect_dim(&t, dim.plain(), e.span, what) {
+                if c.expect_dim(&t, want, e.span, what) {
                     c.expect_constant(&t, e.span, what);
                     Some(x)
                 } else {
@@ -582,8 +590,8 @@ impl Checker {
             let checked = match check {
                 syntax::ExpectCheck::Target { at, value, sigma } => {
                     let a = self.const_value(at, Dim::AGE, "the age of an expectation");
-                    let v = value_of(self, value, "the expected value");
-                    let s = value_of(self, sigma, "the uncertainty");
+                    let v = value_of(self, value, dim, "the expected value");
+                    let s = value_of(self, sigma, dim.plain(), "the uncertainty");
                     match (a, v, s) {
                         (Some(age), Some(value), Some(sigma)) => {
                             Some(ExpectCheck::Target { age, value, sigma })
@@ -593,8 +601,8 @@ impl Checker {
                 }
                 syntax::ExpectCheck::Range { at, low, high } => {
                     let a = self.const_value(at, Dim::AGE, "the age of an expectation");
-                    let l = value_of(self, low, "the lower end");
-                    let hi = value_of(self, high, "the upper end");
+                    let l = value_of(self, low, dim, "the lower end");
+                    let hi = value_of(self, high, dim, "the upper end");
                     match (a, l, hi) {
                         (Some(age), Some(low), Some(high)) => {
                             Some(ExpectCheck::Range { age, low, high })
@@ -604,7 +612,7 @@ impl Checker {
                 }
                 syntax::ExpectCheck::Bound { at, op, value } => {
                     let a = self.const_value(at, Dim::AGE, "the age of an expectation");
-                    let v = value_of(self, value, "the bound");
+                    let v = value_of(self, value, dim, "the bound");
                     match (a, v) {
                         (Some(age), Some(value)) => Some(ExpectCheck::Bound {
                             age,

@@ -669,7 +669,8 @@ impl Checker {
                     expr::Ty::Bool => {
                         self.error(
                             Problem::error("H0303", "a state variable must be a number")
-                                .label(syn.span, "this is a condition"),
+                                .label(syn.span, "this is a condition")
+                                .help("a condition is true or false; pick a number with `if C then A else B`"),
                         );
                         expr::Typed::error()
                     }
@@ -680,7 +681,12 @@ impl Checker {
                 }
             }
             DefKind::Const | DefKind::Param => {
-                self.expect_constant(&typed, syn.span, "a constant or parameter");
+                let what = format!(
+                    "the value of {} `{}`",
+                    self.defs[id].kind.word(),
+                    self.defs[id].name
+                );
+                self.expect_constant(&typed, syn.span, &what);
                 typed
             }
             DefKind::Flux { .. } => {
@@ -758,7 +764,7 @@ impl Checker {
     pub(crate) fn expect_constant(&mut self, t: &expr::Typed, span: Span, what: &str) {
         if !t.constant && t.ty != expr::Ty::Error {
             self.error(
-                Problem::error("H0407", format!("{what} must be a constant"))
+                Problem::error("H0407", format!("{what} must be known before the run"))
                     .label(span, "this changes during the run")
                     .help("use numbers, constants and parameters only; a value that changes needs `let` or `state`"),
             );
@@ -780,13 +786,16 @@ impl Checker {
                         "H0303",
                         format!("{what} must be {}, not a condition", want.words()),
                     )
-                    .label(span, "this is a condition"),
+                    .label(span, "this is a condition")
+                    .help("a condition is true or false; pick a number with `if C then A else B`"),
                 );
                 false
             }
             expr::Ty::Num(d) => {
-                let ok = if want.point && want.same_base(Dim::TIME) {
-                    d.is_age()
+                // Ages and durations are different kinds of time: where one
+                // is wanted, the other is an error.
+                let ok = if want.same_base(Dim::TIME) {
+                    d.same_base(want) && d.point == want.point
                 } else {
                     d.same_base(want)
                 };
@@ -820,7 +829,7 @@ impl Checker {
                             self.expect_dim(&t, Dim::MASS, c.value.span, "a capacity");
                             capacity = Some(e);
                         } else {
-                            self.bad_clause(&c.key, &["capacity"]);
+                            self.bad_clause(&c.key, "reservoir", "capacity");
                         }
                     }
                     self.defs[id].kind = DefKind::Reservoir { capacity };
@@ -841,7 +850,7 @@ impl Checker {
                             self.expect_dim(&t, want, c.value.span, &what);
                             rate = Some(e);
                         } else {
-                            self.bad_clause(&c.key, &["rate"]);
+                            self.bad_clause(&c.key, "state", "rate");
                         }
                     }
                     match rate {
@@ -902,10 +911,20 @@ impl Checker {
         }
     }
 
-    fn bad_clause(&mut self, key: &syntax::Ident, allowed: &[&str]) {
-        let mut p = Problem::error("H0207", format!("unexpected `{}` here", key.text))
-            .label(key.span, "not allowed here (or given twice)");
-        p = p.help(format!("this statement takes: {}", allowed.join(", ")));
+    /// A clause that is not the one `word` statements take, or is given twice.
+    fn bad_clause(&mut self, key: &syntax::Ident, word: &str, allowed: &str) {
+        let p = if key.text == allowed {
+            Problem::error("H0207", format!("`{allowed}` is given twice"))
+                .label(key.span, "given again here")
+                .help(format!("a {word} has one `{allowed}`; delete the other"))
+        } else {
+            let p = Problem::error("H0207", format!("a {word} takes no `{}`", key.text))
+                .label(key.span, format!("not a clause of a {word}"));
+            match nearest(&key.text, [allowed]) {
+                Some(s) => p.help(format!("did you mean `{s}`?")),
+                None => p.help(format!("a {word} takes only `, {allowed} = ...`")),
+            }
+        };
         self.error(p);
     }
 

@@ -13,6 +13,8 @@ use crate::check::{self, CheckError, CheckOptions};
 use crate::diagnostic::Problem;
 use crate::span::Sources;
 
+mod run;
+
 pub const EXIT_OK: i32 = 0;
 pub const EXIT_INVALID: i32 = 1;
 pub const EXIT_USAGE: i32 = 2;
@@ -51,6 +53,19 @@ enum Command {
     },
     /// Print the dependency graph of a scenario's definitions as DOT
     Graph { file: PathBuf },
+    /// Integrate a scenario over its span and write its history
+    Run {
+        file: PathBuf,
+        /// Output directory [default: outputs/<scenario name>]
+        #[arg(long)]
+        out: Option<PathBuf>,
+        /// Override a parameter, e.g. --set regas_efficiency=0.4 or --set 'T0=1600 K'
+        #[arg(long = "set", value_name = "NAME=VALUE")]
+        sets: Vec<String>,
+        /// Print a machine-readable summary on stdout instead of the human one
+        #[arg(long)]
+        json: bool,
+    },
 }
 
 pub fn main() -> i32 {
@@ -66,6 +81,12 @@ pub fn main() -> i32 {
         Command::Check { files, json } => cmd_check(&files, json),
         Command::Fmt { files, check } => cmd_fmt(&files, check),
         Command::Graph { file } => cmd_graph(&file),
+        Command::Run {
+            file,
+            out,
+            sets,
+            json,
+        } => run::cmd_run(&file, out.as_deref(), &sets, json),
     }
 }
 
@@ -144,7 +165,7 @@ fn problems_json(sources: &Sources, problems: &[Problem]) -> Vec<serde_json::Val
         .collect()
 }
 
-fn usage_error(msg: impl std::fmt::Display) -> i32 {
+pub(crate) fn usage_error(msg: impl std::fmt::Display) -> i32 {
     eprintln!("error: {msg}");
     EXIT_USAGE
 }

@@ -28,6 +28,9 @@ pub fn parse(text: &str, file: u32) -> Result<SyntaxFile, Vec<Problem>> {
     if let Some(problem) = nesting_problem(text, file) {
         return Err(vec![problem]);
     }
+    // Track literal tokens too (`=`, `:`, `,`), so that a missing one is
+    // reported where it is missing rather than at the start of the line.
+    pest::set_error_detail(true);
     let mut errors = Vec::new();
     let mut work = text.to_owned();
     loop {
@@ -44,7 +47,8 @@ pub fn parse(text: &str, file: u32) -> Result<SyntaxFile, Vec<Problem>> {
                     pest::error::InputLocation::Pos(p) => p,
                     pest::error::InputLocation::Span((s, _)) => s,
                 };
-                errors.push(syntax_problem(&work, &err, pos, file));
+                let (pos, problem) = syntax_problem(&work, &err, pos, file);
+                errors.push(problem);
                 let line_start = work[..pos].rfind('\n').map_or(0, |i| i + 1);
                 let line_end = work[pos..].find('\n').map_or(work.len(), |i| pos + i);
                 let blank_from = if work[line_start..line_end].trim().is_empty() {
@@ -95,18 +99,73 @@ fn nesting_problem(text: &str, file: u32) -> Option<Problem> {
     None
 }
 
-fn syntax_problem(text: &str, err: &pest::error::Error<Rule>, pos: usize, file: u32) -> Problem {
-    let found = describe_found(text, pos);
-    let mut expected: Vec<&'static str> = match &err.variant {
-        pest::error::ErrorVariant::ParsingError { positives, .. } => {
-            positives.iter().filter_map(|r| rule_words(*r)).collect()
+/// Punctuation that separates the parts of a statement, in plain words.
+fn punctuation_words(token: &str) -> Option<&'static str> {
+    Some(match token {
+        "=" => "`=`",
+        ":" => "`:`",
+        "->" => "`->`",
+        "," => "`,`",
+        "(" => "`(`",
+        ")" => "`)`",
+        "{" => "`{`",
+        "}" => "`}`",
+        "+-" | "±" => "`+-`",
+        _ => return None,
+    })
+}
+
+/// The problem for one parse failure, and the position it points at.
+fn syntax_problem(
+    text: &str,
+    err: &pest::error::Error<Rule>,
+    pos: usize,
+    file: u32,
+) -> (usize, Problem) {
+    // pest places the error at the furthest *rule* it tried; a missing `=`
+    // or `:` is a literal, tried further on the same line. Prefer that spot
+    // when only punctuation was expected there.
+    let mut pos = pos;
+    let mut punctuation: Vec<&'static str> = Vec::new();
+    let mut moved = false;
+    if let Some(attempts) = err.parse_attempts() {
+        let max = attempts.max_position;
+        let same_line = max >= pos && max <= text.len() && !text[pos..max].contains('\n');
+        if same_line {
+            punctuation = attempts
+                .expected_tokens()
+                .iter()
+                .filter_map(|t| punctuation_words(&t.to_string()))
+                .collect();
+            if !punctuation.is_empty() && max > pos {
+                pos = max;
+                moved = true;
+            }
         }
-        pest::error::ErrorVariant::CustomError { .. } => Vec::new(),
+    }
+    let found = describe_found(text, pos);
+    let mut expected: Vec<&'static str> = if moved {
+        Vec::new()
+    } else {
+        match &err.variant {
+            pest::error::ErrorVariant::ParsingError { positives, .. } => {
+                positives.iter().filter_map(|r| rule_words(*r)).collect()
+            }
+            pest::error::ErrorVariant::CustomError { .. } => Vec::new(),
+        }
     };
+    // An opening bracket is always possible after a name (a call); naming
+    // it helps only when it is the one thing missing.
+    expected.extend(punctuation.into_iter().filter(|w| moved || *w != "`(`"));
     expected.sort_unstable();
     expected.dedup();
     // Say the most useful thing: a statement subsumes comments and the end of
     // the file, an expression subsumes names and numbers.
+    // Inside a stage body only `set`, `flux` and `solver` lines may follow;
+    // the keywords of the last two would otherwise read as "a statement".
+    if expected.contains(&"a `set`, `flux` or `solver` line") {
+        expected.retain(|w| *w != "a statement");
+    }
     if expected.contains(&"a statement") {
         expected.retain(|w| *w != "a comment" && *w != "end of file" && *w != "end of line");
     }
@@ -125,17 +184,21 @@ fn syntax_problem(text: &str, err: &pest::error::Error<Rule>, pos: usize, file: 
     } else {
         format!("expected {}, found {found}", join_words(&expected))
     };
-    let end = text[pos..].chars().next().map_or(pos, |c| {
-        if c == '\n' || c == '\r' {
-            pos
-        } else {
-            pos + c.len_utf8()
+    // Mark the whole word that was found, or the one character.
+    let rest = &text[pos..];
+    let end = match rest.chars().next() {
+        None | Some('\n') | Some('\r') => pos,
+        Some(c) if c.is_alphanumeric() || c == '_' => {
+            pos + rest
+                .find(|c: char| !(c.is_alphanumeric() || c == '_' || c == '.'))
+                .unwrap_or(rest.len())
         }
-    });
+        Some(c) => pos + c.len_utf8(),
+    };
     let mut problem =
         Problem::error("H0101", message).label(Span::new(file, pos, end.max(pos)), "here");
     problem = problem.help(syntax_hint(text, pos, &expected));
-    problem
+    (pos, problem)
 }
 
 fn syntax_hint(text: &str, pos: usize, expected: &[&str]) -> String {
@@ -151,6 +214,13 @@ fn syntax_hint(text: &str, pos: usize, expected: &[&str]) -> String {
     if rest.starts_with("+-") || rest.starts_with('±') {
         return "`+-` belongs only in `expect NAME at AGE = VALUE +- SIGMA`".into();
     }
+    let at_line_end = rest.is_empty() || rest.starts_with(['\n', '\r']);
+    if expected.contains(&"`}`") && rest.trim().is_empty() {
+        return "a stage body ends with `}` on a line of its own".into();
+    }
+    if expected.contains(&"`)`") && at_line_end {
+        return "close every `(` with a `)` on the same line".into();
+    }
     if before.is_empty() {
         return "a line starts with a keyword: scenario, span, report, solver, include, const, param, table, reservoir, state, let, output, flux, event, expect or stage".into();
     }
@@ -158,7 +228,42 @@ fn syntax_hint(text: &str, pos: usize, expected: &[&str]) -> String {
         return "one statement per line; put a comment after `#`, and write a product with `*`"
             .into();
     }
-    "see docs/language.md for the form of each statement".into()
+    let first_word = before.split_whitespace().next().unwrap_or("");
+    match statement_form(first_word) {
+        Some(form) => {
+            let article = if first_word.starts_with(['a', 'e', 'i', 'o', 'u']) {
+                "an"
+            } else {
+                "a"
+            };
+            format!("{article} `{first_word}` line reads `{form}`; see docs/language.md")
+        }
+        None => "see docs/language.md for the form of each statement".into(),
+    }
+}
+
+/// The shape of each statement, for hints.
+fn statement_form(keyword: &str) -> Option<&'static str> {
+    Some(match keyword {
+        "scenario" => "scenario NAME \"title\"",
+        "span" => "span AGE to AGE",
+        "report" => "report every DURATION",
+        "solver" => "solver SETTING = VALUE",
+        "include" => "include \"file.hadal\"",
+        "const" => "const NAME = VALUE",
+        "param" => "param NAME = VALUE",
+        "let" => "let NAME = EXPR",
+        "event" => "event NAME = CONDITION",
+        "set" => "set NAME = VALUE",
+        "output" => "output NAME = EXPR in UNIT",
+        "table" => "table NAME = \"file.csv\" (X_UNIT, Y_UNIT)",
+        "reservoir" => "reservoir NAME = INITIAL, capacity = EXPR",
+        "state" => "state NAME = INITIAL, rate = EXPR",
+        "flux" => "flux NAME: FROM -> TO = RATE",
+        "stage" => "stage NAME from AGE to AGE {",
+        "expect" => "expect EXPR at AGE = VALUE +- SIGMA",
+        _ => return None,
+    })
 }
 
 fn describe_found(text: &str, pos: usize) -> String {

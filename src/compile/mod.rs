@@ -1,0 +1,626 @@
+//! Phase 4, compile: a checked model and one stage to flat programs over
+//! numbered registers.
+//!
+//! Invariant: the programs this module emits carry no names, no source text
+//! and no hash maps; evaluating one allocates nothing. Names survive only in
+//! side tables used to word diagnostics.
+
+pub mod hyps;
+
+use crate::model::{Builtin, DefId, DefKind, Endpoint, Expr, ExprKind, Model};
+use crate::numeric;
+use crate::span::Span;
+use crate::syntax::BinOp;
+use hyps::Hypsometry;
+
+type Reg = u32;
+
+/// One instruction: destination first.
+#[derive(Debug, Clone, Copy)]
+pub enum Ins {
+    Add(Reg, Reg, Reg),
+    Sub(Reg, Reg, Reg),
+    Mul(Reg, Reg, Reg),
+    Div(Reg, Reg, Reg),
+    Pow(Reg, Reg, Reg),
+    Square(Reg, Reg),
+    Other(BinOp, Reg, Reg, Reg),
+    Neg(Reg, Reg),
+    Not(Reg, Reg),
+    Select(Reg, Reg, Reg, Reg),
+    Exp(Reg, Reg),
+    Ln(Reg, Reg),
+    Log10(Reg, Reg),
+    Sqrt(Reg, Reg),
+    Abs(Reg, Reg),
+    Min(Reg, Reg, Reg),
+    Max(Reg, Reg, Reg),
+    Clamp(Reg, Reg, Reg, Reg),
+    Smoothstep(Reg, Reg, Reg, Reg),
+    /// q * 2^(age / half_life)
+    Decay(Reg, Reg, Reg),
+    Interp(Reg, u32, Reg),
+    SeaLevel(Reg, u32, Reg),
+    /// Sea level with the water load compensated: volume scaled by
+    /// (rho_m - rho_w) / rho_m.
+    SeaLevelIsostatic(Reg, u32, Reg, Reg, Reg),
+    LandFraction(Reg, u32, Reg),
+    BasinVolume(Reg, u32, Reg),
+    /// inventory / capacity
+    Fill(Reg, Reg, Reg),
+    /// max(0, inventory - capacity)
+    Excess(Reg, Reg, Reg),
+}
+
+/// What a compiled value is, for diagnostics.
+#[derive(Debug, Clone)]
+pub struct Probe {
+    pub reg: Reg,
+    pub def: DefId,
+    pub span: Span,
+}
+
+/// A compiled stage: the right-hand side of the ODE and observers.
+#[derive(Debug, Clone)]
+pub struct Program {
+    pub ins: Vec<Ins>,
+    /// Register file at start: state slots, clock, constants.
+    pub init: Vec<f64>,
+    /// Number of state components (reservoirs, then states).
+    pub n_state: usize,
+    /// Definition of each state component.
+    pub state_defs: Vec<DefId>,
+    /// Register of the current age and of the time since the span start.
+    pub age_reg: Reg,
+    pub time_reg: Reg,
+    /// Active fluxes: (rate register, from component, to component).
+    pub fluxes: Vec<(Reg, Option<usize>, Option<usize>)>,
+    pub flux_probes: Vec<Probe>,
+    /// State rates: (component, register).
+    pub rates: Vec<(usize, Reg)>,
+    pub rate_probes: Vec<Probe>,
+    /// Registers of observed definitions (outputs, events, expectations).
+    pub observed: Vec<(DefId, Reg)>,
+    /// Registers of extra observed expressions, in the order asked.
+    pub extra: Vec<Reg>,
+    tables: Vec<(Vec<f64>, Vec<f64>)>,
+    hyps: Vec<Hypsometry>,
+    /// Knots of age-indexed tables this program reads (breakpoints).
+    pub age_knots: Vec<f64>,
+}
+
+/// Mutable registers for one evaluator; allocated once per integration.
+#[derive(Debug, Clone)]
+pub struct Regs(pub Vec<f64>);
+
+impl Program {
+    pub fn regs(&self) -> Regs {
+        Regs(self.init.clone())
+    }
+
+    /// Run the program for state `y` at time `t` (years since the span start)
+    /// and age `age`.
+    #[inline]
+    pub fn eval(&self, regs: &mut Regs, y: &[f64], t: f64, age: f64) {
+        let r = &mut regs.0;
+        r[..self.n_state].copy_from_slice(&y[..self.n_state]);
+        r[self.age_reg as usize] = age;
+        r[self.time_reg as usize] = t;
+        for ins in &self.ins {
+            exec(self, r, *ins);
+        }
+    }
+
+    /// Right-hand side: derivatives of every component of `y`, including the
+    /// ledger of sources (index n_state) and sinks (n_state + 1).
+    #[inline]
+    pub fn rhs(&self, regs: &mut Regs, t: f64, age: f64, y: &[f64], dy: &mut [f64]) {
+        self.eval(regs, y, t, age);
+        let r = &regs.0;
+        for d in dy.iter_mut() {
+            *d = 0.0;
+        }
+        let (src, sink) = (self.n_state, self.n_state + 1);
+        for &(reg, from, to) in &self.fluxes {
+            let v = r[reg as usize];
+            match from {
+                Some(i) => dy[i] -= v,
+                None => dy[src] += v,
+            }
+            match to {
+                Some(i) => dy[i] += v,
+                None => dy[sink] += v,
+            }
+        }
+        for &(i, reg) in &self.rates {
+            dy[i] = r[reg as usize];
+        }
+    }
+
+    pub fn value(&self, regs: &Regs, reg: Reg) -> f64 {
+        regs.0[reg as usize]
+    }
+}
+
+#[inline(always)]
+fn exec(p: &Program, r: &mut [f64], ins: Ins) {
+    macro_rules! g {
+        ($x:expr) => {
+            r[$x as usize]
+        };
+    }
+    match ins {
+        Ins::Add(d, a, b) => g!(d) = g!(a) + g!(b),
+        Ins::Sub(d, a, b) => g!(d) = g!(a) - g!(b),
+        Ins::Mul(d, a, b) => g!(d) = g!(a) * g!(b),
+        Ins::Div(d, a, b) => g!(d) = g!(a) / g!(b),
+        Ins::Pow(d, a, b) => g!(d) = numeric::pow(g!(a), g!(b)),
+        Ins::Square(d, a) => g!(d) = g!(a) * g!(a),
+        Ins::Other(op, d, a, b) => g!(d) = numeric::binary(op, g!(a), g!(b)),
+        Ins::Neg(d, a) => g!(d) = -g!(a),
+        Ins::Not(d, a) => g!(d) = if g!(a) == 0.0 { 1.0 } else { 0.0 },
+        Ins::Select(d, c, a, b) => g!(d) = if g!(c) != 0.0 { g!(a) } else { g!(b) },
+        Ins::Exp(d, a) => g!(d) = libm::exp(g!(a)),
+        Ins::Ln(d, a) => g!(d) = libm::log(g!(a)),
+        Ins::Log10(d, a) => g!(d) = libm::log10(g!(a)),
+        Ins::Sqrt(d, a) => g!(d) = libm::sqrt(g!(a)),
+        Ins::Abs(d, a) => g!(d) = g!(a).abs(),
+        Ins::Min(d, a, b) => g!(d) = g!(a).min(g!(b)),
+        Ins::Max(d, a, b) => g!(d) = g!(a).max(g!(b)),
+        Ins::Clamp(d, x, lo, hi) => g!(d) = g!(x).max(g!(lo)).min(g!(hi)),
+        Ins::Smoothstep(d, x, e0, e1) => g!(d) = numeric::smoothstep(g!(x), g!(e0), g!(e1)),
+        Ins::Decay(d, q, h) => {
+            g!(d) = g!(q) * libm::exp2(r[p.age_reg as usize] / g!(h));
+        }
+        Ins::Interp(d, t, x) => {
+            let (xs, ys) = &p.tables[t as usize];
+            g!(d) = numeric::interp(xs, ys, g!(x));
+        }
+        Ins::SeaLevel(d, h, v) => g!(d) = p.hyps[h as usize].sea_level(g!(v)),
+        Ins::SeaLevelIsostatic(d, h, v, rw, rm) => {
+            let f = (g!(rm) - g!(rw)) / g!(rm);
+            g!(d) = p.hyps[h as usize].sea_level(g!(v) * f);
+        }
+        Ins::LandFraction(d, h, v) => g!(d) = p.hyps[h as usize].land_fraction(g!(v)),
+        Ins::BasinVolume(d, h, z) => g!(d) = p.hyps[h as usize].basin_volume(g!(z)),
+        Ins::Fill(d, m, c) => g!(d) = g!(m) / g!(c),
+        Ins::Excess(d, m, c) => g!(d) = (g!(m) - g!(c)).max(0.0),
+    }
+}
+
+/// What to compile besides the right-hand side.
+#[derive(Debug, Clone, Default)]
+pub struct Wants {
+    /// Compile the right-hand side (fluxes and rates).
+    pub rhs: bool,
+    /// Definitions whose values are observed.
+    pub defs: Vec<DefId>,
+    /// Extra expressions (e.g. expectation subjects).
+    pub exprs: Vec<Expr>,
+}
+
+/// Parameter values of a stage: every parameter's base value with the
+/// stage's `set` lines applied.
+pub fn stage_params(model: &Model, stage: Option<usize>) -> Vec<Option<f64>> {
+    let mut c = Compiler::new(model, vec![None; model.defs.len()]);
+    let mut params = vec![None; model.defs.len()];
+    for (id, d) in model.defs.iter().enumerate() {
+        if matches!(d.kind, DefKind::Param) {
+            params[id] = c.fold(&d.expr);
+        }
+    }
+    if let Some(s) = stage {
+        c.params = params.clone();
+        for (id, e) in &model.stages[s].sets {
+            params[*id] = c.fold(e);
+        }
+    }
+    params
+}
+
+/// Compile `wants` for stage `stage` (its parameter overrides and fluxes).
+pub fn compile(model: &Model, stage: Option<usize>, wants: &Wants) -> Program {
+    let params = stage_params(model, stage);
+    let mut c = Compiler::new(model, params);
+    c.build(stage, wants)
+}
+
+struct Compiler<'m> {
+    model: &'m Model,
+    params: Vec<Option<f64>>,
+    init: Vec<f64>,
+    is_const: Vec<bool>,
+    ins: Vec<Ins>,
+    def_reg: Vec<Option<Reg>>,
+    cap_reg: Vec<Option<Reg>>,
+    const_regs: Vec<(u64, Reg)>,
+    state_index: Vec<Option<usize>>,
+    age_reg: Reg,
+    time_reg: Reg,
+    tables: Vec<usize>,
+    age_knots: Vec<f64>,
+}
+
+impl<'m> Compiler<'m> {
+    fn new(model: &'m Model, params: Vec<Option<f64>>) -> Compiler<'m> {
+        let mut state_index = vec![None; model.defs.len()];
+        let mut n = 0;
+        for (id, _) in model.reservoirs().chain(model.states()) {
+            state_index[id] = Some(n);
+            n += 1;
+        }
+        // Order: reservoirs in definition order, then states.
+        let mut order: Vec<DefId> = model.reservoirs().map(|(i, _)| i).collect();
+        order.extend(model.states().map(|(i, _)| i));
+        for (k, id) in order.iter().enumerate() {
+            state_index[*id] = Some(k);
+        }
+        let mut init = vec![0.0; n + 2];
+        init[n] = 0.0;
+        let mut def_reg = vec![None; model.defs.len()];
+        for (k, id) in order.iter().enumerate() {
+            def_reg[*id] = Some(k as Reg);
+        }
+        let len = init.len();
+        Compiler {
+            model,
+            params,
+            is_const: vec![false; len],
+            init,
+            ins: Vec::new(),
+            def_reg,
+            cap_reg: vec![None; model.defs.len()],
+            const_regs: Vec::new(),
+            state_index,
+            age_reg: n as Reg,
+            time_reg: n as Reg + 1,
+            tables: Vec::new(),
+            age_knots: Vec::new(),
+        }
+    }
+
+    fn state_order(&self) -> Vec<DefId> {
+        let mut order: Vec<DefId> = self.model.reservoirs().map(|(i, _)| i).collect();
+        order.extend(self.model.states().map(|(i, _)| i));
+        order
+    }
+
+    fn build(&mut self, stage: Option<usize>, wants: &Wants) -> Program {
+        let model = self.model;
+        let mut fluxes = Vec::new();
+        let mut flux_probes = Vec::new();
+        let mut rates = Vec::new();
+        let mut rate_probes = Vec::new();
+        if wants.rhs {
+            for (id, d) in model.defs.iter().enumerate() {
+                if let DefKind::Flux {
+                    from,
+                    to,
+                    stage: fs,
+                } = d.kind
+                {
+                    if fs.is_some() && fs != stage {
+                        continue;
+                    }
+                    let reg = self.def(id);
+                    let ep = |e: Endpoint| match e {
+                        Endpoint::Reservoir(r) => self.state_index[r],
+                        Endpoint::Outside => None,
+                    };
+                    fluxes.push((reg, ep(from), ep(to)));
+                    flux_probes.push(Probe {
+                        reg,
+                        def: id,
+                        span: d.expr.span,
+                    });
+                }
+            }
+            for (id, d) in model.states() {
+                if let DefKind::State { rate } = &d.kind {
+                    let reg = self.expr(rate);
+                    let i = self.state_index[id].expect("states have components");
+                    rates.push((i, reg));
+                    rate_probes.push(Probe {
+                        reg,
+                        def: id,
+                        span: rate.span,
+                    });
+                }
+            }
+        }
+        let mut observed = Vec::new();
+        for &d in &wants.defs {
+            let reg = self.def(d);
+            observed.push((d, reg));
+        }
+        let extra = wants.exprs.iter().map(|e| self.expr(e)).collect();
+        let tables = self
+            .tables
+            .iter()
+            .map(|&t| (model.tables[t].xs.clone(), model.tables[t].ys.clone()))
+            .collect::<Vec<_>>();
+        let hyps = self
+            .tables
+            .iter()
+            .map(|&t| {
+                let tb = &model.tables[t];
+                Hypsometry::new(&tb.xs, &tb.ys)
+            })
+            .collect();
+        let mut age_knots = std::mem::take(&mut self.age_knots);
+        age_knots.sort_by(|a, b| b.total_cmp(a));
+        age_knots.dedup();
+        Program {
+            ins: std::mem::take(&mut self.ins),
+            init: std::mem::take(&mut self.init),
+            n_state: self.age_reg as usize,
+            state_defs: self.state_order(),
+            age_reg: self.age_reg,
+            time_reg: self.time_reg,
+            fluxes,
+            flux_probes,
+            rates,
+            rate_probes,
+            observed,
+            extra,
+            tables,
+            hyps,
+            age_knots,
+        }
+    }
+
+    fn constant(&mut self, v: f64) -> Reg {
+        let bits = v.to_bits();
+        if let Some(&(_, r)) = self.const_regs.iter().find(|(b, _)| *b == bits) {
+            return r;
+        }
+        let r = self.init.len() as Reg;
+        self.init.push(v);
+        self.is_const.push(true);
+        self.const_regs.push((bits, r));
+        r
+    }
+
+    fn temp(&mut self) -> Reg {
+        let r = self.init.len() as Reg;
+        self.init.push(0.0);
+        self.is_const.push(false);
+        r
+    }
+
+    fn konst(&self, r: Reg) -> Option<f64> {
+        if self.is_const[r as usize] {
+            Some(self.init[r as usize])
+        } else {
+            None
+        }
+    }
+
+    fn table(&mut self, t: usize) -> u32 {
+        if let Some(i) = self.tables.iter().position(|&x| x == t) {
+            return i as u32;
+        }
+        let tb = &self.model.tables[t];
+        if tb.x_dim.is_age() {
+            self.age_knots.extend(tb.xs.iter().copied());
+        }
+        self.tables.push(t);
+        (self.tables.len() - 1) as u32
+    }
+
+    /// The register holding a definition's value.
+    fn def(&mut self, id: DefId) -> Reg {
+        if let Some(r) = self.def_reg[id] {
+            return r;
+        }
+        let d = &self.model.defs[id];
+        let r = match d.kind {
+            DefKind::Param => match self.params[id] {
+                Some(v) => self.constant(v),
+                None => self.expr(&d.expr),
+            },
+            _ => self.expr(&d.expr),
+        };
+        self.def_reg[id] = Some(r);
+        r
+    }
+
+    fn capacity(&mut self, res: DefId) -> Reg {
+        if let Some(r) = self.cap_reg[res] {
+            return r;
+        }
+        let r = match &self.model.defs[res].kind {
+            DefKind::Reservoir { capacity: Some(c) } => self.expr(c),
+            _ => self.constant(f64::INFINITY),
+        };
+        self.cap_reg[res] = Some(r);
+        r
+    }
+
+    /// Fold a constant expression with the current parameter values.
+    fn fold(&mut self, e: &Expr) -> Option<f64> {
+        let r = self.expr(e);
+        self.konst(r)
+    }
+
+    fn emit(&mut self, ins: impl FnOnce(Reg) -> Ins, args: &[Reg]) -> Reg {
+        let dst = self.temp();
+        let ins = ins(dst);
+        if args.iter().all(|&a| self.is_const[a as usize]) {
+            // Every operand known now: evaluate once at compile time. Age and
+            // time are never constant, so clock-dependent code stays.
+            let mut scratch = self.init.clone();
+            let probe = Program {
+                ins: Vec::new(),
+                init: Vec::new(),
+                n_state: 0,
+                state_defs: Vec::new(),
+                age_reg: self.age_reg,
+                time_reg: self.time_reg,
+                fluxes: Vec::new(),
+                flux_probes: Vec::new(),
+                rates: Vec::new(),
+                rate_probes: Vec::new(),
+                observed: Vec::new(),
+                extra: Vec::new(),
+                tables: self
+                    .tables
+                    .iter()
+                    .map(|&t| {
+                        (
+                            self.model.tables[t].xs.clone(),
+                            self.model.tables[t].ys.clone(),
+                        )
+                    })
+                    .collect(),
+                hyps: self
+                    .tables
+                    .iter()
+                    .map(|&t| Hypsometry::new(&self.model.tables[t].xs, &self.model.tables[t].ys))
+                    .collect(),
+                age_knots: Vec::new(),
+            };
+            exec(&probe, &mut scratch, ins);
+            let v = scratch[dst as usize];
+            // Drop the temporary and share the constant.
+            self.init.pop();
+            self.is_const.pop();
+            return self.constant(v);
+        }
+        self.ins.push(ins);
+        dst
+    }
+
+    fn expr(&mut self, e: &Expr) -> Reg {
+        match &e.kind {
+            ExprKind::Num(v) => self.constant(*v),
+            ExprKind::Ref(d) => match self.model.defs[*d].kind {
+                DefKind::Reservoir { .. } | DefKind::State { .. } => {
+                    self.def_reg[*d].expect("state register")
+                }
+                _ => self.def(*d),
+            },
+            ExprKind::Age => self.age_reg,
+            ExprKind::Time => self.time_reg,
+            ExprKind::Neg(x) => {
+                let a = self.expr(x);
+                self.emit(|d| Ins::Neg(d, a), &[a])
+            }
+            ExprKind::Not(x) => {
+                let a = self.expr(x);
+                self.emit(|d| Ins::Not(d, a), &[a])
+            }
+            ExprKind::Binary(op, x, y) => {
+                let a = self.expr(x);
+                let b = self.expr(y);
+                let op = *op;
+                if op == BinOp::Pow && self.konst(b) == Some(2.0) {
+                    return self.emit(|d| Ins::Square(d, a), &[a]);
+                }
+                self.emit(
+                    |d| match op {
+                        BinOp::Add => Ins::Add(d, a, b),
+                        BinOp::Sub => Ins::Sub(d, a, b),
+                        BinOp::Mul => Ins::Mul(d, a, b),
+                        BinOp::Div => Ins::Div(d, a, b),
+                        BinOp::Pow => Ins::Pow(d, a, b),
+                        other => Ins::Other(other, d, a, b),
+                    },
+                    &[a, b],
+                )
+            }
+            ExprKind::If(c, x, y) => {
+                let c = self.expr(c);
+                if let Some(cv) = self.konst(c) {
+                    return if cv != 0.0 {
+                        self.expr(x)
+                    } else {
+                        self.expr(y)
+                    };
+                }
+                let a = self.expr(x);
+                let b = self.expr(y);
+                self.emit(|d| Ins::Select(d, c, a, b), &[c, a, b])
+            }
+            ExprKind::Call(f, args) => self.call(*f, args),
+        }
+    }
+
+    fn call(&mut self, f: Builtin, args: &[Expr]) -> Reg {
+        let regs: Vec<Reg> = args.iter().map(|a| self.expr(a)).collect();
+        let r = |i: usize| regs[i];
+        match f {
+            Builtin::Exp => self.emit(|d| Ins::Exp(d, r(0)), &regs),
+            Builtin::Ln => self.emit(|d| Ins::Ln(d, r(0)), &regs),
+            Builtin::Log10 => self.emit(|d| Ins::Log10(d, r(0)), &regs),
+            Builtin::Sqrt => self.emit(|d| Ins::Sqrt(d, r(0)), &regs),
+            Builtin::Abs => self.emit(|d| Ins::Abs(d, r(0)), &regs),
+            Builtin::Min | Builtin::Max => {
+                let mut acc = r(0);
+                for &b in &regs[1..] {
+                    let a = acc;
+                    acc = if f == Builtin::Min {
+                        self.emit(|d| Ins::Min(d, a, b), &[a, b])
+                    } else {
+                        self.emit(|d| Ins::Max(d, a, b), &[a, b])
+                    };
+                }
+                acc
+            }
+            Builtin::Clamp => self.emit(|d| Ins::Clamp(d, r(0), r(1), r(2)), &regs),
+            Builtin::Smoothstep => self.emit(|d| Ins::Smoothstep(d, r(0), r(1), r(2)), &regs),
+            Builtin::Decay => {
+                let (q, h) = (r(0), r(1));
+                let age = self.age_reg;
+                self.emit(|d| Ins::Decay(d, q, h), &[q, h, age])
+            }
+            Builtin::Interp(t) => {
+                let t = self.table(t);
+                self.emit(|d| Ins::Interp(d, t, r(0)), &regs)
+            }
+            Builtin::SeaLevel(t) => {
+                let t = self.table(t);
+                self.emit(|d| Ins::SeaLevel(d, t, r(0)), &regs)
+            }
+            Builtin::SeaLevelIsostatic(t) => {
+                let t = self.table(t);
+                self.emit(|d| Ins::SeaLevelIsostatic(d, t, r(0), r(1), r(2)), &regs)
+            }
+            Builtin::LandFraction(t) => {
+                let t = self.table(t);
+                self.emit(|d| Ins::LandFraction(d, t, r(0)), &regs)
+            }
+            Builtin::BasinVolume(t) => {
+                let t = self.table(t);
+                self.emit(|d| Ins::BasinVolume(d, t, r(0)), &regs)
+            }
+            Builtin::Capacity(res) => self.capacity(res),
+            Builtin::Fill(res) | Builtin::Excess(res) => {
+                let m = self.def_reg[res].expect("reservoir register");
+                let c = self.capacity(res);
+                if matches!(f, Builtin::Fill(_)) {
+                    self.emit(|d| Ins::Fill(d, m, c), &[m, c])
+                } else {
+                    self.emit(|d| Ins::Excess(d, m, c), &[m, c])
+                }
+            }
+        }
+    }
+}
+
+/// Initial state: every reservoir's initial inventory and every state's
+/// initial value, with the first stage's parameters.
+pub fn initial_state(model: &Model) -> Vec<f64> {
+    let stage = if model.stages.is_empty() {
+        None
+    } else {
+        Some(0)
+    };
+    let params = stage_params(model, stage);
+    let mut c = Compiler::new(model, params);
+    let order = c.state_order();
+    order
+        .iter()
+        .map(|&id| c.fold(&model.defs[id].expr).unwrap_or(f64::NAN))
+        .collect()
+}

@@ -1,0 +1,198 @@
+//! Phase 6, report: derived quantities over the solved series, and the
+//! files a modeler opens (series and per-stage CSV).
+//!
+//! Invariant: reads solved states and the model's output definitions only;
+//! it never integrates. Numbers are written in shortest round-trip form, so
+//! reading a CSV back gives the same bits.
+
+use crate::compile::{self, Wants};
+use crate::diagnostic::Problem;
+use crate::model::{DefId, DefKind, Model};
+use crate::solve::Run;
+use crate::units::{self, Unit};
+
+/// One column of the series.
+#[derive(Debug, Clone)]
+pub struct Column {
+    pub name: String,
+    /// UDUNITS-style unit string.
+    pub unit: String,
+    pub def: Option<DefId>,
+    display: Unit,
+}
+
+/// The report table: one row per report age.
+#[derive(Debug, Clone)]
+pub struct Series {
+    pub columns: Vec<Column>,
+    /// Row-major values in display units; the first column is the age in Ga.
+    pub rows: Vec<Vec<f64>>,
+}
+
+fn column_for(model: &Model, id: DefId) -> Column {
+    let d = &model.defs[id];
+    let (unit_text, display) = match &d.display_unit {
+        Some((text, unit)) if matches!(d.kind, DefKind::Output | DefKind::State { .. }) => {
+            (units::udunits(text), *unit)
+        }
+        _ => {
+            let (name, unit) = units::display_unit(d.dim);
+            if name.is_empty() {
+                (d.dim.internal_unit(), unit)
+            } else {
+                (name.to_owned(), unit)
+            }
+        }
+    };
+    Column {
+        name: d.name.clone(),
+        unit: unit_text,
+        def: Some(id),
+        display,
+    }
+}
+
+/// Columns: age, reservoirs, states, outputs (each in definition order).
+pub fn columns(model: &Model) -> Vec<Column> {
+    let mut cols = vec![Column {
+        name: "age".into(),
+        unit: "Ga".into(),
+        def: None,
+        display: units::lookup("Ga").expect("Ga is a unit"),
+    }];
+    for (id, _) in model.reservoirs() {
+        cols.push(column_for(model, id));
+    }
+    for (id, _) in model.states() {
+        cols.push(column_for(model, id));
+    }
+    for (id, d) in model.defs.iter().enumerate() {
+        if matches!(d.kind, DefKind::Output) {
+            cols.push(column_for(model, id));
+        }
+    }
+    cols
+}
+
+/// Evaluate outputs on every reported row.
+pub fn series(model: &Model, run: &Run) -> Result<Series, Problem> {
+    let columns = columns(model);
+    let outputs: Vec<DefId> = columns.iter().filter_map(|c| c.def).collect();
+    let mut rows = Vec::new();
+    for sr in &run.stages {
+        let prog = compile::compile(
+            model,
+            Some(sr.stage),
+            &Wants {
+                rhs: false,
+                defs: outputs.clone(),
+                exprs: Vec::new(),
+            },
+        );
+        let mut regs = prog.regs();
+        for (age, y) in &sr.rows {
+            prog.eval(&mut regs, y, model.start_age - age, *age);
+            let mut row = Vec::with_capacity(columns.len());
+            row.push(columns[0].display.from_internal(*age));
+            for (k, &(def, reg)) in prog.observed.iter().enumerate() {
+                let v = prog.value(&regs, reg);
+                if !v.is_finite() {
+                    let d = &model.defs[def];
+                    return Err(Problem::error(
+                        "H0605",
+                        format!(
+                            "`{}` is {} at {} Ga",
+                            d.name,
+                            if v.is_nan() { "not a number (NaN)" } else { "infinite" },
+                            age / 1e9
+                        ),
+                    )
+                    .label(d.expr.span, "evaluates to a non-finite number")
+                    .help("nothing non-finite is written to a CSV; guard the expression (e.g. `max(x, 1e-30 kg)` before dividing)"));
+                }
+                row.push(columns[k + 1].display.from_internal(v));
+            }
+            rows.push(row);
+        }
+    }
+    Ok(Series { columns, rows })
+}
+
+pub fn fmt_num(v: f64) -> String {
+    if v == 0.0 {
+        return "0".into();
+    }
+    let mut b = ryu::Buffer::new();
+    let s = b.format(v);
+    s.strip_suffix(".0").unwrap_or(s).to_owned()
+}
+
+impl Series {
+    /// The CSV text: a header `name [unit]` per column, then one row per age.
+    pub fn to_csv(&self) -> Vec<u8> {
+        let mut w = csv::WriterBuilder::new()
+            .terminator(csv::Terminator::Any(b'\n'))
+            .from_writer(Vec::new());
+        let header: Vec<String> = self
+            .columns
+            .iter()
+            .map(|c| format!("{} [{}]", c.name, c.unit))
+            .collect();
+        let _ = w.write_record(&header);
+        for row in &self.rows {
+            let _ = w.write_record(row.iter().map(|v| fmt_num(*v)));
+        }
+        w.into_inner().unwrap_or_default()
+    }
+
+    pub fn column(&self, name: &str) -> Option<usize> {
+        self.columns.iter().position(|c| c.name == name)
+    }
+}
+
+/// The per-stage table. Wall time is left out so the file is identical on
+/// every run; it is shown in the command's summary instead.
+pub fn stages_csv(model: &Model, run: &Run) -> Vec<u8> {
+    let mut w = csv::WriterBuilder::new()
+        .terminator(csv::Terminator::Any(b'\n'))
+        .from_writer(Vec::new());
+    let _ = w.write_record([
+        "stage",
+        "from [Ga]",
+        "to [Ga]",
+        "method",
+        "accepted_steps",
+        "rejected_steps",
+        "rhs_evaluations",
+        "jacobians",
+        "closure_error",
+    ]);
+    for sr in &run.stages {
+        let st = &model.stages[sr.stage];
+        let _ = w.write_record([
+            st.name.clone(),
+            fmt_num(st.start_age / 1e9),
+            fmt_num(st.end_age / 1e9),
+            sr.method.clone(),
+            sr.stats.accepted.to_string(),
+            sr.stats.rejected.to_string(),
+            sr.stats.rhs_evals.to_string(),
+            sr.stats.jacobians.to_string(),
+            fmt_num(sr.closure_error),
+        ]);
+    }
+    w.into_inner().unwrap_or_default()
+}
+
+/// The events table: name and first age (empty when it never happened).
+pub fn events_csv(model: &Model, run: &Run) -> Vec<u8> {
+    let mut w = csv::WriterBuilder::new()
+        .terminator(csv::Terminator::Any(b'\n'))
+        .from_writer(Vec::new());
+    let _ = w.write_record(["event", "first_age [Ga]"]);
+    for (k, &d) in run.event_defs.iter().enumerate() {
+        let age = run.events[k].map(|a| fmt_num(a / 1e9)).unwrap_or_default();
+        let _ = w.write_record([model.defs[d].name.clone(), age]);
+    }
+    w.into_inner().unwrap_or_default()
+}

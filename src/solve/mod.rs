@@ -1,0 +1,511 @@
+//! Phase 5, solve: integrate a compiled model stage by stage.
+//!
+//! Invariant: the integrators see numbers and slots only; names appear only
+//! when a failure is worded as a diagnostic, through the model's side tables.
+
+pub mod linalg;
+pub mod methods;
+
+use std::time::{Duration, Instant};
+
+use crate::compile::{self, Program, Regs, Wants};
+use crate::diagnostic::Problem;
+use crate::model::{DefId, DefKind, Method, Model};
+use methods::{Control, Dense, Failure, Observer, Stats, Stop, System};
+
+/// Version of the numeric engine: bump whenever a change to compile or
+/// solve can change any result bit, so cached stages are not reused.
+pub const ENGINE_VERSION: u32 = 1;
+
+/// The state carried between stages: every reservoir and state component,
+/// then the ledger of water delivered from outside and lost to outside.
+#[derive(Debug, Clone, PartialEq)]
+pub struct State(pub Vec<f64>);
+
+impl State {
+    pub fn to_bytes(&self) -> Vec<u8> {
+        self.0.iter().flat_map(|v| v.to_le_bytes()).collect()
+    }
+}
+
+/// The outcome of one stage.
+#[derive(Debug, Clone)]
+pub struct StageRun {
+    pub stage: usize,
+    /// Report rows produced by this stage: (age, state at that age).
+    pub rows: Vec<(f64, Vec<f64>)>,
+    pub end: State,
+    pub stats: Stats,
+    /// "explicit", "implicit" or "explicit, then implicit from X Ga".
+    pub method: String,
+    /// |total(end) - total(start)| / total(start) with the ledger included.
+    pub closure_error: f64,
+    /// First age at which each event (by index into `Run::event_defs`)
+    /// became true within this stage, if it did.
+    pub events: Vec<Option<f64>>,
+    pub wall: Duration,
+}
+
+/// The whole run.
+#[derive(Debug, Clone)]
+pub struct Run {
+    pub stages: Vec<StageRun>,
+    pub event_defs: Vec<DefId>,
+    /// First age of each event over the whole run.
+    pub events: Vec<Option<f64>>,
+}
+
+/// The ages at which rows are reported: from the span start every cadence,
+/// and the span end.
+pub fn report_ages(model: &Model) -> Vec<f64> {
+    let mut ages = Vec::new();
+    let span = model.start_age - model.end_age;
+    let n = (span / model.cadence).floor() as u64;
+    for k in 0..=n {
+        let a = model.start_age - k as f64 * model.cadence;
+        if a < model.end_age + 1e-9 * model.cadence {
+            break;
+        }
+        ages.push(a);
+    }
+    if ages
+        .last()
+        .is_none_or(|&a| a - model.end_age > 1e-9 * model.cadence)
+    {
+        ages.push(model.end_age);
+    }
+    ages
+}
+
+/// Rows of stage `s`: ages in [end, start], excluding ones an earlier stage
+/// produced (its end age).
+fn stage_rows(model: &Model, s: usize, ages: &[f64]) -> Vec<f64> {
+    let st = &model.stages[s];
+    ages.iter()
+        .copied()
+        .filter(|&a| a <= st.start_age && a >= st.end_age && (s == 0 || a < st.start_age))
+        .collect()
+}
+
+/// The initial state of the run (ledger at zero).
+pub fn initial_state(model: &Model) -> State {
+    let mut y = compile::initial_state(model);
+    y.push(0.0);
+    y.push(0.0);
+    State(y)
+}
+
+struct Sys<'p> {
+    prog: &'p Program,
+    regs: Regs,
+    start_age: f64,
+}
+
+impl System for Sys<'_> {
+    fn dim(&self) -> usize {
+        self.prog.n_state + 2
+    }
+    #[inline]
+    fn rhs(&mut self, t: f64, y: &[f64], dy: &mut [f64]) -> bool {
+        self.prog.rhs(&mut self.regs, t, self.start_age - t, y, dy);
+        dy.iter().all(|v| v.is_finite())
+    }
+}
+
+struct Obs<'a> {
+    start_age: f64,
+    rows: Vec<f64>,
+    next_row: usize,
+    out: Vec<(f64, Vec<f64>)>,
+    scratch: Vec<f64>,
+    n_res: usize,
+    /// Smallest value a reservoir may take before it counts as negative.
+    floor: f64,
+    negative: Option<(usize, f64, f64)>,
+    events: Option<EventWatch<'a>>,
+}
+
+/// Event conditions watched over a stage: their program, registers, the
+/// value at the last accepted step, and the first age each became true.
+struct EventWatch<'a> {
+    prog: &'a Program,
+    regs: Regs,
+    prev: Vec<f64>,
+    first: Vec<Option<f64>>,
+}
+
+impl Observer for Obs<'_> {
+    fn accepted(&mut self, t0: f64, t1: f64, y1: &[f64], dense: &Dense) -> Result<(), Stop> {
+        while self.next_row < self.rows.len() {
+            let age = self.rows[self.next_row];
+            let t = self.start_age - age;
+            if t > t1 + 1e-9 * (t1 - t0).abs() {
+                break;
+            }
+            let y = if (t - t1).abs() <= 1e-12 * t1.abs().max(1.0) {
+                y1.to_vec()
+            } else {
+                dense.eval(t, &mut self.scratch);
+                self.scratch.clone()
+            };
+            self.out.push((age, y));
+            self.next_row += 1;
+        }
+        if let Some(i) = y1[..self.n_res].iter().position(|&v| v < self.floor) {
+            self.negative = Some((i, self.start_age - t1, y1[i]));
+            return Err(Stop);
+        }
+        if let Some(EventWatch {
+            prog,
+            regs,
+            prev,
+            first,
+        }) = &mut self.events
+        {
+            prog.eval(regs, y1, t1, self.start_age - t1);
+            for (k, &(_, reg)) in prog.observed.iter().enumerate() {
+                let now = regs.0[reg as usize];
+                if first[k].is_none() && prev[k] == 0.0 && now != 0.0 {
+                    // Locate the flip by bisection on the interpolant.
+                    let (mut lo, mut hi) = (t0, t1);
+                    for _ in 0..60 {
+                        let mid = 0.5 * (lo + hi);
+                        if mid <= lo || mid >= hi {
+                            break;
+                        }
+                        dense.eval(mid, &mut self.scratch);
+                        prog.eval(regs, &self.scratch, mid, self.start_age - mid);
+                        if regs.0[reg as usize] != 0.0 {
+                            hi = mid;
+                        } else {
+                            lo = mid;
+                        }
+                    }
+                    first[k] = Some(self.start_age - hi);
+                    prog.eval(regs, y1, t1, self.start_age - t1);
+                }
+                prev[k] = regs.0[reg as usize];
+            }
+        }
+        Ok(())
+    }
+}
+
+fn ga(age: f64) -> String {
+    let g = age / 1e9;
+    if g.abs() >= 0.01 || g == 0.0 {
+        format!("{g:.4} Ga")
+    } else {
+        format!("{:.4} Ma", age / 1e6)
+    }
+}
+
+/// Every event definition, in definition order.
+pub fn event_defs(model: &Model) -> Vec<DefId> {
+    model
+        .defs
+        .iter()
+        .enumerate()
+        .filter(|(_, d)| matches!(d.kind, DefKind::Event))
+        .map(|(i, _)| i)
+        .collect()
+}
+
+/// Total water: reservoirs plus what left minus what arrived.
+fn water_total(model: &Model, y: &[f64]) -> f64 {
+    let n_res = model.reservoirs().count();
+    let n = y.len();
+    y[..n_res].iter().sum::<f64>() + y[n - 1] - y[n - 2]
+}
+
+/// Integrate stage `s` from state `start`. `events_done` says which events
+/// already happened in earlier stages (they are not looked for again).
+pub fn solve_stage(
+    model: &Model,
+    s: usize,
+    start: &State,
+    events_done: &[bool],
+) -> Result<StageRun, Problem> {
+    let clock = Instant::now();
+    let st = &model.stages[s];
+    let prog = compile::compile(
+        model,
+        Some(s),
+        &Wants {
+            rhs: true,
+            ..Default::default()
+        },
+    );
+    let event_ids = event_defs(model);
+    let event_prog = compile::compile(
+        model,
+        Some(s),
+        &Wants {
+            rhs: false,
+            defs: event_ids.clone(),
+            exprs: Vec::new(),
+        },
+    );
+    let n = prog.n_state + 2;
+    let n_res = model.reservoirs().count();
+    let total0 = water_total(model, &start.0);
+    let mass_scale = start.0[..n_res]
+        .iter()
+        .map(|v| v.abs())
+        .sum::<f64>()
+        .max(1.0);
+    let mut atol = vec![0.0; n];
+    for (i, a) in atol.iter_mut().enumerate() {
+        let scale = if i < n_res || i >= prog.n_state {
+            mass_scale
+        } else {
+            start.0[i].abs().max(1e-300)
+        };
+        *a = st.solver.atol * scale;
+    }
+    let span_t0 = model.start_age - st.start_age;
+    let span_t1 = model.start_age - st.end_age;
+    let ctl = Control {
+        rtol: st.solver.rtol,
+        atol,
+        n_err: prog.n_state,
+        max_step: st.solver.max_step.unwrap_or(f64::INFINITY),
+        initial_step: st.solver.initial_step,
+        max_steps: st.solver.max_steps,
+        method: st.solver.method,
+    };
+    let mut y = start.0.clone();
+    let ages = report_ages(model);
+    let rows = stage_rows(model, s, &ages);
+    // Events already true at the very start of the run count at the start.
+    let mut first: Vec<Option<f64>> = vec![None; event_ids.len()];
+    let mut prev = vec![0.0; event_ids.len()];
+    let mut eregs = event_prog.regs();
+    event_prog.eval(&mut eregs, &y, span_t0, st.start_age);
+    for (k, &(_, reg)) in event_prog.observed.iter().enumerate() {
+        prev[k] = eregs.0[reg as usize];
+        if events_done.get(k).copied().unwrap_or(false) {
+            prev[k] = 1.0;
+        } else if s == 0 && prev[k] != 0.0 {
+            first[k] = Some(st.start_age);
+        }
+    }
+    let mut obs = Obs {
+        start_age: model.start_age,
+        rows,
+        next_row: 0,
+        out: Vec::new(),
+        scratch: vec![0.0; n],
+        n_res,
+        floor: -(st.solver.atol * mass_scale).max(1e-9 * mass_scale * st.solver.rtol),
+        negative: None,
+        events: Some(EventWatch {
+            prog: &event_prog,
+            regs: eregs,
+            prev,
+            first,
+        }),
+    };
+    // The first row of the run is the initial state itself.
+    if s == 0 && obs.rows.first() == Some(&st.start_age) {
+        obs.out.push((st.start_age, y.clone()));
+        obs.next_row = 1;
+    }
+    // Breakpoints: knots of age tables inside the stage.
+    let mut cuts: Vec<f64> = prog
+        .age_knots
+        .iter()
+        .copied()
+        .filter(|&a| a < st.start_age && a > st.end_age)
+        .map(|a| model.start_age - a)
+        .collect();
+    cuts.sort_by(f64::total_cmp);
+    cuts.push(span_t1);
+    let mut sys = Sys {
+        prog: &prog,
+        regs: prog.regs(),
+        start_age: model.start_age,
+    };
+    let mut stats = Stats::default();
+    let mut t = span_t0;
+    for &cut in &cuts {
+        if cut <= t {
+            continue;
+        }
+        let mut seg = Stats::default();
+        let r = methods::integrate(&mut sys, t, cut, &mut y, &ctl, &mut obs, &mut seg);
+        stats.add(&seg);
+        if let Err(f) = r {
+            return Err(failure_problem(model, s, &prog, &mut sys, f, &obs, &y));
+        }
+        t = cut;
+    }
+    let total1 = water_total(model, &y);
+    let closure_error = if total0.abs() > 0.0 {
+        (total1 - total0).abs() / total0.abs()
+    } else {
+        (total1 - total0).abs()
+    };
+    let method = match (
+        stats.explicit_steps > 0,
+        stats.implicit_steps > 0,
+        stats.switched_at,
+    ) {
+        (true, true, Some(t)) => {
+            format!("explicit, then implicit from {}", ga(model.start_age - t))
+        }
+        (_, true, _) => "implicit".to_owned(),
+        _ => "explicit".to_owned(),
+    };
+    let events = obs.events.take().map(|e| e.first).unwrap_or_default();
+    Ok(StageRun {
+        stage: s,
+        rows: obs.out,
+        end: State(y),
+        stats,
+        method,
+        closure_error,
+        events,
+        wall: clock.elapsed(),
+    })
+}
+
+fn failure_problem(
+    model: &Model,
+    s: usize,
+    prog: &Program,
+    sys: &mut Sys,
+    f: Failure,
+    obs: &Obs,
+    y: &[f64],
+) -> Problem {
+    let stage = &model.stages[s].name;
+    if let Some((i, age, v)) = obs.negative {
+        let def = &model.defs[prog.state_defs[i]];
+        return Problem::error(
+            "H0602",
+            format!("reservoir `{}` went below zero ({v:.3e} kg) at {} in stage `{stage}`", def.name, ga(age)),
+        )
+        .label(def.span, "this reservoir ran dry")
+        .help("an outgoing flux does not stop when the reservoir is empty; scale it by the inventory (e.g. `k * R`) or by `fill(R)`");
+    }
+    match f {
+        Failure::NonFinite { t } | Failure::StepCollapse { t, .. } if nonfinite_culprit(sys, t, y).is_some() => {
+            let (probe_def, span, value) = nonfinite_culprit(sys, t, y).expect("checked above");
+            let d = &model.defs[probe_def];
+            Problem::error(
+                "H0601",
+                format!(
+                    "the {} `{}` is {} at {} in stage `{stage}`",
+                    if matches!(d.kind, DefKind::Flux { .. }) { "rate of flux" } else { "rate of state" },
+                    d.name,
+                    if value.is_nan() { "not a number (NaN)" } else { "infinite" },
+                    ga(model.start_age - t)
+                ),
+            )
+            .label(span, "evaluates to a non-finite number here")
+            .help("look for a division by zero, the logarithm or square root of a negative value, or an overflowing exponential")
+        }
+        Failure::NonFinite { t } => Problem::error(
+            "H0601",
+            format!("the solution stopped being finite at {} in stage `{stage}`", ga(model.start_age - t)),
+        )
+        .label(model.stages[s].span, "in this stage")
+        .help("a rate grows without bound; check exponents and divisions in the fluxes"),
+        Failure::StepCollapse { t, h } => {
+            let (name, span) = stiffest(model, prog, sys, t, y);
+            Problem::error(
+                "H0603",
+                format!(
+                    "the step size collapsed to {h:.3e} yr at {} in stage `{stage}`",
+                    ga(model.start_age - t)
+                ),
+            )
+            .label(span, format!("the fastest-changing term: `{name}`"))
+            .help("if this term relaxes quickly, set `solver method = implicit` in the stage; if it jumps, smooth it (e.g. `smoothstep`)")
+        }
+        Failure::Budget { t } => Problem::error(
+            "H0604",
+            format!(
+                "stage `{stage}` used its budget of {} steps by {}",
+                model.stages[s].solver.max_steps,
+                ga(model.start_age - t)
+            ),
+        )
+        .label(model.stages[s].span, "this stage")
+        .help("raise `solver max_steps`, loosen `solver rtol`, or use `solver method = implicit` for stiff stages"),
+    }
+}
+
+fn nonfinite_culprit(sys: &mut Sys, t: f64, y: &[f64]) -> Option<(DefId, crate::span::Span, f64)> {
+    let prog = sys.prog;
+    prog.eval(&mut sys.regs, y, t, sys.start_age - t);
+    for p in prog.flux_probes.iter().chain(&prog.rate_probes) {
+        let v = prog.value(&sys.regs, p.reg);
+        if !v.is_finite() {
+            return Some((p.def, p.span, v));
+        }
+    }
+    None
+}
+
+/// The state component whose own derivative is most sensitive to it.
+fn stiffest(
+    model: &Model,
+    prog: &Program,
+    sys: &mut Sys,
+    t: f64,
+    y: &[f64],
+) -> (String, crate::span::Span) {
+    let n = y.len();
+    let mut f0 = vec![0.0; n];
+    let mut f1 = vec![0.0; n];
+    let mut z = y.to_vec();
+    sys.rhs(t, y, &mut f0);
+    let mut best = (0.0, 0usize);
+    for i in 0..prog.n_state {
+        let d = 1e-7 * y[i].abs().max(1e-30);
+        z[i] = y[i] + d;
+        sys.rhs(t, &z, &mut f1);
+        z[i] = y[i];
+        let j = ((f1[i] - f0[i]) / d).abs();
+        if j > best.0 {
+            best = (j, i);
+        }
+    }
+    let def = &model.defs[prog.state_defs[best.1]];
+    (def.name.clone(), def.span)
+}
+
+/// Integrate every stage in order.
+pub fn solve(model: &Model) -> Result<Run, Problem> {
+    let mut state = initial_state(model);
+    let event_ids = event_defs(model);
+    let mut events: Vec<Option<f64>> = vec![None; event_ids.len()];
+    let mut stages = Vec::new();
+    for s in 0..model.stages.len() {
+        let done: Vec<bool> = events.iter().map(Option::is_some).collect();
+        let run = solve_stage(model, s, &state, &done)?;
+        for (k, e) in run.events.iter().enumerate() {
+            if events[k].is_none() {
+                events[k] = *e;
+            }
+        }
+        state = run.end.clone();
+        stages.push(run);
+    }
+    Ok(Run {
+        stages,
+        event_defs: event_ids,
+        events,
+    })
+}
+
+/// Whether a stage's method setting is explicit only (for reports).
+pub fn method_word(m: Method) -> &'static str {
+    match m {
+        Method::Auto => "auto",
+        Method::Explicit => "explicit",
+        Method::Implicit => "implicit",
+    }
+}
