@@ -174,24 +174,30 @@ impl From<Span> for SourceSpan {
     }
 }
 
-/// Levenshtein distance, for "did you mean" suggestions.
+/// Edit distance for "did you mean" suggestions: insertions, deletions,
+/// substitutions and swaps of two neighbouring characters each cost one
+/// (optimal string alignment), so `ocaen` is one edit from `ocean`.
 pub fn edit_distance(a: &str, b: &str) -> usize {
+    let a: Vec<char> = a.chars().collect();
     let b: Vec<char> = b.chars().collect();
-    let mut row: Vec<usize> = (0..=b.len()).collect();
-    for (i, ca) in a.chars().enumerate() {
-        let mut prev = row[0];
-        row[0] = i + 1;
-        for (j, cb) in b.iter().enumerate() {
-            let cur = row[j + 1];
-            row[j + 1] = if ca == *cb {
-                prev
-            } else {
-                1 + prev.min(row[j]).min(row[j + 1])
-            };
-            prev = cur;
+    // Three rows: i-2, i-1 and i.
+    let mut before: Vec<usize> = vec![0; b.len() + 1];
+    let mut prev: Vec<usize> = (0..=b.len()).collect();
+    let mut cur: Vec<usize> = vec![0; b.len() + 1];
+    for i in 1..=a.len() {
+        cur[0] = i;
+        for j in 1..=b.len() {
+            let cost = usize::from(a[i - 1] != b[j - 1]);
+            let mut d = (prev[j] + 1).min(cur[j - 1] + 1).min(prev[j - 1] + cost);
+            if i > 1 && j > 1 && a[i - 1] == b[j - 2] && a[i - 2] == b[j - 1] {
+                d = d.min(before[j - 2] + 1);
+            }
+            cur[j] = d;
         }
+        std::mem::swap(&mut before, &mut prev);
+        std::mem::swap(&mut prev, &mut cur);
     }
-    row[b.len()]
+    prev[b.len()]
 }
 
 /// The closest candidate to `name`, if it is close enough to be a likely typo.
@@ -200,10 +206,43 @@ pub fn nearest<'a>(name: &str, candidates: impl IntoIterator<Item = &'a str>) ->
     let mut best: Option<(usize, &str)> = None;
     for cand in candidates {
         let d = edit_distance(&lower, &cand.to_lowercase());
-        let limit = (name.chars().count().max(cand.chars().count()) / 3).max(1);
+        // About one edit in three characters; a one-letter name is
+        // matched only up to case, since every other letter is one edit away.
+        let longest = name.chars().count().max(cand.chars().count());
+        let limit = if longest <= 1 {
+            0
+        } else {
+            (longest / 3).max(1)
+        };
         if d <= limit && best.is_none_or(|(bd, bc)| d < bd || (d == bd && cand < bc)) {
             best = Some((d, cand));
         }
     }
     best.map(|(_, c)| c)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn edit_distance_counts_swaps_as_one() {
+        assert_eq!(edit_distance("ocaen", "ocean"), 1);
+        assert_eq!(edit_distance("kitten", "sitting"), 3);
+        assert_eq!(edit_distance("", "abc"), 3);
+        assert_eq!(edit_distance("abc", ""), 3);
+        assert_eq!(edit_distance("same", "same"), 0);
+        assert_eq!(edit_distance("ab", "ba"), 1);
+    }
+
+    #[test]
+    fn nearest_suggests_close_names_only() {
+        let names = ["ocean", "mantle", "Gyr", "K", "kg"];
+        assert_eq!(nearest("ocaen", names), Some("ocean"));
+        assert_eq!(nearest("mantel", names), Some("mantle"));
+        assert_eq!(nearest("Gyrs", names), Some("Gyr"));
+        assert_eq!(nearest("k", names), Some("K"));
+        assert_eq!(nearest("e", ["%", "g", "t"]), None);
+        assert_eq!(nearest("plate", names), None);
+    }
 }

@@ -5,6 +5,7 @@
 //! [`syntax`] (parse) → [`check`] (names, units) → [`model`] (the checked
 //! model) → [`graph`] (dependencies) → later phases.
 
+pub mod cache;
 pub mod check;
 pub mod cli;
 pub mod compile;
@@ -13,6 +14,7 @@ pub mod fsutil;
 pub mod graph;
 pub mod model;
 pub mod numeric;
+pub mod pipeline;
 pub mod report;
 pub mod solve;
 pub mod span;

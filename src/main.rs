@@ -1,5 +1,10 @@
 //! The `hadal` binary: a thin shell over the library's command-line layer.
 
 fn main() {
+    // Die quietly on a closed pipe (`hadal run ... | head`), as Unix tools do.
+    #[cfg(unix)]
+    unsafe {
+        libc::signal(libc::SIGPIPE, libc::SIG_DFL);
+    }
     std::process::exit(hadal::cli::main());
 }

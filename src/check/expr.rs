@@ -545,7 +545,9 @@ impl Checker {
                 "the dimension of this expression has too large a power",
             )
             .label(span, "here")
-            .help("no physical quantity has such powers; check the powers and repeated products here"),
+            .help(
+                "no physical quantity has such powers; check the powers and repeated products here",
+            ),
         );
         Ty::Error
     }

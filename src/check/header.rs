@@ -321,6 +321,8 @@ impl Checker {
     pub(crate) fn check_stages(&mut self, h: &Header) -> Vec<Stage> {
         let stages = std::mem::take(&mut self.stages);
         let mut out: Vec<Stage> = Vec::new();
+        // A backwards stage is reported once; its cover would only add noise.
+        let mut backwards = false;
         let mut names: std::collections::HashMap<String, Span> = Default::default();
         for (stmt, body) in &stages {
             let StmtKind::Stage { name, from, to, .. } = &stmt.kind else {
@@ -348,6 +350,7 @@ impl Checker {
             };
             if let (Some(a), Some(b)) = (a, b) {
                 if a <= b {
+                    backwards = true;
                     self.error(
                         Problem::error("H0410", format!("stage `{}` runs backwards", name.text))
                             .label(
@@ -374,7 +377,7 @@ impl Checker {
             }
             out.push(stage);
         }
-        if h.name.is_some() && h.start_age > h.end_age {
+        if h.name.is_some() && h.start_age > h.end_age && !backwards {
             self.check_stage_cover(h, &out, &stages);
         }
         out
@@ -459,17 +462,17 @@ impl Checker {
                 return;
             }
             if st.start_age < expected {
-                let what = if i == 0 {
-                    "starts after the span starts"
+                let (what, before) = if i == 0 {
+                    ("starts after the span starts", "the span starts")
                 } else {
-                    "leaves a gap"
+                    ("leaves a gap", "the stage before it ends")
                 };
                 self.error(
                     Problem::error("H0402", format!("stage `{}` {what}", st.name))
                         .label(
                             span,
                             format!(
-                                "starts at {}, but the previous part ends at {}",
+                                "starts at {}, but {before} at {}",
                                 format_age(st.start_age),
                                 format_age(expected)
                             ),

@@ -94,7 +94,7 @@ impl Checker {
             .flexible(true)
             .trim(csv::Trim::All)
             .from_reader(text.as_bytes());
-        let whole = Span::new(file, 0, text.len().min(1));
+        let whole = Span::new(file, 0, text.trim_end().len());
         let problem = |c: &mut Checker, span: Span, msg: String, help: &str| {
             c.error(
                 Problem::error("H0504", msg)
@@ -161,7 +161,11 @@ impl Checker {
                 problem(
                     self,
                     line_span,
-                    format!("row has {} columns, not 2", rec.len()),
+                    format!(
+                        "row has {} column{}, not 2",
+                        rec.len(),
+                        if rec.len() == 1 { "" } else { "s" }
+                    ),
                     "every row holds two numbers separated by a comma",
                 );
                 return None;

@@ -65,6 +65,39 @@ enum Command {
         /// Print a machine-readable summary on stdout instead of the human one
         #[arg(long)]
         json: bool,
+        /// Neither read nor write the stage cache
+        #[arg(long)]
+        no_cache: bool,
+    },
+    /// List every parameter with its value, units and the stages it influences
+    Params {
+        file: PathBuf,
+        #[arg(long = "set", value_name = "NAME=VALUE")]
+        sets: Vec<String>,
+        #[arg(long)]
+        json: bool,
+    },
+    /// Inspect and maintain the stage cache (HADAL_CACHE, default .hadal-cache)
+    Cache {
+        #[command(subcommand)]
+        action: CacheAction,
+    },
+}
+
+#[derive(Subcommand, Debug)]
+enum CacheAction {
+    /// Number of entries, total size, oldest and newest use
+    Stats,
+    /// Check every entry; exit 1 if any is corrupt
+    Verify,
+    /// Remove entries unused for a while, or the least recently used beyond a size
+    Gc {
+        /// e.g. 30d, 12h
+        #[arg(long, value_name = "DUR")]
+        older_than: Option<String>,
+        /// e.g. 500M, 2G
+        #[arg(long, value_name = "SIZE")]
+        max_size: Option<String>,
     },
 }
 
@@ -86,7 +119,17 @@ pub fn main() -> i32 {
             out,
             sets,
             json,
-        } => run::cmd_run(&file, out.as_deref(), &sets, json),
+            no_cache,
+        } => run::cmd_run(&file, out.as_deref(), &sets, json, !no_cache),
+        Command::Params { file, sets, json } => run::cmd_params(&file, &sets, json),
+        Command::Cache { action } => match action {
+            CacheAction::Stats => run::cmd_cache_stats(),
+            CacheAction::Verify => run::cmd_cache_verify(),
+            CacheAction::Gc {
+                older_than,
+                max_size,
+            } => run::cmd_cache_gc(older_than.as_deref(), max_size.as_deref()),
+        },
     }
 }
 

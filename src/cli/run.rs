@@ -4,11 +4,13 @@ use std::path::{Path, PathBuf};
 use std::time::Instant;
 
 use super::{report, usage_error, EXIT_INVALID, EXIT_OK, EXIT_USAGE};
+use crate::cache::Store;
 use crate::check::{self, CheckError, CheckOptions};
 use crate::diagnostic::Problem;
 use crate::model::Model;
+use crate::pipeline::{self, Outcome};
 use crate::report::{self as rep, fmt_num};
-use crate::solve::{self, Run};
+use crate::solve::Run;
 
 pub(crate) fn parse_sets(sets: &[String]) -> Result<Vec<(String, String)>, String> {
     sets.iter()
@@ -56,7 +58,13 @@ fn write_outputs(dir: &Path, files: &[(&str, Vec<u8>)]) -> Result<(), String> {
     Ok(())
 }
 
-pub(crate) fn cmd_run(file: &Path, out: Option<&Path>, sets: &[String], json: bool) -> i32 {
+pub(crate) fn cmd_run(
+    file: &Path,
+    out: Option<&Path>,
+    sets: &[String],
+    json: bool,
+    use_cache: bool,
+) -> i32 {
     let clock = Instant::now();
     let checked = match load(file, sets) {
         Ok(c) => c,
@@ -64,37 +72,32 @@ pub(crate) fn cmd_run(file: &Path, out: Option<&Path>, sets: &[String], json: bo
     };
     let model = &checked.model;
     let name = model.name.clone().unwrap_or_default();
-    let run = match solve::solve(model) {
-        Ok(r) => r,
+    let store = use_cache.then(|| Store::new(Store::default_location()));
+    let outcome = match pipeline::execute(model, store.as_ref()) {
+        Ok(o) => o,
         Err(p) => {
             report(&model.sources, &[p]);
             return EXIT_INVALID;
         }
     };
-    let series = match rep::series(model, &run) {
-        Ok(s) => s,
-        Err(p) => {
-            report(&model.sources, &[p]);
-            return EXIT_INVALID;
-        }
-    };
+    report(&model.sources, &outcome.warnings);
     let dir = out
         .map(Path::to_owned)
         .unwrap_or_else(|| PathBuf::from("outputs").join(&name));
     let files = [
-        ("series.csv", series.to_csv()),
-        ("stages.csv", rep::stages_csv(model, &run)),
-        ("events.csv", rep::events_csv(model, &run)),
+        ("series.csv", outcome.series_csv.clone()),
+        ("stages.csv", rep::stages_csv(model, &outcome.run)),
+        ("events.csv", rep::events_csv(model, &outcome.run)),
     ];
     if let Err(e) = write_outputs(&dir, &files) {
         return usage_error(e);
     }
-    let closure_problems = closure_problems(model, &run);
+    let closure_problems = closure_problems(model, &outcome.run);
     let wall = clock.elapsed();
     if json {
-        println!("{}", summary_json(model, &run, &series, &dir, wall));
+        println!("{}", summary_json(model, &outcome, &dir, wall));
     } else {
-        print_summary(model, &run, &series, &dir, wall);
+        print_summary(model, &outcome, &dir, wall);
     }
     if !closure_problems.is_empty() {
         report(&model.sources, &closure_problems);
@@ -129,20 +132,15 @@ fn ocean_masses(model: &Model) -> f64 {
         .unwrap_or(1.4e21)
 }
 
-fn print_summary(
-    model: &Model,
-    run: &Run,
-    series: &rep::Series,
-    dir: &Path,
-    wall: std::time::Duration,
-) {
+fn print_summary(model: &Model, outcome: &Outcome, dir: &Path, wall: std::time::Duration) {
+    let run = &outcome.run;
     let name = model.name.as_deref().unwrap_or("");
     println!(
         "{name}: {} Ga to {} Ga, {} stages, {} report rows",
         fmt_num(model.start_age / 1e9),
         fmt_num(model.end_age / 1e9),
         run.stages.len(),
-        series.rows.len()
+        outcome.rows
     );
     let width = model
         .stages
@@ -151,20 +149,28 @@ fn print_summary(
         .max()
         .unwrap_or(5)
         .max(5);
+    let mwidth = run
+        .stages
+        .iter()
+        .map(|s| s.method.len())
+        .max()
+        .unwrap_or(6)
+        .max(6);
     println!(
-        "  {:<width$}  {:>15}  {:<34}  {:>8}  {:>8}  {:>10}  {:>9}",
-        "stage", "span [Ga]", "method", "steps", "rejected", "closure", "wall"
+        "  {:<width$}  {:>13}  {:<8}  {:<mwidth$}  {:>7}  {:>8}  {:>9}  {:>9}",
+        "stage", "span [Ga]", "status", "method", "steps", "rejected", "closure", "wall"
     );
-    for sr in &run.stages {
+    for (sr, rp) in run.stages.iter().zip(&outcome.stages) {
         let st = &model.stages[sr.stage];
         println!(
-            "  {:<width$}  {:>15}  {:<34}  {:>8}  {:>8}  {:>10.2e}  {:>6.1} ms",
+            "  {:<width$}  {:>13}  {:<8}  {:<mwidth$}  {:>7}  {:>8}  {:>9.2e}  {:>6.1} ms",
             st.name,
             format!(
                 "{} - {}",
                 fmt_num(st.start_age / 1e9),
                 fmt_num(st.end_age / 1e9)
             ),
+            rp.status.word(),
             sr.method,
             sr.stats.accepted,
             sr.stats.rejected,
@@ -172,11 +178,17 @@ fn print_summary(
             sr.wall.as_secs_f64() * 1e3
         );
     }
+    for (rp, st) in outcome.stages.iter().zip(&model.stages) {
+        if rp.status == pipeline::Status::Computed && rp.reason != "the cache is off" {
+            println!("  {} computed: {}", st.name, rp.reason);
+        }
+    }
     let om = ocean_masses(model);
     if let Some(last) = run.stages.last() {
         println!("final inventories (ocean masses of {om:.3e} kg):");
-        for (k, (id, d)) in model.reservoirs().enumerate() {
-            let _ = id;
+        let order = crate::compile::state_order(model);
+        for (id, d) in model.reservoirs() {
+            let k = order.iter().position(|&o| o == id).unwrap_or(0);
             println!("  {:<24} {:>10.4}", d.name, last.end.0[k] / om);
         }
         let n = last.end.0.len();
@@ -211,22 +223,21 @@ fn print_summary(
     );
 }
 
-fn summary_json(
-    model: &Model,
-    run: &Run,
-    series: &rep::Series,
-    dir: &Path,
-    wall: std::time::Duration,
-) -> String {
+fn summary_json(model: &Model, outcome: &Outcome, dir: &Path, wall: std::time::Duration) -> String {
+    let run = &outcome.run;
     let stages: Vec<serde_json::Value> = run
         .stages
         .iter()
-        .map(|sr| {
+        .zip(&outcome.stages)
+        .map(|(sr, rp)| {
             let st = &model.stages[sr.stage];
             serde_json::json!({
                 "name": st.name,
                 "from_ga": st.start_age / 1e9,
                 "to_ga": st.end_age / 1e9,
+                "status": rp.status.word(),
+                "reason": rp.reason,
+                "fingerprint": rp.fingerprint,
                 "method": sr.method,
                 "accepted_steps": sr.stats.accepted,
                 "rejected_steps": sr.stats.rejected,
@@ -238,10 +249,11 @@ fn summary_json(
         .collect();
     let om = ocean_masses(model);
     let last = run.stages.last();
+    let order = crate::compile::state_order(model);
     let finals: serde_json::Map<String, serde_json::Value> = model
         .reservoirs()
-        .enumerate()
-        .map(|(k, (_, d))| {
+        .map(|(id, d)| {
+            let k = order.iter().position(|&o| o == id).unwrap_or(0);
             let kg = last.map_or(f64::NAN, |l| l.end.0[k]);
             (
                 d.name.clone(),
@@ -263,11 +275,188 @@ fn summary_json(
     let v = serde_json::json!({
         "scenario": model.name,
         "output_dir": dir.to_string_lossy(),
-        "rows": series.rows.len(),
+        "rows": outcome.rows,
+        "series_reused": outcome.series_reused,
         "stages": stages,
         "final": finals,
         "events_first_age_ga": events,
         "wall_ms": wall.as_secs_f64() * 1e3,
     });
     serde_json::to_string_pretty(&v).unwrap_or_default()
+}
+
+pub(crate) fn cmd_params(file: &Path, sets: &[String], json: bool) -> i32 {
+    let checked = match load(file, sets) {
+        Ok(c) => c,
+        Err(code) => return code,
+    };
+    let model = &checked.model;
+    let g = crate::graph::DepGraph::build(model);
+    let influence = crate::graph::param_stages(model, &g);
+    let base = crate::compile::stage_params(model, None);
+    let mut list = Vec::new();
+    for (id, stages) in influence {
+        let d = &model.defs[id];
+        let v = base[id].unwrap_or(f64::NAN);
+        let (unit_text, shown) = match &d.display_unit {
+            Some((t, u)) => (t.clone(), u.from_internal(v)),
+            None => {
+                let (n, u) = crate::units::display_unit(d.dim);
+                (
+                    if n.is_empty() {
+                        d.dim.internal_unit()
+                    } else {
+                        n.to_owned()
+                    },
+                    u.from_internal(v),
+                )
+            }
+        };
+        let initial = model
+            .defs
+            .iter()
+            .enumerate()
+            .filter(|(_, x)| {
+                matches!(
+                    x.kind,
+                    crate::model::DefKind::Reservoir { .. } | crate::model::DefKind::State { .. }
+                )
+            })
+            .any(|(r, _)| {
+                g.closure(&[crate::graph::Node::Initial(r)])
+                    .contains(&crate::graph::Node::Def(id))
+            });
+        let names: Vec<String> = stages
+            .iter()
+            .map(|&s| model.stages[s].name.clone())
+            .collect();
+        let overridden: Vec<String> = model
+            .stages
+            .iter()
+            .filter(|s| s.sets.iter().any(|(p, _)| *p == id))
+            .map(|s| s.name.clone())
+            .collect();
+        list.push((
+            d.name.clone(),
+            shown,
+            unit_text,
+            names,
+            initial,
+            overridden,
+            d.doc.clone(),
+        ));
+    }
+    if json {
+        let v: Vec<serde_json::Value> = list
+            .iter()
+            .map(|(n, v, u, st, init, ov, doc)| {
+                serde_json::json!({"name": n, "value": v, "unit": u, "stages": st, "initial_state": init, "set_in": ov, "doc": doc})
+            })
+            .collect();
+        println!("{}", serde_json::to_string_pretty(&v).unwrap_or_default());
+        return EXIT_OK;
+    }
+    let w = list.iter().map(|l| l.0.len()).max().unwrap_or(4).max(9);
+    println!(
+        "{:<w$}  {:>14}  {:<10}  influences",
+        "parameter", "value", "unit"
+    );
+    for (n, v, u, st, init, ov, _) in &list {
+        let mut infl = st.join(", ");
+        if *init {
+            infl = if infl.is_empty() {
+                "initial state".into()
+            } else {
+                format!("initial state, {infl}")
+            };
+        }
+        if infl.is_empty() {
+            infl = "nothing (unused)".into();
+        }
+        if !ov.is_empty() {
+            infl.push_str(&format!(" (set in {})", ov.join(", ")));
+        }
+        println!("{n:<w$}  {:>14}  {u:<10}  {infl}", rep::human_num(*v));
+    }
+    EXIT_OK
+}
+
+fn fmt_time(t: Option<std::time::SystemTime>) -> String {
+    t.and_then(|t| t.elapsed().ok())
+        .map(|d| {
+            let s = d.as_secs();
+            if s < 120 {
+                format!("{s} s ago")
+            } else if s < 7200 {
+                format!("{} min ago", s / 60)
+            } else if s < 172_800 {
+                format!("{} h ago", s / 3600)
+            } else {
+                format!("{} days ago", s / 86400)
+            }
+        })
+        .unwrap_or_else(|| "-".into())
+}
+
+pub(crate) fn cmd_cache_stats() -> i32 {
+    let store = Store::new(Store::default_location());
+    let s = store.stats();
+    println!("cache {}", store.root().display());
+    println!("  entries  {}", s.entries);
+    println!(
+        "  size     {:.1} MiB ({} bytes)",
+        s.bytes as f64 / 1048576.0,
+        s.bytes
+    );
+    println!("  oldest   {}", fmt_time(s.oldest));
+    println!("  newest   {}", fmt_time(s.newest));
+    EXIT_OK
+}
+
+pub(crate) fn cmd_cache_verify() -> i32 {
+    let store = Store::new(Store::default_location());
+    let (n, bad) = store.verify();
+    for b in &bad {
+        eprintln!("corrupt: {}: {}", b.path.display(), b.why);
+    }
+    println!(
+        "checked {n} entries in {}: {} corrupt",
+        store.root().display(),
+        bad.len()
+    );
+    if bad.is_empty() {
+        EXIT_OK
+    } else {
+        EXIT_INVALID
+    }
+}
+
+pub(crate) fn cmd_cache_gc(older: Option<&str>, max: Option<&str>) -> i32 {
+    let older = match older.map(|s| (s, crate::cache::parse_duration(s))) {
+        Some((s, None)) => {
+            return usage_error(format!(
+                "`--older-than {s}`: write a duration such as 30d, 12h or 90m"
+            ))
+        }
+        Some((_, d)) => d,
+        None => None,
+    };
+    let max = match max.map(|s| (s, crate::cache::parse_size(s))) {
+        Some((s, None)) => {
+            return usage_error(format!("`--max-size {s}`: write a size such as 500M or 2G"))
+        }
+        Some((_, m)) => m,
+        None => None,
+    };
+    if older.is_none() && max.is_none() {
+        return usage_error("say what to remove: --older-than DUR or --max-size SIZE");
+    }
+    let store = Store::new(Store::default_location());
+    let (removed, freed) = store.gc(older, max);
+    println!(
+        "removed {removed} entries ({:.1} MiB) from {}",
+        freed as f64 / 1048576.0,
+        store.root().display()
+    );
+    EXIT_OK
 }

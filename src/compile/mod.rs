@@ -243,20 +243,13 @@ struct Compiler<'m> {
 
 impl<'m> Compiler<'m> {
     fn new(model: &'m Model, params: Vec<Option<f64>>) -> Compiler<'m> {
+        let order = state_order(model);
+        let n = order.len();
         let mut state_index = vec![None; model.defs.len()];
-        let mut n = 0;
-        for (id, _) in model.reservoirs().chain(model.states()) {
-            state_index[id] = Some(n);
-            n += 1;
-        }
-        // Order: reservoirs in definition order, then states.
-        let mut order: Vec<DefId> = model.reservoirs().map(|(i, _)| i).collect();
-        order.extend(model.states().map(|(i, _)| i));
         for (k, id) in order.iter().enumerate() {
             state_index[*id] = Some(k);
         }
-        let mut init = vec![0.0; n + 2];
-        init[n] = 0.0;
+        let init = vec![0.0; n + 2];
         let mut def_reg = vec![None; model.defs.len()];
         for (k, id) in order.iter().enumerate() {
             def_reg[*id] = Some(k as Reg);
@@ -280,9 +273,7 @@ impl<'m> Compiler<'m> {
     }
 
     fn state_order(&self) -> Vec<DefId> {
-        let mut order: Vec<DefId> = self.model.reservoirs().map(|(i, _)| i).collect();
-        order.extend(self.model.states().map(|(i, _)| i));
-        order
+        state_order(self.model)
     }
 
     fn build(&mut self, stage: Option<usize>, wants: &Wants) -> Program {
@@ -315,7 +306,8 @@ impl<'m> Compiler<'m> {
                     });
                 }
             }
-            for (id, d) in model.states() {
+            for id in by_name(model, |k| matches!(k, DefKind::State { .. })) {
+                let d = &model.defs[id];
                 if let DefKind::State { rate } = &d.kind {
                     let reg = self.expr(rate);
                     let i = self.state_index[id].expect("states have components");
@@ -606,6 +598,25 @@ impl<'m> Compiler<'m> {
             }
         }
     }
+}
+
+/// Definitions of one kind, ordered by name. Compiled code follows this
+/// order, not the order of declaration, so reordering a file changes no bit
+/// of any result (and the stage cache may rely on that).
+pub fn by_name(model: &Model, kind: impl Fn(&DefKind) -> bool) -> Vec<DefId> {
+    let mut ids: Vec<DefId> = (0..model.defs.len())
+        .filter(|&i| kind(&model.defs[i].kind))
+        .collect();
+    ids.sort_by(|&a, &b| model.defs[a].name.cmp(&model.defs[b].name));
+    ids
+}
+
+/// The layout of the state vector: reservoirs by name, then states by name
+/// (the two ledger components follow in the solver).
+pub fn state_order(model: &Model) -> Vec<DefId> {
+    let mut order = by_name(model, |k| matches!(k, DefKind::Reservoir { .. }));
+    order.extend(by_name(model, |k| matches!(k, DefKind::State { .. })));
+    order
 }
 
 /// Initial state: every reservoir's initial inventory and every state's

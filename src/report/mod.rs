@@ -127,6 +127,16 @@ pub fn fmt_num(v: f64) -> String {
     s.strip_suffix(".0").unwrap_or(s).to_owned()
 }
 
+/// A number for people: ten significant digits, then the shortest form, so
+/// 0.9000000000000001 shows as 0.9.
+pub fn human_num(v: f64) -> String {
+    if !v.is_finite() {
+        return v.to_string();
+    }
+    let rounded: f64 = format!("{v:.9e}").parse().unwrap_or(v);
+    fmt_num(rounded)
+}
+
 impl Series {
     /// The CSV text: a header `name [unit]` per column, then one row per age.
     pub fn to_csv(&self) -> Vec<u8> {

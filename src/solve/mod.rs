@@ -152,7 +152,21 @@ impl Observer for Obs<'_> {
             self.next_row += 1;
         }
         if let Some(i) = y1[..self.n_res].iter().position(|&v| v < self.floor) {
-            self.negative = Some((i, self.start_age - t1, y1[i]));
+            // Locate where it crossed zero on the interpolant.
+            let (mut lo, mut hi) = (t0, t1);
+            for _ in 0..60 {
+                let mid = 0.5 * (lo + hi);
+                if mid <= lo || mid >= hi {
+                    break;
+                }
+                dense.eval(mid, &mut self.scratch);
+                if self.scratch[i] < 0.0 {
+                    hi = mid;
+                } else {
+                    lo = mid;
+                }
+            }
+            self.negative = Some((i, self.start_age - hi, y1[i]));
             return Err(Stop);
         }
         if let Some(EventWatch {
@@ -200,15 +214,9 @@ fn ga(age: f64) -> String {
     }
 }
 
-/// Every event definition, in definition order.
+/// Every event definition, by name.
 pub fn event_defs(model: &Model) -> Vec<DefId> {
-    model
-        .defs
-        .iter()
-        .enumerate()
-        .filter(|(_, d)| matches!(d.kind, DefKind::Event))
-        .map(|(i, _)| i)
-        .collect()
+    compile::by_name(model, |k| matches!(k, DefKind::Event))
 }
 
 /// Total water: reservoirs plus what left minus what arrived.
@@ -389,23 +397,39 @@ fn failure_problem(
         .label(def.span, "this reservoir ran dry")
         .help("an outgoing flux does not stop when the reservoir is empty; scale it by the inventory (e.g. `k * R`) or by `fill(R)`");
     }
+    // A non-finite rate near where the integration stopped, probing a little
+    // ahead when the step size collapsed before reaching it.
+    let culprit = match f {
+        Failure::NonFinite { t } => nonfinite_culprit(sys, t, y).map(|c| (t, c)),
+        Failure::StepCollapse { t, h } => [0.0, 1.0, 4.0, 16.0, 64.0]
+            .iter()
+            .find_map(|k| nonfinite_culprit(sys, t + k * h, y).map(|c| (t + k * h, c))),
+        Failure::Budget { .. } => None,
+    };
+    if let Some((t, (probe_def, span, value))) = culprit {
+        let d = &model.defs[probe_def];
+        return Problem::error(
+            "H0601",
+            format!(
+                "the {} `{}` is {} at {} in stage `{stage}`",
+                if matches!(d.kind, DefKind::Flux { .. }) {
+                    "rate of flux"
+                } else {
+                    "rate of state"
+                },
+                d.name,
+                if value.is_nan() {
+                    "not a number (NaN)"
+                } else {
+                    "infinite"
+                },
+                ga(model.start_age - t)
+            ),
+        )
+        .label(span, "evaluates to a non-finite number here")
+        .help("look for a division by zero, the logarithm or square root of a negative value, or an overflowing exponential");
+    }
     match f {
-        Failure::NonFinite { t } | Failure::StepCollapse { t, .. } if nonfinite_culprit(sys, t, y).is_some() => {
-            let (probe_def, span, value) = nonfinite_culprit(sys, t, y).expect("checked above");
-            let d = &model.defs[probe_def];
-            Problem::error(
-                "H0601",
-                format!(
-                    "the {} `{}` is {} at {} in stage `{stage}`",
-                    if matches!(d.kind, DefKind::Flux { .. }) { "rate of flux" } else { "rate of state" },
-                    d.name,
-                    if value.is_nan() { "not a number (NaN)" } else { "infinite" },
-                    ga(model.start_age - t)
-                ),
-            )
-            .label(span, "evaluates to a non-finite number here")
-            .help("look for a division by zero, the logarithm or square root of a negative value, or an overflowing exponential")
-        }
         Failure::NonFinite { t } => Problem::error(
             "H0601",
             format!("the solution stopped being finite at {} in stage `{stage}`", ga(model.start_age - t)),

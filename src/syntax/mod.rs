@@ -9,4 +9,4 @@ mod parse;
 
 pub use ast::*;
 pub use format::{format_expr, format_file};
-pub use parse::{parse, MAX_NESTING};
+pub use parse::{parse, MAX_NESTING, MAX_OPERATORS};

@@ -21,6 +21,11 @@ const MAX_SYNTAX_ERRORS: usize = 25;
 /// stack overflow.
 pub const MAX_NESTING: usize = 64;
 
+/// Most operators (infix and prefix) in one statement. A chain of operators
+/// is a deep tree too, and every later phase walks trees recursively; a
+/// longer formula belongs in several `let` lines anyway.
+pub const MAX_OPERATORS: usize = 128;
+
 /// Parse one file. On failure, every independent syntax error is reported:
 /// after an error the offending line is blanked out and parsing restarts,
 /// which works because statements are line-oriented.
@@ -38,6 +43,10 @@ pub fn parse(text: &str, file: u32) -> Result<SyntaxFile, Vec<Problem>> {
             Ok(mut pairs) => {
                 if errors.is_empty() {
                     let root = pairs.next().expect("file rule yields one pair");
+                    let too_long = operator_problems(root.clone(), file);
+                    if !too_long.is_empty() {
+                        return Err(too_long);
+                    }
                     return Ok(build_file(root, file));
                 }
                 return Err(errors);
@@ -58,10 +67,17 @@ pub fn parse(text: &str, file: u32) -> Result<SyntaxFile, Vec<Problem>> {
                 } else {
                     line_start
                 };
-                // Replace the line by spaces so offsets of later lines stay valid.
+                // Replace the line by spaces, one per byte, so offsets of
+                // later lines stay valid whatever characters it held.
                 let blank: String = work[blank_from..line_end]
                     .chars()
-                    .map(|c| if c == '\r' { '\r' } else { ' ' })
+                    .map(|c| {
+                        if c == '\r' {
+                            "\r".to_owned()
+                        } else {
+                            " ".repeat(c.len_utf8())
+                        }
+                    })
                     .collect();
                 work.replace_range(blank_from..line_end, &blank);
                 if errors.len() >= MAX_SYNTAX_ERRORS {
@@ -116,6 +132,75 @@ fn punctuation_words(token: &str) -> Option<&'static str> {
 }
 
 /// The problem for one parse failure, and the position it points at.
+/// Statements with more than [`MAX_OPERATORS`] operators. The pest tree of
+/// an operator chain is flat, so this walk is shallow whatever the input.
+fn operator_problems(root: Pair<Rule>, file: u32) -> Vec<Problem> {
+    let is_operator = |r: Rule| {
+        matches!(
+            r,
+            Rule::neg
+                | Rule::not
+                | Rule::or
+                | Rule::and
+                | Rule::eq
+                | Rule::ne
+                | Rule::le
+                | Rule::ge
+                | Rule::lt
+                | Rule::gt
+                | Rule::add
+                | Rule::sub
+                | Rule::mul
+                | Rule::div
+                | Rule::pow
+        )
+    };
+    let mut problems = Vec::new();
+    let mut statements: Vec<Pair<Rule>> = root.into_inner().collect();
+    while let Some(stmt) = statements.pop() {
+        if stmt.as_rule() == Rule::stage_stmt {
+            // Body lines count on their own; the header line is counted below
+            // without them.
+            for part in stmt.clone().into_inner() {
+                if part.as_rule() == Rule::stage_body {
+                    statements.extend(part.into_inner());
+                }
+            }
+        }
+        let mut count = 0usize;
+        let mut stack: Vec<Pair<Rule>> = stmt
+            .clone()
+            .into_inner()
+            .filter(|p| p.as_rule() != Rule::stage_body)
+            .collect();
+        while let Some(p) = stack.pop() {
+            if is_operator(p.as_rule()) {
+                count += 1;
+            }
+            stack.extend(p.into_inner());
+        }
+        if count > MAX_OPERATORS {
+            let span = stmt.as_span();
+            let end = stmt
+                .as_str()
+                .find('\n')
+                .map_or(span.end(), |i| span.start() + i);
+            problems.push(
+                Problem::error(
+                    "H0102",
+                    format!(
+                        "this statement has {count} operators; at most {MAX_OPERATORS} are allowed"
+                    ),
+                )
+                .label(Span::new(file, span.start(), end), "too long")
+                .help("split the expression into `let` definitions"),
+            );
+        }
+    }
+    problems.sort_by_key(|p| p.primary().map(|s| s.start));
+    problems
+}
+
 fn syntax_problem(
     text: &str,
     err: &pest::error::Error<Rule>,
@@ -163,11 +248,12 @@ fn syntax_problem(
     // the file, an expression subsumes names and numbers.
     // Inside a stage body only `set`, `flux` and `solver` lines may follow;
     // the keywords of the last two would otherwise read as "a statement".
-    if expected.contains(&"a `set`, `flux` or `solver` line") {
-        expected.retain(|w| *w != "a statement");
-    }
-    if expected.contains(&"a statement") {
+    let body_line = expected.contains(&"a `set`, `flux` or `solver` line");
+    if body_line || expected.contains(&"a statement") {
         expected.retain(|w| *w != "a comment" && *w != "end of file" && *w != "end of line");
+    }
+    if body_line {
+        expected.retain(|w| *w != "a statement");
     }
     if expected.contains(&"an expression") {
         expected.retain(|w| *w != "a name" && *w != "a number");

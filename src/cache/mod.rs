@@ -1,0 +1,362 @@
+//! The stage cache's store: content-addressed entries on disk.
+//!
+//! Invariant: the store keeps and verifies bytes; it never interprets them.
+//! What a key means and what a payload holds is decided by the pipeline.
+//!
+//! Layout: `DIR/v1/ab/abcdef…` (the key's hex, fanned out by its first byte).
+//! An entry is `MAGIC`, the 32-byte key, the payload length (u64 LE), the
+//! payload, and a blake3 of key and payload. Entries are written to a
+//! temporary file, flushed, and renamed into place, so a reader sees a whole
+//! entry or none; processes sharing the directory (also over a network file
+//! system) need no lock: two writers of one key write identical bytes.
+
+use std::path::{Path, PathBuf};
+use std::time::{Duration, SystemTime};
+
+const MAGIC: &[u8; 8] = b"HADALC1\n";
+const LAYOUT: &str = "v1";
+
+pub type Key = [u8; 32];
+
+pub fn key_hex(k: &Key) -> String {
+    k.iter().map(|b| format!("{b:02x}")).collect()
+}
+
+#[derive(Debug, Clone)]
+pub struct Store {
+    root: PathBuf,
+}
+
+/// A read that found an entry but could not trust it.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Corrupt {
+    pub path: PathBuf,
+    pub why: String,
+}
+
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct Stats {
+    pub entries: u64,
+    pub bytes: u64,
+    pub oldest: Option<SystemTime>,
+    pub newest: Option<SystemTime>,
+}
+
+impl Store {
+    /// The store under `root` (created on first write).
+    pub fn new(root: impl Into<PathBuf>) -> Store {
+        Store { root: root.into() }
+    }
+
+    /// `HADAL_CACHE` if set, else `.hadal-cache` in the current directory.
+    pub fn default_location() -> PathBuf {
+        match std::env::var_os("HADAL_CACHE") {
+            Some(v) if !v.is_empty() => PathBuf::from(v),
+            _ => PathBuf::from(".hadal-cache"),
+        }
+    }
+
+    pub fn root(&self) -> &Path {
+        &self.root
+    }
+
+    fn path(&self, key: &Key) -> PathBuf {
+        let hex = key_hex(key);
+        self.root.join(LAYOUT).join(&hex[..2]).join(hex)
+    }
+
+    /// The payload stored under `key`: `Ok(None)` when absent, `Err` when
+    /// present but corrupt (the entry is then removed, so the caller
+    /// recomputes and writes it afresh).
+    pub fn get(&self, key: &Key) -> Result<Option<Vec<u8>>, Corrupt> {
+        let path = self.path(key);
+        let bytes = match std::fs::read(&path) {
+            Ok(b) => b,
+            Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(None),
+            Err(e) => {
+                return Err(Corrupt {
+                    path,
+                    why: e.to_string(),
+                })
+            }
+        };
+        match decode(&bytes, Some(key)) {
+            Ok(payload) => {
+                // Mark as recently used, for `gc --max-size`.
+                if let Ok(f) = std::fs::File::options().write(true).open(&path) {
+                    let _ = f.set_modified(SystemTime::now());
+                }
+                Ok(Some(payload.to_vec()))
+            }
+            Err(why) => {
+                let _ = std::fs::remove_file(&path);
+                Err(Corrupt { path, why })
+            }
+        }
+    }
+
+    /// Store `payload` under `key`, atomically.
+    pub fn put(&self, key: &Key, payload: &[u8]) -> std::io::Result<()> {
+        let path = self.path(key);
+        if let Some(dir) = path.parent() {
+            std::fs::create_dir_all(dir)?;
+        }
+        let mut bytes = Vec::with_capacity(payload.len() + 80);
+        bytes.extend_from_slice(MAGIC);
+        bytes.extend_from_slice(key);
+        bytes.extend_from_slice(&(payload.len() as u64).to_le_bytes());
+        bytes.extend_from_slice(payload);
+        let mut h = blake3::Hasher::new();
+        h.update(key);
+        h.update(payload);
+        bytes.extend_from_slice(h.finalize().as_bytes());
+        crate::fsutil::write_atomic(&path, &bytes)
+    }
+
+    fn entries(&self) -> Vec<PathBuf> {
+        let mut out = Vec::new();
+        let base = self.root.join(LAYOUT);
+        let Ok(dirs) = std::fs::read_dir(&base) else {
+            return out;
+        };
+        for d in dirs.flatten() {
+            if let Ok(files) = std::fs::read_dir(d.path()) {
+                for f in files.flatten() {
+                    let name = f.file_name();
+                    let name = name.to_string_lossy();
+                    // Temporary files of writes in progress start with a dot.
+                    if !name.starts_with('.') {
+                        out.push(f.path());
+                    }
+                }
+            }
+        }
+        out.sort();
+        out
+    }
+
+    pub fn stats(&self) -> Stats {
+        let mut s = Stats::default();
+        for p in self.entries() {
+            if let Ok(m) = std::fs::metadata(&p) {
+                s.entries += 1;
+                s.bytes += m.len();
+                if let Ok(t) = m.modified() {
+                    s.oldest = Some(s.oldest.map_or(t, |o| o.min(t)));
+                    s.newest = Some(s.newest.map_or(t, |o| o.max(t)));
+                }
+            }
+        }
+        s
+    }
+
+    /// Check every entry; returns the number checked and the bad ones.
+    pub fn verify(&self) -> (u64, Vec<Corrupt>) {
+        let mut bad = Vec::new();
+        let mut n = 0;
+        for p in self.entries() {
+            n += 1;
+            let name = p
+                .file_name()
+                .map(|s| s.to_string_lossy().into_owned())
+                .unwrap_or_default();
+            let expected = parse_hex(&name);
+            match std::fs::read(&p) {
+                Ok(bytes) => {
+                    if let Err(why) = decode(&bytes, expected.as_ref()) {
+                        bad.push(Corrupt { path: p, why });
+                    } else if expected.is_none() {
+                        bad.push(Corrupt {
+                            path: p,
+                            why: "the file name is not a key".into(),
+                        });
+                    }
+                }
+                Err(e) => bad.push(Corrupt {
+                    path: p,
+                    why: e.to_string(),
+                }),
+            }
+        }
+        (n, bad)
+    }
+
+    /// Remove entries unused for longer than `older_than`, then the least
+    /// recently used until the store is at most `max_size` bytes. Returns
+    /// (removed entries, freed bytes).
+    pub fn gc(&self, older_than: Option<Duration>, max_size: Option<u64>) -> (u64, u64) {
+        let now = SystemTime::now();
+        let mut items: Vec<(SystemTime, u64, PathBuf)> = self
+            .entries()
+            .into_iter()
+            .filter_map(|p| {
+                let m = std::fs::metadata(&p).ok()?;
+                Some((m.modified().unwrap_or(now), m.len(), p))
+            })
+            .collect();
+        items.sort();
+        let (mut removed, mut freed) = (0, 0);
+        let mut keep = Vec::new();
+        for (t, len, p) in items {
+            let old = older_than.is_some_and(|d| now.duration_since(t).unwrap_or_default() > d);
+            if old && std::fs::remove_file(&p).is_ok() {
+                removed += 1;
+                freed += len;
+            } else {
+                keep.push((t, len, p));
+            }
+        }
+        if let Some(max) = max_size {
+            let mut total: u64 = keep.iter().map(|k| k.1).sum();
+            for (_, len, p) in &keep {
+                if total <= max {
+                    break;
+                }
+                if std::fs::remove_file(p).is_ok() {
+                    removed += 1;
+                    freed += len;
+                    total -= len;
+                }
+            }
+        }
+        (removed, freed)
+    }
+}
+
+fn parse_hex(s: &str) -> Option<Key> {
+    if s.len() != 64 {
+        return None;
+    }
+    let mut k = [0u8; 32];
+    for (i, b) in k.iter_mut().enumerate() {
+        *b = u8::from_str_radix(s.get(2 * i..2 * i + 2)?, 16).ok()?;
+    }
+    Some(k)
+}
+
+fn decode<'a>(bytes: &'a [u8], key: Option<&Key>) -> Result<&'a [u8], String> {
+    let header = MAGIC.len() + 32 + 8;
+    if bytes.len() < header + 32 {
+        return Err(format!("truncated ({} bytes)", bytes.len()));
+    }
+    if &bytes[..MAGIC.len()] != MAGIC {
+        return Err("not a hadal cache entry (bad magic)".into());
+    }
+    let stored_key: &[u8] = &bytes[MAGIC.len()..MAGIC.len() + 32];
+    if let Some(k) = key {
+        if stored_key != k {
+            return Err("the entry's key does not match its file name".into());
+        }
+    }
+    let mut len = [0u8; 8];
+    len.copy_from_slice(&bytes[MAGIC.len() + 32..header]);
+    let len = u64::from_le_bytes(len) as usize;
+    if bytes.len() != header + len + 32 {
+        return Err(format!(
+            "truncated or padded: {} bytes, expected {}",
+            bytes.len(),
+            header + len + 32
+        ));
+    }
+    let payload = &bytes[header..header + len];
+    let mut h = blake3::Hasher::new();
+    h.update(stored_key);
+    h.update(payload);
+    if h.finalize().as_bytes() != &bytes[header + len..] {
+        return Err("checksum mismatch (the entry was altered)".into());
+    }
+    Ok(payload)
+}
+
+/// Parse a duration such as `30d`, `12h`, `90m`, `45s`, `2w`.
+pub fn parse_duration(s: &str) -> Option<Duration> {
+    let s = s.trim();
+    let (num, unit) = s.split_at(s.find(|c: char| !c.is_ascii_digit() && c != '.')?);
+    let n: f64 = num.parse().ok()?;
+    let secs = match unit {
+        "s" => 1.0,
+        "m" | "min" => 60.0,
+        "h" => 3600.0,
+        "d" => 86400.0,
+        "w" => 7.0 * 86400.0,
+        _ => return None,
+    };
+    (n >= 0.0).then(|| Duration::from_secs_f64(n * secs))
+}
+
+/// Parse a size such as `500M`, `2G`, `100k`, `1234` (bytes).
+pub fn parse_size(s: &str) -> Option<u64> {
+    let s = s.trim();
+    let split = s
+        .find(|c: char| !c.is_ascii_digit() && c != '.')
+        .unwrap_or(s.len());
+    let (num, unit) = s.split_at(split);
+    let n: f64 = num.parse().ok()?;
+    let mul = match unit.trim_end_matches(['B', 'b']) {
+        "" => 1.0,
+        "k" | "K" => 1024.0,
+        "M" => 1024.0 * 1024.0,
+        "G" => 1024.0 * 1024.0 * 1024.0,
+        _ => return None,
+    };
+    (n >= 0.0).then_some((n * mul) as u64)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn roundtrip_and_corruption_is_detected() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = Store::new(dir.path());
+        let key = *blake3::hash(b"k").as_bytes();
+        assert_eq!(store.get(&key), Ok(None));
+        store.put(&key, b"payload bytes").unwrap();
+        assert_eq!(store.get(&key).unwrap().unwrap(), b"payload bytes");
+        // Flip one payload byte.
+        let path = store.path(&key);
+        let mut bytes = std::fs::read(&path).unwrap();
+        let i = MAGIC.len() + 32 + 8 + 3;
+        bytes[i] ^= 0x20;
+        std::fs::write(&path, &bytes).unwrap();
+        let (n, bad) = store.verify();
+        assert_eq!((n, bad.len()), (1, 1));
+        let err = store.get(&key).unwrap_err();
+        assert!(err.why.contains("checksum"), "{}", err.why);
+        // A corrupt entry is removed on read.
+        assert_eq!(store.get(&key), Ok(None));
+        // Truncation too.
+        store.put(&key, b"payload bytes").unwrap();
+        let bytes = std::fs::read(&path).unwrap();
+        std::fs::write(&path, &bytes[..bytes.len() - 5]).unwrap();
+        assert!(store.get(&key).unwrap_err().why.contains("truncated"));
+    }
+
+    #[test]
+    fn gc_by_size_and_stats() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = Store::new(dir.path());
+        for i in 0..5u8 {
+            store.put(blake3::hash(&[i]).as_bytes(), &[i; 100]).unwrap();
+        }
+        let s = store.stats();
+        assert_eq!(s.entries, 5);
+        let each = s.bytes / 5;
+        let (removed, _) = store.gc(None, Some(each * 2));
+        assert_eq!(removed, 3);
+        assert_eq!(store.stats().entries, 2);
+        let (removed, _) = store.gc(Some(Duration::from_secs(0)), None);
+        assert_eq!(removed, 2);
+    }
+
+    #[test]
+    fn durations_and_sizes() {
+        assert_eq!(parse_duration("30d"), Some(Duration::from_secs(30 * 86400)));
+        assert_eq!(parse_duration("2h"), Some(Duration::from_secs(7200)));
+        assert_eq!(parse_duration("x"), None);
+        assert_eq!(parse_size("500M"), Some(500 * 1024 * 1024));
+        assert_eq!(parse_size("1234"), Some(1234));
+        assert_eq!(parse_size("3Q"), None);
+    }
+}

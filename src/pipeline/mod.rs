@@ -1,0 +1,567 @@
+//! Running a checked scenario through the stage cache.
+//!
+//! A stage's fingerprint is a blake3 hash of exactly what can change its
+//! result: the canonical text of every definition its solve reaches in the
+//! dependency graph (with parameters at their effective value in that stage),
+//! the data of the tables they read, the stage's span, report ages and solver
+//! settings, the numeric-engine version, and the bytes of the state it starts
+//! from. A stage whose fingerprint is in the store is reused; when a
+//! recomputed stage ends in a bit-identical state, the next stage's
+//! fingerprint is unchanged and it is reused (early cutoff). Derived outputs
+//! are cached apart, keyed by their own definitions and the hash of the
+//! solved rows, so editing an output formula reruns no solve.
+//!
+//! Invariant: this module decides what keys mean and encodes payloads; the
+//! store only keeps bytes, and the solver never sees the cache.
+
+use std::collections::BTreeMap;
+use std::path::PathBuf;
+
+use crate::cache::{key_hex, Key, Store};
+use crate::compile;
+use crate::diagnostic::Problem;
+use crate::graph::{self, DepGraph, Node};
+use crate::model::{DefKind, Model};
+use crate::report;
+use crate::solve::{self, methods::Stats, Run, StageRun, State, ENGINE_VERSION};
+
+/// Whether a stage was taken from the cache or computed, and why.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Status {
+    Reused,
+    Computed,
+}
+
+impl Status {
+    pub fn word(&self) -> &'static str {
+        match self {
+            Status::Reused => "reused",
+            Status::Computed => "computed",
+        }
+    }
+}
+
+#[derive(Debug, Clone)]
+pub struct StageReport {
+    pub stage: usize,
+    pub status: Status,
+    /// Why it was computed ("" when reused).
+    pub reason: String,
+    pub fingerprint: String,
+}
+
+#[derive(Debug, Clone)]
+pub struct Outcome {
+    pub run: Run,
+    pub stages: Vec<StageReport>,
+    /// The series CSV bytes, and its row count.
+    pub series_csv: Vec<u8>,
+    pub rows: usize,
+    pub series_reused: bool,
+    pub warnings: Vec<Problem>,
+}
+
+/// Labelled parts of a fingerprint, sorted by label.
+type Parts = BTreeMap<String, String>;
+
+fn bits(v: f64) -> String {
+    format!("{:016x}", v.to_bits())
+}
+
+fn hash_parts(kind: &str, parts: &Parts) -> Key {
+    let mut h = blake3::Hasher::new();
+    h.update(kind.as_bytes());
+    h.update(&ENGINE_VERSION.to_le_bytes());
+    for (k, v) in parts {
+        h.update(&(k.len() as u64).to_le_bytes());
+        h.update(k.as_bytes());
+        h.update(&(v.len() as u64).to_le_bytes());
+        h.update(v.as_bytes());
+    }
+    *h.finalize().as_bytes()
+}
+
+/// The canonical parts of the nodes in `closure`, with parameters at their
+/// effective values in `stage`.
+fn closure_parts(
+    model: &Model,
+    closure: &std::collections::BTreeSet<Node>,
+    params: &[Option<f64>],
+    parts: &mut Parts,
+) {
+    for &n in closure {
+        let label = format!("def {}", graph::node_name(model, n));
+        let text = match n {
+            Node::Def(d) if matches!(model.defs[d].kind, DefKind::Param) => {
+                format!(
+                    "param {} = {}",
+                    model.defs[d].name,
+                    params[d].map_or("?".into(), bits)
+                )
+            }
+            _ => graph::canonical_node(model, n),
+        };
+        parts.insert(label, text);
+    }
+}
+
+/// Everything a stage's result depends on, except the start state.
+pub fn stage_parts(model: &Model, g: &DepGraph, s: usize, events_done: &[bool]) -> Parts {
+    let st = &model.stages[s];
+    let mut parts = Parts::new();
+    let closure = g.stage_closure(model, s);
+    let params = compile::stage_params(model, Some(s));
+    closure_parts(model, &closure, &params, &mut parts);
+    parts.insert(
+        "span".into(),
+        format!("{} {}", bits(st.start_age), bits(st.end_age)),
+    );
+    let ages = solve::report_ages(model);
+    let rows: Vec<String> = ages
+        .iter()
+        .filter(|&&a| a <= st.start_age && a >= st.end_age && (s == 0 || a < st.start_age))
+        .map(|&a| bits(a))
+        .collect();
+    parts.insert("report ages".into(), rows.join(","));
+    parts.insert("solver settings".into(), format!("{:?}", st.solver));
+    parts.insert("span start".into(), bits(model.start_age));
+    let layout: Vec<&str> = compile::state_order(model)
+        .iter()
+        .map(|&d| model.defs[d].name.as_str())
+        .collect();
+    parts.insert("state layout".into(), layout.join(","));
+    parts.insert("events already seen".into(), format!("{events_done:?}"));
+    parts
+}
+
+// ---- payload encoding ----------------------------------------------------
+
+struct W(Vec<u8>);
+impl W {
+    fn u64(&mut self, v: u64) {
+        self.0.extend_from_slice(&v.to_le_bytes());
+    }
+    fn f64(&mut self, v: f64) {
+        self.0.extend_from_slice(&v.to_le_bytes());
+    }
+    fn str(&mut self, s: &str) {
+        self.u64(s.len() as u64);
+        self.0.extend_from_slice(s.as_bytes());
+    }
+}
+
+struct R<'a>(&'a [u8]);
+impl R<'_> {
+    fn take(&mut self, n: usize) -> Option<&[u8]> {
+        if self.0.len() < n {
+            return None;
+        }
+        let (a, b) = self.0.split_at(n);
+        self.0 = b;
+        Some(a)
+    }
+    fn u64(&mut self) -> Option<u64> {
+        Some(u64::from_le_bytes(self.take(8)?.try_into().ok()?))
+    }
+    fn f64(&mut self) -> Option<f64> {
+        Some(f64::from_le_bytes(self.take(8)?.try_into().ok()?))
+    }
+    fn len(&mut self, limit: usize) -> Option<usize> {
+        let n = self.u64()? as usize;
+        (n <= limit).then_some(n)
+    }
+    fn str(&mut self) -> Option<String> {
+        let n = self.len(1 << 20)?;
+        String::from_utf8(self.take(n)?.to_vec()).ok()
+    }
+}
+
+const PAYLOAD_VERSION: u64 = 1;
+
+pub fn encode_stage(r: &StageRun) -> Vec<u8> {
+    let mut w = W(Vec::new());
+    w.u64(PAYLOAD_VERSION);
+    let n = r.end.0.len();
+    w.u64(n as u64);
+    w.u64(r.rows.len() as u64);
+    for (age, y) in &r.rows {
+        w.f64(*age);
+        for v in y {
+            w.f64(*v);
+        }
+    }
+    for v in &r.end.0 {
+        w.f64(*v);
+    }
+    let s = &r.stats;
+    for v in [
+        s.accepted,
+        s.rejected,
+        s.rhs_evals,
+        s.jacobians,
+        s.explicit_steps,
+        s.implicit_steps,
+    ] {
+        w.u64(v);
+    }
+    match s.switched_at {
+        Some(t) => {
+            w.u64(1);
+            w.f64(t);
+        }
+        None => w.u64(0),
+    }
+    w.str(&r.method);
+    w.f64(r.closure_error);
+    w.u64(r.events.len() as u64);
+    for e in &r.events {
+        match e {
+            Some(a) => {
+                w.u64(1);
+                w.f64(*a);
+            }
+            None => w.u64(0),
+        }
+    }
+    w.0
+}
+
+pub fn decode_stage(stage: usize, bytes: &[u8]) -> Option<StageRun> {
+    let mut r = R(bytes);
+    if r.u64()? != PAYLOAD_VERSION {
+        return None;
+    }
+    let n = r.len(1 << 24)?;
+    let rows_n = r.len(1 << 28)?;
+    let mut rows = Vec::with_capacity(rows_n.min(bytes.len() / 8));
+    for _ in 0..rows_n {
+        let age = r.f64()?;
+        let mut y = Vec::with_capacity(n);
+        for _ in 0..n {
+            y.push(r.f64()?);
+        }
+        rows.push((age, y));
+    }
+    let mut end = Vec::with_capacity(n);
+    for _ in 0..n {
+        end.push(r.f64()?);
+    }
+    let mut stats = Stats {
+        accepted: r.u64()?,
+        rejected: r.u64()?,
+        rhs_evals: r.u64()?,
+        jacobians: r.u64()?,
+        explicit_steps: r.u64()?,
+        implicit_steps: r.u64()?,
+        switched_at: None,
+    };
+    if r.u64()? == 1 {
+        stats.switched_at = Some(r.f64()?);
+    }
+    let method = r.str()?;
+    let closure_error = r.f64()?;
+    let ne = r.len(1 << 20)?;
+    let mut events = Vec::with_capacity(ne);
+    for _ in 0..ne {
+        events.push(if r.u64()? == 1 { Some(r.f64()?) } else { None });
+    }
+    if !r.0.is_empty() {
+        return None;
+    }
+    Some(StageRun {
+        stage,
+        rows,
+        end: State(end),
+        stats,
+        method,
+        closure_error,
+        events,
+        wall: std::time::Duration::ZERO,
+    })
+}
+
+// ---- why a stage was recomputed ------------------------------------------
+
+/// Hashes of each part of each stage's fingerprint at the last run of a
+/// scenario, kept beside the store to explain what changed. A hint only: it
+/// never decides reuse.
+#[derive(Debug, Default, serde::Serialize, serde::Deserialize)]
+struct Trace {
+    stages: BTreeMap<String, BTreeMap<String, String>>,
+}
+
+fn trace_path(store: &Store, model: &Model) -> PathBuf {
+    let name = model.name.clone().unwrap_or_default();
+    let safe: String = name
+        .chars()
+        .map(|c| {
+            if c.is_ascii_alphanumeric() || c == '_' {
+                c
+            } else {
+                '_'
+            }
+        })
+        .collect();
+    store.root().join("traces").join(format!("{safe}.json"))
+}
+
+fn part_hashes(parts: &Parts) -> BTreeMap<String, String> {
+    parts
+        .iter()
+        .map(|(k, v)| {
+            (
+                k.clone(),
+                blake3::hash(v.as_bytes()).to_hex()[..16].to_string(),
+            )
+        })
+        .collect()
+}
+
+fn reason(previous: Option<&BTreeMap<String, String>>, now: &BTreeMap<String, String>) -> String {
+    let Some(prev) = previous else {
+        return "not in the cache".into();
+    };
+    let mut changed: Vec<String> = Vec::new();
+    for (k, v) in now {
+        match prev.get(k) {
+            Some(p) if p == v => {}
+            Some(_) => changed.push(k.clone()),
+            None => changed.push(format!("{k} (new)")),
+        }
+    }
+    for k in prev.keys() {
+        if !now.contains_key(k) {
+            changed.push(format!("{k} (removed)"));
+        }
+    }
+    let defs: Vec<String> = changed
+        .iter()
+        .filter_map(|c| c.strip_prefix("def ").map(str::to_owned))
+        .collect();
+    let other: Vec<&String> = changed.iter().filter(|c| !c.starts_with("def ")).collect();
+    let mut words = Vec::new();
+    if !defs.is_empty() {
+        words.push(format!("changed: {}", defs.join(", ")));
+    }
+    for o in other {
+        words.push(if o == "start state" {
+            "the incoming state changed".to_owned()
+        } else {
+            format!("{o} changed")
+        });
+    }
+    if words.is_empty() {
+        "not in the cache".into()
+    } else {
+        words.join("; ")
+    }
+}
+
+/// Run every stage, reusing cached ones where the fingerprint matches.
+pub fn execute(model: &Model, store: Option<&Store>) -> Result<Outcome, Problem> {
+    let g = DepGraph::build(model);
+    let mut warnings = Vec::new();
+    let previous: Trace = store
+        .and_then(|s| std::fs::read(trace_path(s, model)).ok())
+        .and_then(|b| serde_json::from_slice(&b).ok())
+        .unwrap_or_default();
+    let mut trace = Trace::default();
+    let event_ids = solve::event_defs(model);
+    let mut events: Vec<Option<f64>> = vec![None; event_ids.len()];
+    let mut state = solve::initial_state(model);
+    let mut runs = Vec::new();
+    let mut reports = Vec::new();
+    let mut solved_hash = blake3::Hasher::new();
+    for s in 0..model.stages.len() {
+        let done: Vec<bool> = events.iter().map(Option::is_some).collect();
+        let mut parts = stage_parts(model, &g, s, &done);
+        parts.insert(
+            "start state".into(),
+            blake3::hash(&state.to_bytes()).to_hex().to_string(),
+        );
+        let key = hash_parts("hadal stage", &parts);
+        let hashes = part_hashes(&parts);
+        let stage_name = model.stages[s].name.clone();
+        let mut cached = None;
+        if let Some(store) = store {
+            match store.get(&key) {
+                Ok(Some(bytes)) => match decode_stage(s, &bytes) {
+                    Some(r) if r.end.0.len() == state.0.len() => cached = Some((r, bytes)),
+                    _ => warnings.push(
+                        Problem::warning("H0701", format!("cache entry for stage `{stage_name}` could not be decoded; recomputed"))
+                            .help("run `hadal cache verify`; the entry was written by another engine version or damaged"),
+                    ),
+                },
+                Ok(None) => {}
+                Err(c) => warnings.push(
+                    Problem::warning(
+                        "H0701",
+                        format!("cache entry {} for stage `{stage_name}` is corrupt ({}); it was discarded and the stage recomputed", c.path.display(), c.why),
+                    )
+                    .help("nothing corrupt is ever used; run `hadal cache verify` to check the rest of the cache"),
+                ),
+            }
+        }
+        let (run, bytes, status, why) = match cached {
+            Some((r, bytes)) => (r, bytes, Status::Reused, String::new()),
+            None => {
+                let r = solve::solve_stage(model, s, &state, &done)?;
+                let bytes = encode_stage(&r);
+                if let Some(store) = store {
+                    if let Err(e) = store.put(&key, &bytes) {
+                        warnings.push(Problem::warning(
+                            "H0702",
+                            format!(
+                                "could not write to the cache at {}: {e}",
+                                store.root().display()
+                            ),
+                        ));
+                    }
+                }
+                let why = if store.is_some() {
+                    reason(previous.stages.get(&stage_name), &hashes)
+                } else {
+                    "the cache is off".into()
+                };
+                (r, bytes, Status::Computed, why)
+            }
+        };
+        solved_hash.update(&bytes);
+        trace.stages.insert(stage_name, hashes);
+        for (k, e) in run.events.iter().enumerate() {
+            if events[k].is_none() {
+                events[k] = *e;
+            }
+        }
+        state = run.end.clone();
+        reports.push(StageReport {
+            stage: s,
+            status,
+            reason: why,
+            fingerprint: key_hex(&key),
+        });
+        runs.push(run);
+    }
+    let run = Run {
+        stages: runs,
+        event_defs: event_ids,
+        events,
+    };
+
+    // Derived outputs: keyed by their own definitions and the solved rows.
+    let columns = report::columns(model);
+    let targets: Vec<Node> = columns
+        .iter()
+        .filter_map(|c| c.def)
+        .map(Node::Def)
+        .collect();
+    let closure = g.closure(&targets);
+    let mut parts = Parts::new();
+    for s in 0..model.stages.len() {
+        let params = compile::stage_params(model, Some(s));
+        let mut p = Parts::new();
+        closure_parts(model, &closure, &params, &mut p);
+        for (k, v) in p {
+            parts.insert(format!("stage {s} {k}"), v);
+        }
+    }
+    let cols: Vec<String> = columns
+        .iter()
+        .map(|c| format!("{} [{}]", c.name, c.unit))
+        .collect();
+    parts.insert("columns".into(), cols.join(","));
+    parts.insert(
+        "solved rows".into(),
+        solved_hash.finalize().to_hex().to_string(),
+    );
+    let key = hash_parts("hadal series", &parts);
+    let mut series_reused = false;
+    let mut series_csv = None;
+    if let Some(store) = store {
+        match store.get(&key) {
+            Ok(Some(b)) => {
+                series_csv = Some(b);
+                series_reused = true;
+            }
+            Ok(None) => {}
+            Err(c) => warnings.push(Problem::warning(
+                "H0701",
+                format!(
+                    "cache entry {} for the series is corrupt ({}); recomputed",
+                    c.path.display(),
+                    c.why
+                ),
+            )),
+        }
+    }
+    let series_csv = match series_csv {
+        Some(b) => b,
+        None => {
+            let s = report::series(model, &run)?;
+            let b = s.to_csv();
+            if let Some(store) = store {
+                let _ = store.put(&key, &b);
+            }
+            b
+        }
+    };
+    let rows = series_csv
+        .iter()
+        .filter(|&&c| c == b'\n')
+        .count()
+        .saturating_sub(1);
+    if let Some(store) = store {
+        let path = trace_path(store, model);
+        if let Some(dir) = path.parent() {
+            let _ = std::fs::create_dir_all(dir);
+        }
+        if let Ok(b) = serde_json::to_vec_pretty(&trace) {
+            let _ = crate::fsutil::write_atomic(&path, &b);
+        }
+    }
+    Ok(Outcome {
+        run,
+        stages: reports,
+        series_csv,
+        rows,
+        series_reused,
+        warnings,
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn stage_payload_roundtrips_bit_for_bit() {
+        let r = StageRun {
+            stage: 2,
+            rows: vec![
+                (4.5e9, vec![1.0, f64::MIN_POSITIVE, -0.0]),
+                (4.4e9, vec![2.0, 3.5e21, 1e-300]),
+            ],
+            end: State(vec![0.1, 0.2, 0.3]),
+            stats: Stats {
+                accepted: 7,
+                rejected: 1,
+                rhs_evals: 50,
+                jacobians: 2,
+                explicit_steps: 5,
+                implicit_steps: 2,
+                switched_at: Some(1.25e8),
+            },
+            method: "explicit, then implicit".into(),
+            closure_error: 3e-16,
+            events: vec![None, Some(2.5e9)],
+            wall: std::time::Duration::ZERO,
+        };
+        let b = encode_stage(&r);
+        let d = decode_stage(2, &b).unwrap();
+        assert_eq!(encode_stage(&d), b);
+        assert_eq!(d.rows[0].1[2].to_bits(), (-0.0f64).to_bits());
+        assert_eq!(d.stats, r.stats);
+        // Truncated payloads are refused, not misread.
+        assert!(decode_stage(2, &b[..b.len() - 1]).is_none());
+    }
+}
