@@ -12,6 +12,7 @@ pub mod compile;
 pub mod diagnostic;
 pub mod fsutil;
 pub mod graph;
+pub mod manifest;
 pub mod model;
 pub mod numeric;
 pub mod pipeline;

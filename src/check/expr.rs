@@ -151,6 +151,29 @@ impl Checker {
             syntax::ExprKind::Name(id) => self.check_name(id),
             syntax::ExprKind::Paren(inner) => self.check_expr(inner),
             syntax::ExprKind::Unary { op, operand } => {
+                // `-20 degC` is minus twenty degrees Celsius (253.15 K), not
+                // the negation of 293.15 K: a negative literal in a unit with
+                // an offset is converted as one number.
+                if let (
+                    UnOp::Neg,
+                    syntax::ExprKind::Quantity {
+                        value,
+                        unit: Some(u),
+                        ..
+                    },
+                ) = (op, &operand.kind)
+                {
+                    if let Ok(unit) =
+                        units::combine(u.factors.iter().map(|f| (f.name.as_str(), f.power)))
+                    {
+                        if unit.offset != 0.0 && value.is_finite() {
+                            return (
+                                mk(ExprKind::Num(unit.to_internal(-*value))),
+                                Typed::num(unit.dim, true),
+                            );
+                        }
+                    }
+                }
                 let (x, t) = self.check_expr(operand);
                 match op {
                     UnOp::Neg => {
@@ -606,12 +629,14 @@ impl Checker {
                     return fail(self);
                 }
                 let (x, t) = self.check_expr(&args[0]);
-                self.expect_dim(
+                if !self.expect_dim(
                     &t,
                     Dim::NONE,
                     args[0].span,
                     &format!("the argument of `{name}`"),
-                );
+                ) {
+                    return fail(self);
+                }
                 let f = match name {
                     "exp" => Builtin::Exp,
                     "ln" => Builtin::Ln,
@@ -640,7 +665,7 @@ impl Checker {
                         }
                     }
                     Ty::Bool => {
-                        self.want_bool(t, args[0].span, "");
+                        self.condition_argument(name, args[0].span);
                         Ty::Error
                     }
                     Ty::Error => Ty::Error,
@@ -696,7 +721,8 @@ impl Checker {
                 }
                 let (d0, s0) = dims[0];
                 for &(d, s) in &dims[1..] {
-                    if !d.same_base(d0) {
+                    let kinds_differ = d0.same_base(Dim::TIME) && d.point != d0.point;
+                    if !d.same_base(d0) || kinds_differ {
                         let mut p = Problem::error(
                             "H0301",
                             format!(
@@ -707,7 +733,11 @@ impl Checker {
                         )
                         .label(s0, d0.words())
                         .label(s, d.words());
-                        p = p.help("all arguments must have the same dimension");
+                        p = p.help(if kinds_differ {
+                            "ages (Ga, Ma, ka) are points before present; durations (Gyr, Myr, kyr, yr) are lengths of time: do not mix them"
+                        } else {
+                            "all arguments must have the same dimension"
+                        });
                         self.error(p);
                         return fail(self);
                     }
@@ -739,7 +769,7 @@ impl Checker {
                 let ty = match tq.ty {
                     Ty::Num(d) => Ty::Num(d.plain()),
                     Ty::Bool => {
-                        self.want_bool(tq, args[0].span, "");
+                        self.condition_argument(name, args[0].span);
                         Ty::Error
                     }
                     Ty::Error => Ty::Error,
@@ -825,6 +855,14 @@ impl Checker {
                 fail(self)
             }
         }
+    }
+
+    fn condition_argument(&mut self, func: &str, span: Span) {
+        self.error(
+            Problem::error("H0306", format!("`{func}` needs a number, not a condition"))
+                .label(span, "a condition")
+                .help("wrap a condition in `if C then 1 else 0` to use it as a number"),
+        );
     }
 
     fn call(&mut self, f: Builtin, args: Vec<Expr>, span: Span, t: Typed) -> (Expr, Typed) {

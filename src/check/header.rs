@@ -66,7 +66,7 @@ impl Checker {
     }
 
     /// A model view over what is checked so far, for constant folding.
-    fn partial_model(&self) -> Model {
+    pub(crate) fn partial_model(&self) -> Model {
         Model {
             name: None,
             title: None,

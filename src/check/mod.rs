@@ -58,17 +58,7 @@ pub fn check_file(path: &Path, options: &CheckOptions) -> Result<Checked, CheckE
         path: path.to_owned(),
         message,
     })?;
-    let root_dir = path
-        .parent()
-        .map(|p| {
-            if p.as_os_str().is_empty() {
-                Path::new(".")
-            } else {
-                p
-            }
-        })
-        .unwrap_or(Path::new("."))
-        .to_owned();
+    let root_dir = project_root(path);
     let name = display_name(path);
     check_text(&name, path, &text, &root_dir, options)
 }
@@ -106,6 +96,26 @@ pub fn check_text(
             })
         }
     }
+}
+
+/// The project a scenario belongs to: the nearest directory above it that
+/// holds a `.git` (a versioned project), else the scenario's own directory.
+/// Includes and tables may not reach outside it, and manifests name files
+/// relative to it.
+pub fn project_root(scenario: &Path) -> PathBuf {
+    let dir = match scenario.parent() {
+        Some(p) if !p.as_os_str().is_empty() => p,
+        _ => Path::new("."),
+    };
+    let dir = std::fs::canonicalize(dir).unwrap_or_else(|_| dir.to_owned());
+    let mut cur = Some(dir.as_path());
+    while let Some(d) = cur {
+        if d.join(".git").exists() {
+            return d.to_owned();
+        }
+        cur = d.parent();
+    }
+    dir
 }
 
 fn display_name(path: &Path) -> String {
@@ -431,6 +441,7 @@ impl Checker {
         for id in 0..self.defs.len() {
             self.def_type(id);
         }
+        self.check_finite_constants();
         self.check_def_extras();
         let header = self.check_header();
         let mut stages = self.check_stages(&header);
@@ -734,6 +745,38 @@ impl Checker {
         }
         self.slots[id] = Slot::Done(result);
         result
+    }
+
+    /// Constants and parameters are known now; one that is infinite or not
+    /// a number (a division by zero, an overflow) is an error here rather
+    /// than a failed run later.
+    fn check_finite_constants(&mut self) {
+        let model = self.partial_model();
+        for (id, def) in model.defs.iter().enumerate() {
+            if def.prelude || !matches!(def.kind, DefKind::Const | DefKind::Param) {
+                continue;
+            }
+            if matches!(self.slots[id], Slot::Done(t) if t.ty == expr::Ty::Error) {
+                continue;
+            }
+            if let Some(v) = eval_const(&model, &def.expr) {
+                if !v.is_finite() {
+                    let what = if v.is_nan() {
+                        "not a number (NaN)"
+                    } else {
+                        "infinite"
+                    };
+                    self.error(
+                        Problem::error(
+                            "H0303",
+                            format!("the value of {} `{}` is {what}", def.kind.word(), def.name),
+                        )
+                        .label(def.expr.span, "not finite")
+                        .help("look for a division by zero or a result too large for a number"),
+                    );
+                }
+            }
+        }
     }
 
     fn report_cycle(&mut self, id: DefId) {

@@ -14,6 +14,7 @@ use crate::diagnostic::Problem;
 use crate::span::Sources;
 
 mod run;
+mod verify;
 
 pub const EXIT_OK: i32 = 0;
 pub const EXIT_INVALID: i32 = 1;
@@ -77,6 +78,16 @@ enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// Rerun published runs from scratch and check every output against their manifests
+    Verify {
+        #[arg(required = true)]
+        manifests: Vec<PathBuf>,
+        /// Accept numeric differences up to this relative size (and say how large they were)
+        #[arg(long, value_name = "X")]
+        rtol: Option<f64>,
+    },
+    /// Compare two runs (output directories or manifests)
+    Diff { a: PathBuf, b: PathBuf },
     /// Inspect and maintain the stage cache (HADAL_CACHE, default .hadal-cache)
     Cache {
         #[command(subcommand)]
@@ -122,6 +133,8 @@ pub fn main() -> i32 {
             no_cache,
         } => run::cmd_run(&file, out.as_deref(), &sets, json, !no_cache),
         Command::Params { file, sets, json } => run::cmd_params(&file, &sets, json),
+        Command::Verify { manifests, rtol } => verify::cmd_verify(&manifests, rtol),
+        Command::Diff { a, b } => verify::cmd_diff(&a, &b),
         Command::Cache { action } => match action {
             CacheAction::Stats => run::cmd_cache_stats(),
             CacheAction::Verify => run::cmd_cache_verify(),

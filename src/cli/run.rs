@@ -84,16 +84,31 @@ pub(crate) fn cmd_run(
     let dir = out
         .map(Path::to_owned)
         .unwrap_or_else(|| PathBuf::from("outputs").join(&name));
-    let files = [
+    let mut files = vec![
         ("series.csv", outcome.series_csv.clone()),
         ("stages.csv", rep::stages_csv(model, &outcome.run)),
         ("events.csv", rep::events_csv(model, &outcome.run)),
     ];
+    let overrides = parse_sets(sets).unwrap_or_default();
+    let wall = clock.elapsed();
+    if let Err(e) = std::fs::create_dir_all(&dir) {
+        return usage_error(format!("cannot create {}: {e}", dir.display()));
+    }
+    let manifest = crate::manifest::build(
+        model,
+        file,
+        &overrides,
+        &outcome,
+        &files,
+        &dir,
+        wall.as_secs_f64() * 1e3,
+    );
+    // The manifest is written last: a directory with a manifest is complete.
+    files.push(("manifest.json", manifest.to_json()));
     if let Err(e) = write_outputs(&dir, &files) {
         return usage_error(e);
     }
     let closure_problems = closure_problems(model, &outcome.run);
-    let wall = clock.elapsed();
     if json {
         println!("{}", summary_json(model, &outcome, &dir, wall));
     } else {
@@ -217,7 +232,7 @@ fn print_summary(model: &Model, outcome: &Outcome, dir: &Path, wall: std::time::
         }
     }
     println!(
-        "wrote {} (series.csv, stages.csv, events.csv) in {:.1} ms",
+        "wrote {} (series.csv, stages.csv, events.csv, manifest.json) in {:.1} ms",
         dir.display(),
         wall.as_secs_f64() * 1e3
     );

@@ -449,8 +449,10 @@ fn initial_step(y: &[f64], f: &[f64], ctl: &Control, hmax: f64) -> f64 {
     let mut fnorm = 0.0;
     for i in 0..ctl.n_err {
         let sc = ctl.atol[i] + ctl.rtol * y[i].abs();
-        dn += (y[i] / sc).powi(2);
-        fnorm += (f[i] / sc).powi(2);
+        let a = y[i] / sc;
+        dn += a * a;
+        let b = f[i] / sc;
+        fnorm += b * b;
     }
     let h = if dn < 1e-10 || fnorm < 1e-10 {
         1e-6 * hmax
@@ -613,7 +615,8 @@ fn sdirk_step(
             let mut norm = 0.0;
             for i in 0..ctl.n_err {
                 let sc = ctl.atol[i] + ctl.rtol * w.z[i].abs();
-                norm += (w.delta[i] / sc).powi(2);
+                let d = w.delta[i] / sc;
+                norm += d * d;
             }
             let norm = libm::sqrt(norm / ctl.n_err.max(1) as f64);
             for i in 0..n {

@@ -349,7 +349,15 @@ pub fn combine<'a>(factors: impl IntoIterator<Item = (&'a str, i32)>) -> Result<
     let mut dim = Dim::NONE;
     for (i, (name, power)) in factors.iter().enumerate() {
         let u = lookup(name).ok_or_else(|| UnitError::Unknown(i, (*name).to_owned()))?;
-        scale *= u.scale.powi(*power);
+        // Repeated multiplication rather than `powi`, whose evaluation order
+        // the compiler may choose per platform.
+        for _ in 0..power.unsigned_abs() {
+            if *power > 0 {
+                scale *= u.scale;
+            } else {
+                scale /= u.scale;
+            }
+        }
         dim = dim
             .times(u.dim.plain().powi(*power).ok_or(UnitError::Overflow)?)
             .ok_or(UnitError::Overflow)?;
