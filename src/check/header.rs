@@ -529,10 +529,9 @@ impl Checker {
             let StmtKind::Expect { subject, check } = &stmt.kind else {
                 continue;
             };
-            let text = {
-                let src = &self.sources.get(stmt.span.file).text;
-                src[stmt.span.start as usize..stmt.span.end as usize].to_owned()
-            };
+            // In canonical layout, so that reformatting the file does not
+            // change the model.
+            let text = syntax::format_stmt(&stmt);
             if let syntax::ExpectCheck::Event { before, age } = check {
                 let event = match &subject.kind {
                     syntax::ExprKind::Name(id) => self

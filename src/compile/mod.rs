@@ -16,7 +16,7 @@ use hyps::Hypsometry;
 type Reg = u32;
 
 /// One instruction: destination first.
-#[derive(Debug, Clone, Copy)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
 pub enum Ins {
     Add(Reg, Reg, Reg),
     Sub(Reg, Reg, Reg),
@@ -63,9 +63,12 @@ pub struct Probe {
 /// A compiled stage: the right-hand side of the ODE and observers.
 #[derive(Debug, Clone)]
 pub struct Program {
-    pub ins: Vec<Ins>,
+    /// Every register index and table index in `ins` is within `init` and
+    /// the table lists (checked when the program is built), which is what
+    /// lets `exec` skip bounds checks.
+    ins: Vec<Ins>,
     /// Register file at start: state slots, clock, constants.
-    pub init: Vec<f64>,
+    init: Vec<f64>,
     /// Number of state components (reservoirs, then states).
     pub n_state: usize,
     /// Definition of each state component.
@@ -103,11 +106,74 @@ impl Program {
     #[inline]
     pub fn eval(&self, regs: &mut Regs, y: &[f64], t: f64, age: f64) {
         let r = &mut regs.0;
+        // Registers from another program would break `exec`'s invariant.
+        assert_eq!(r.len(), self.init.len(), "registers of another program");
         r[..self.n_state].copy_from_slice(&y[..self.n_state]);
         r[self.age_reg as usize] = age;
         r[self.time_reg as usize] = t;
         for ins in &self.ins {
-            exec(self, r, *ins);
+            // SAFETY: `r` has `init.len()` registers (asserted above) and
+            // `check_bounds` verified every index in `ins` when the program
+            // was built.
+            unsafe { exec(self, r, *ins) };
+        }
+    }
+
+    /// Number of instructions (for tests and benchmarks).
+    pub fn len(&self) -> usize {
+        self.ins.len()
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.ins.is_empty()
+    }
+
+    /// Verify every register and table index; called once per program.
+    fn check_bounds(&self) {
+        let n = self.init.len() as u32;
+        let t = self.tables.len() as u32;
+        let ok = |regs: &[Reg], tables: &[u32]| {
+            regs.iter().all(|&r| r < n) && tables.iter().all(|&x| x < t)
+        };
+        for ins in &self.ins {
+            let fine = match *ins {
+                Ins::Add(d, a, b)
+                | Ins::Sub(d, a, b)
+                | Ins::Mul(d, a, b)
+                | Ins::Div(d, a, b)
+                | Ins::Pow(d, a, b)
+                | Ins::Other(_, d, a, b)
+                | Ins::Min(d, a, b)
+                | Ins::Max(d, a, b)
+                | Ins::Decay(d, a, b)
+                | Ins::Fill(d, a, b)
+                | Ins::Excess(d, a, b) => ok(&[d, a, b, self.age_reg], &[]),
+                Ins::Square(d, a)
+                | Ins::Neg(d, a)
+                | Ins::Not(d, a)
+                | Ins::Exp(d, a)
+                | Ins::Ln(d, a)
+                | Ins::Log10(d, a)
+                | Ins::Sqrt(d, a)
+                | Ins::Abs(d, a) => ok(&[d, a], &[]),
+                Ins::Select(d, c, a, b) | Ins::Clamp(d, c, a, b) | Ins::Smoothstep(d, c, a, b) => {
+                    ok(&[d, c, a, b], &[])
+                }
+                Ins::Interp(d, tb, x)
+                | Ins::SeaLevel(d, tb, x)
+                | Ins::LandFraction(d, tb, x)
+                | Ins::BasinVolume(d, tb, x) => ok(&[d, x], &[tb]),
+                Ins::SeaLevelIsostatic(d, tb, v, a, b) => ok(&[d, v, a, b], &[tb]),
+            };
+            assert!(fine, "compiler produced an out-of-range register: {ins:?}");
+        }
+        for r in self
+            .fluxes
+            .iter()
+            .map(|f| f.0)
+            .chain(self.rates.iter().map(|r| r.1))
+        {
+            assert!(r < n);
         }
     }
 
@@ -142,11 +208,14 @@ impl Program {
     }
 }
 
+/// # Safety
+/// Every register index in `ins` must be below `r.len()` and every table
+/// index within `p`'s tables (see `Program::check_bounds`).
 #[inline(always)]
-fn exec(p: &Program, r: &mut [f64], ins: Ins) {
+unsafe fn exec(p: &Program, r: &mut [f64], ins: Ins) {
     macro_rules! g {
         ($x:expr) => {
-            r[$x as usize]
+            *r.get_unchecked_mut($x as usize)
         };
     }
     match ins {
@@ -173,16 +242,16 @@ fn exec(p: &Program, r: &mut [f64], ins: Ins) {
             g!(d) = g!(q) * libm::exp2(r[p.age_reg as usize] / g!(h));
         }
         Ins::Interp(d, t, x) => {
-            let (xs, ys) = &p.tables[t as usize];
+            let (xs, ys) = p.tables.get_unchecked(t as usize);
             g!(d) = numeric::interp(xs, ys, g!(x));
         }
-        Ins::SeaLevel(d, h, v) => g!(d) = p.hyps[h as usize].sea_level(g!(v)),
+        Ins::SeaLevel(d, h, v) => g!(d) = p.hyps.get_unchecked(h as usize).sea_level(g!(v)),
         Ins::SeaLevelIsostatic(d, h, v, rw, rm) => {
             let f = (g!(rm) - g!(rw)) / g!(rm);
-            g!(d) = p.hyps[h as usize].sea_level(g!(v) * f);
+            g!(d) = p.hyps.get_unchecked(h as usize).sea_level(g!(v) * f);
         }
-        Ins::LandFraction(d, h, v) => g!(d) = p.hyps[h as usize].land_fraction(g!(v)),
-        Ins::BasinVolume(d, h, z) => g!(d) = p.hyps[h as usize].basin_volume(g!(z)),
+        Ins::LandFraction(d, h, v) => g!(d) = p.hyps.get_unchecked(h as usize).land_fraction(g!(v)),
+        Ins::BasinVolume(d, h, z) => g!(d) = p.hyps.get_unchecked(h as usize).basin_volume(g!(z)),
         Ins::Fill(d, m, c) => g!(d) = g!(m) / g!(c),
         Ins::Excess(d, m, c) => g!(d) = (g!(m) - g!(c)).max(0.0),
     }
@@ -239,6 +308,7 @@ struct Compiler<'m> {
     time_reg: Reg,
     tables: Vec<usize>,
     age_knots: Vec<f64>,
+    seen: std::collections::HashMap<Ins, Reg>,
 }
 
 impl<'m> Compiler<'m> {
@@ -269,6 +339,7 @@ impl<'m> Compiler<'m> {
             time_reg: n as Reg + 1,
             tables: Vec::new(),
             age_knots: Vec::new(),
+            seen: Default::default(),
         }
     }
 
@@ -342,7 +413,7 @@ impl<'m> Compiler<'m> {
         let mut age_knots = std::mem::take(&mut self.age_knots);
         age_knots.sort_by(|a, b| b.total_cmp(a));
         age_knots.dedup();
-        Program {
+        let program = Program {
             ins: std::mem::take(&mut self.ins),
             init: std::mem::take(&mut self.init),
             n_state: self.age_reg as usize,
@@ -358,7 +429,9 @@ impl<'m> Compiler<'m> {
             tables,
             hyps,
             age_knots,
-        }
+        };
+        program.check_bounds();
+        program
     }
 
     fn constant(&mut self, v: f64) -> Reg {
@@ -435,9 +508,14 @@ impl<'m> Compiler<'m> {
         self.konst(r)
     }
 
-    fn emit(&mut self, ins: impl FnOnce(Reg) -> Ins, args: &[Reg]) -> Reg {
+    fn emit(&mut self, make: impl Fn(Reg) -> Ins, args: &[Reg]) -> Reg {
+        // The same operation on the same registers is computed once.
+        let key = make(Reg::MAX);
+        if let Some(&r) = self.seen.get(&key) {
+            return r;
+        }
         let dst = self.temp();
-        let ins = ins(dst);
+        let ins = make(dst);
         if args.iter().all(|&a| self.is_const[a as usize]) {
             // Every operand known now: evaluate once at compile time. Age and
             // time are never constant, so clock-dependent code stays.
@@ -472,7 +550,10 @@ impl<'m> Compiler<'m> {
                     .collect(),
                 age_knots: Vec::new(),
             };
-            exec(&probe, &mut scratch, ins);
+            // SAFETY: the operands are existing registers and `dst` was just
+            // allocated, all within `scratch` (a copy of the register file);
+            // table indices come from `self.table`, within `probe.tables`.
+            unsafe { exec(&probe, &mut scratch, ins) };
             let v = scratch[dst as usize];
             // Drop the temporary and share the constant.
             self.init.pop();
@@ -480,6 +561,7 @@ impl<'m> Compiler<'m> {
             return self.constant(v);
         }
         self.ins.push(ins);
+        self.seen.insert(key, dst);
         dst
     }
 

@@ -95,10 +95,21 @@ pub fn initial_state(model: &Model) -> State {
     State(y)
 }
 
-struct Sys<'p> {
+/// A compiled stage program as an ODE system for the integrators.
+pub struct Sys<'p> {
     prog: &'p Program,
     regs: Regs,
     start_age: f64,
+}
+
+impl<'p> Sys<'p> {
+    pub fn new(model: &Model, prog: &'p Program) -> Sys<'p> {
+        Sys {
+            prog,
+            regs: prog.regs(),
+            start_age: model.start_age,
+        }
+    }
 }
 
 impl System for Sys<'_> {
@@ -226,6 +237,40 @@ fn water_total(model: &Model, y: &[f64]) -> f64 {
     y[..n_res].iter().sum::<f64>() + y[n - 1] - y[n - 2]
 }
 
+/// The integrator settings of stage `s` starting from `start`: absolute
+/// tolerances scale with the total water for reservoirs and the ledger, and
+/// with each state's starting size for states.
+pub fn stage_control(model: &Model, s: usize, start: &State) -> Control {
+    let st = &model.stages[s];
+    let n = start.0.len();
+    let n_state = n - 2;
+    let n_res = model.reservoirs().count();
+    let mass_scale = start.0[..n_res]
+        .iter()
+        .map(|v| v.abs())
+        .sum::<f64>()
+        .max(1.0);
+    let atol = (0..n)
+        .map(|i| {
+            let scale = if i < n_res || i >= n_state {
+                mass_scale
+            } else {
+                start.0[i].abs().max(1e-300)
+            };
+            st.solver.atol * scale
+        })
+        .collect();
+    Control {
+        rtol: st.solver.rtol,
+        atol,
+        n_err: n_state,
+        max_step: st.solver.max_step.unwrap_or(f64::INFINITY),
+        initial_step: st.solver.initial_step,
+        max_steps: st.solver.max_steps,
+        method: st.solver.method,
+    }
+}
+
 /// Integrate stage `s` from state `start`. `events_done` says which events
 /// already happened in earlier stages (they are not looked for again).
 pub fn solve_stage(
@@ -262,26 +307,9 @@ pub fn solve_stage(
         .map(|v| v.abs())
         .sum::<f64>()
         .max(1.0);
-    let mut atol = vec![0.0; n];
-    for (i, a) in atol.iter_mut().enumerate() {
-        let scale = if i < n_res || i >= prog.n_state {
-            mass_scale
-        } else {
-            start.0[i].abs().max(1e-300)
-        };
-        *a = st.solver.atol * scale;
-    }
     let span_t0 = model.start_age - st.start_age;
     let span_t1 = model.start_age - st.end_age;
-    let ctl = Control {
-        rtol: st.solver.rtol,
-        atol,
-        n_err: prog.n_state,
-        max_step: st.solver.max_step.unwrap_or(f64::INFINITY),
-        initial_step: st.solver.initial_step,
-        max_steps: st.solver.max_steps,
-        method: st.solver.method,
-    };
+    let ctl = stage_control(model, s, start);
     let mut y = start.0.clone();
     let ages = report_ages(model);
     let rows = stage_rows(model, s, &ages);
@@ -329,11 +357,7 @@ pub fn solve_stage(
         .collect();
     cuts.sort_by(f64::total_cmp);
     cuts.push(span_t1);
-    let mut sys = Sys {
-        prog: &prog,
-        regs: prog.regs(),
-        start_age: model.start_age,
-    };
+    let mut sys = Sys::new(model, &prog);
     let mut stats = Stats::default();
     let mut t = span_t0;
     for &cut in &cuts {

@@ -23,6 +23,14 @@ pub fn format_file(file: &SyntaxFile) -> String {
     out
 }
 
+/// Print one statement in canonical layout, without a line end. A stage
+/// body, if any, is printed with it.
+pub fn format_stmt(stmt: &Stmt) -> String {
+    let mut out = String::new();
+    write_stmt(&mut out, stmt, "");
+    out
+}
+
 fn entry_end_line(entry: &Entry) -> usize {
     match &entry.kind {
         EntryKind::Stmt(stmt) => match &stmt.kind {

@@ -8,5 +8,5 @@ mod format;
 mod parse;
 
 pub use ast::*;
-pub use format::{format_expr, format_file};
+pub use format::{format_expr, format_file, format_stmt};
 pub use parse::{parse, MAX_NESTING, MAX_OPERATORS};

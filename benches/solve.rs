@@ -1,0 +1,156 @@
+//! Solver benchmarks: the demo scenario compiled by hadal against the same
+//! equations written by hand in Rust, run by the same integrator, in one
+//! process so the ratio holds on a noisy machine.
+//!
+//!     cargo bench --bench solve
+//!
+//! Prints medians over repeated runs and the ratios the README reports.
+
+#[path = "hand_coded/mod.rs"]
+mod hand_coded;
+
+use std::hint::black_box;
+use std::path::Path;
+use std::time::{Duration, Instant};
+
+use hadal::compile::{self, Wants};
+use hadal::solve::methods::{self, Dense, Observer, Stats, Stop};
+use hadal::solve::{self, State};
+
+struct NoRows;
+impl Observer for NoRows {
+    fn accepted(&mut self, _: f64, _: f64, _: &[f64], _: &Dense) -> Result<(), Stop> {
+        Ok(())
+    }
+}
+
+/// Median wall time of `f` over enough repetitions to fill about `budget`.
+fn median(budget: Duration, mut f: impl FnMut()) -> Duration {
+    for _ in 0..3 {
+        f();
+    }
+    let mut samples = Vec::new();
+    let start = Instant::now();
+    while samples.len() < 15 || (start.elapsed() < budget && samples.len() < 2000) {
+        let t = Instant::now();
+        f();
+        samples.push(t.elapsed());
+    }
+    samples.sort();
+    samples[samples.len() / 2]
+}
+
+fn ms(d: Duration) -> String {
+    format!("{:.3} ms", d.as_secs_f64() * 1e3)
+}
+
+fn main() {
+    let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("scenarios/hot_start.hadal");
+    let model = hadal::check::check_file(&path, &Default::default())
+        .expect("the demo checks")
+        .model;
+    let budget = Duration::from_secs(3);
+
+    // 1. The compiled scenario, integration only: programs built once, the
+    //    same integrator and settings as the hand-coded function, no rows.
+    let programs: Vec<compile::Program> = (0..model.stages.len())
+        .map(|s| {
+            compile::compile(
+                &model,
+                Some(s),
+                &Wants {
+                    rhs: true,
+                    ..Default::default()
+                },
+            )
+        })
+        .collect();
+    let integrate_compiled = || {
+        let mut y = solve::initial_state(&model).0;
+        for (s, prog) in programs.iter().enumerate() {
+            let st = &model.stages[s];
+            let ctl = solve::stage_control(&model, s, &State(y.clone()));
+            let mut sys = solve::Sys::new(&model, prog);
+            let mut stats = Stats::default();
+            methods::integrate(
+                &mut sys,
+                model.start_age - st.start_age,
+                model.start_age - st.end_age,
+                &mut y,
+                &ctl,
+                &mut NoRows,
+                &mut stats,
+            )
+            .expect("integrates");
+        }
+        black_box(y);
+    };
+    let compiled = median(budget, integrate_compiled);
+    let hand = median(budget, || {
+        black_box(hand_coded::run_hand_coded());
+    });
+    // 2. The full solve as `hadal run` does it: compile every stage, watch
+    //    events, produce the 451 report rows.
+    let full = median(budget, || {
+        black_box(solve::solve(&model).expect("solves"));
+    });
+    // 3. Parse and check of the scenario and its includes.
+    let check = median(budget, || {
+        black_box(hadal::check::check_file(&path, &Default::default()).ok());
+    });
+    // 4. One right-hand-side evaluation.
+    let prog = &programs[1];
+    let y0 = solve::initial_state(&model).0;
+    let mut sys = solve::Sys::new(&model, prog);
+    let mut dy = vec![0.0; y0.len()];
+    let rhs = median(Duration::from_millis(500), || {
+        for _ in 0..1000 {
+            methods::System::rhs(&mut sys, black_box(1e9), black_box(&y0), &mut dy);
+        }
+        black_box(&dy);
+    }) / 1000;
+    let mut hsys = hand_coded::HandCoded::new(1);
+    let hrhs = median(Duration::from_millis(500), || {
+        for _ in 0..1000 {
+            methods::System::rhs(&mut hsys, black_box(1e9), black_box(&y0), &mut dy);
+        }
+        black_box(&dy);
+    }) / 1000;
+
+    println!("hot_start demo (3 stages, 4.5 Gyr), medians:");
+    println!(
+        "  {:<44} {:>12}",
+        "compiled scenario, integration only",
+        ms(compiled)
+    );
+    println!(
+        "  {:<44} {:>12}",
+        "hand-coded Rust, same integrator",
+        ms(hand)
+    );
+    println!(
+        "  {:<44} {:>12.2}x   (target <= 1.5x)",
+        "ratio compiled / hand-coded",
+        compiled.as_secs_f64() / hand.as_secs_f64()
+    );
+    println!(
+        "  {:<44} {:>12}",
+        "one right-hand side, compiled",
+        format!("{:.0} ns", rhs.as_secs_f64() * 1e9)
+    );
+    println!(
+        "  {:<44} {:>12}",
+        "one right-hand side, hand-coded",
+        format!("{:.0} ns", hrhs.as_secs_f64() * 1e9)
+    );
+    println!(
+        "  {:<44} {:>12}",
+        "full solve (compile, events, 451 rows)",
+        ms(full)
+    );
+    println!(
+        "  {:<44} {:>12}",
+        "parse and check (with include and table)",
+        ms(check)
+    );
+}
