@@ -32,7 +32,65 @@ pub struct Model {
     pub tables: Vec<Table>,
     pub stages: Vec<Stage>,
     pub expects: Vec<Expect>,
+    /// The ensemble block, if the scenario has one.
+    pub ensemble: Option<EnsembleSpec>,
     pub sources: Sources,
+}
+
+/// Which parameters an ensemble varies, and how.
+#[derive(Debug, Clone, PartialEq)]
+pub struct EnsembleSpec {
+    /// Members to run; `None` means the size of the grid/list design (or
+    /// 1000 when everything is random).
+    pub members: Option<u64>,
+    pub seed: u64,
+    pub vary: Vec<Vary>,
+    pub span: Span,
+}
+
+#[derive(Debug, Clone, PartialEq)]
+pub struct Vary {
+    pub param: DefId,
+    pub dist: Dist,
+    /// Truncation bounds, internal units.
+    pub min: Option<f64>,
+    pub max: Option<f64>,
+    pub span: Span,
+}
+
+/// A distribution of parameter values, in internal units.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Dist {
+    Uniform(f64, f64),
+    LogUniform(f64, f64),
+    Normal {
+        mean: f64,
+        sd: f64,
+    },
+    /// ln(x) is normal with mean ln(median) and standard deviation `sd_ln`.
+    LogNormal {
+        median: f64,
+        sd_ln: f64,
+    },
+    /// Each value in turn (a design axis).
+    List(Vec<f64>),
+    /// `n` evenly spaced values from `lo` to `hi` inclusive (a design axis).
+    Grid {
+        lo: f64,
+        hi: f64,
+        n: u64,
+    },
+}
+
+impl Dist {
+    /// Number of points of a design axis; `None` for random distributions.
+    pub fn axis_len(&self) -> Option<u64> {
+        match self {
+            Dist::List(v) => Some(v.len() as u64),
+            Dist::Grid { n, .. } => Some(*n),
+            _ => None,
+        }
+    }
 }
 
 #[derive(Debug, Clone)]
@@ -167,6 +225,9 @@ pub struct Expect {
     pub span: Span,
     /// The statement as written, for reports.
     pub text: String,
+    /// Unit for showing the subject's value: that of the target, bound or
+    /// range as written (internal units when none is written; Ga for events).
+    pub display: Option<(String, Unit)>,
 }
 
 #[derive(Debug, Clone)]

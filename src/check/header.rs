@@ -78,6 +78,7 @@ impl Checker {
             tables: self.tables.clone(),
             stages: Vec::new(),
             expects: Vec::new(),
+            ensemble: None,
             sources: Default::default(),
         }
     }
@@ -564,9 +565,24 @@ impl Checker {
                     },
                     span: stmt.span,
                     text,
+                    display: crate::units::lookup("Ga").map(|u| ("Ga".to_owned(), u)),
                 });
                 continue;
             }
+            let written_unit = |e: &syntax::Expr| match &e.kind {
+                syntax::ExprKind::Quantity { unit: Some(u), .. } => {
+                    crate::units::combine(u.factors.iter().map(|f| (f.name.as_str(), f.power)))
+                        .ok()
+                        .map(|unit| (u.text.clone(), unit))
+                }
+                _ => None,
+            };
+            let display = match check {
+                syntax::ExpectCheck::Target { value, .. } => written_unit(value),
+                syntax::ExpectCheck::Range { low, .. } => written_unit(low),
+                syntax::ExpectCheck::Bound { value, .. } => written_unit(value),
+                syntax::ExpectCheck::Event { .. } => None,
+            };
             let (subj, ts) = self.check_expr(subject);
             let Ty::Num(dim) = ts.ty else {
                 if ts.ty == Ty::Bool {
@@ -632,9 +648,311 @@ impl Checker {
                     check,
                     span: stmt.span,
                     text,
+                    display,
                 });
             }
         }
         out
+    }
+}
+
+/// Most ensemble members one run may ask for.
+pub const MAX_MEMBERS: u64 = 10_000_000;
+
+const DISTRIBUTIONS: &[&str] = &[
+    "uniform",
+    "log_uniform",
+    "normal",
+    "log_normal",
+    "list",
+    "grid",
+];
+
+impl Checker {
+    pub(crate) fn check_ensemble(&mut self) -> Option<EnsembleSpec> {
+        let blocks = std::mem::take(&mut self.ensembles);
+        let (first, rest) = blocks.split_first()?;
+        for extra in rest {
+            self.error(
+                Problem::error("H0409", "a scenario has one ensemble block")
+                    .label(extra.span, "a second ensemble")
+                    .label(first.span, "the first one")
+                    .help("merge the two blocks into one"),
+            );
+        }
+        let StmtKind::Ensemble { body } = &first.kind else {
+            return None;
+        };
+        let mut spec = EnsembleSpec {
+            members: None,
+            seed: 0,
+            vary: Vec::new(),
+            span: first.span,
+        };
+        for entry in &body.entries {
+            let EntryKind::Stmt(stmt) = &entry.kind else {
+                continue;
+            };
+            match &stmt.kind {
+                StmtKind::Option { key, value } => match key.text.as_str() {
+                    "members" | "seed" => {
+                        let what = format!("`{}`", key.text);
+                        let Some(v) = self.const_value(value, Dim::NONE, &what) else {
+                            continue;
+                        };
+                        let limit = if key.text == "members" {
+                            MAX_MEMBERS as f64
+                        } else {
+                            u64::MAX as f64
+                        };
+                        let low = if key.text == "members" { 1.0 } else { 0.0 };
+                        if v.fract() != 0.0 || v < low || v > limit {
+                            let code = if key.text == "members" && v > limit {
+                                "H0413"
+                            } else {
+                                "H0411"
+                            };
+                            self.error(
+                                Problem::error(code, format!("{what} must be a whole number from {low} to {limit:.0}"))
+                                    .label(value.span, "not allowed")
+                                    .help(if key.text == "members" {
+                                        "split very large studies into shards (`hadal ensemble --shard K/N`)"
+                                    } else {
+                                        "any whole number; the same seed gives the same members"
+                                    }),
+                            );
+                            continue;
+                        }
+                        if key.text == "members" {
+                            spec.members = Some(v as u64);
+                        } else {
+                            spec.seed = v as u64;
+                        }
+                    }
+                    other => {
+                        let mut p =
+                            Problem::error("H0207", format!("unknown ensemble setting `{other}`"))
+                                .label(key.span, "not a setting");
+                        p = match nearest(other, ["members", "seed"]) {
+                            Some(n) => p.help(format!("did you mean `{n}`?")),
+                            None => p.help(
+                                "an ensemble takes `members = N`, `seed = S` and `vary` lines",
+                            ),
+                        };
+                        self.error(p);
+                    }
+                },
+                StmtKind::Vary {
+                    name,
+                    dist,
+                    clauses,
+                } => {
+                    if let Some(v) = self.check_vary(name, dist, clauses, stmt.span) {
+                        if spec.vary.iter().any(|x| x.param == v.param) {
+                            self.error(
+                                Problem::error("H0202", format!("`{}` is varied twice", name.text))
+                                    .label(name.span, "again here")
+                                    .help("give each parameter one distribution"),
+                            );
+                        } else {
+                            spec.vary.push(v);
+                        }
+                    }
+                }
+                _ => {}
+            }
+        }
+        Some(spec)
+    }
+
+    fn check_vary(
+        &mut self,
+        name: &syntax::Ident,
+        dist: &syntax::Expr,
+        clauses: &[syntax::Clause],
+        span: Span,
+    ) -> Option<Vary> {
+        let Some(&param) = self.symbols.get(&name.text) else {
+            let params: Vec<String> = self
+                .defs
+                .iter()
+                .filter(|d| matches!(d.kind, DefKind::Param))
+                .map(|d| d.name.clone())
+                .collect();
+            let mut p = Problem::error("H0201", format!("unknown parameter `{}`", name.text))
+                .label(name.span, "no such parameter");
+            if let Some(s) = nearest(&name.text, params.iter().map(String::as_str)) {
+                p = p.help(format!("did you mean `{s}`?"));
+            }
+            self.error(p);
+            return None;
+        };
+        if !matches!(self.defs[param].kind, DefKind::Param) {
+            let word = self.defs[param].kind.word();
+            self.error(
+                Problem::error(
+                    "H0408",
+                    format!("`{}` is a {word}; an ensemble varies parameters", name.text),
+                )
+                .label(name.span, "not a parameter")
+                .label(self.defs[param].span, "defined here")
+                .help("declare it with `param` to vary it"),
+            );
+            return None;
+        }
+        let dim = self.defs[param].dim;
+        let syntax::ExprKind::Call { func, args } = &dist.kind else {
+            self.error(
+                Problem::error(
+                    "H0204",
+                    "a distribution is written as a call, e.g. `uniform(0.1, 0.5)`",
+                )
+                .label(dist.span, "not a distribution")
+                .help(format!(
+                    "the distributions are: {}",
+                    DISTRIBUTIONS.join(", ")
+                )),
+            );
+            return None;
+        };
+        let mut vals = Vec::new();
+        let n_args = args.len();
+        let want = match func.text.as_str() {
+            "uniform" | "log_uniform" | "normal" | "log_normal" => Some(2),
+            "grid" => Some(3),
+            "list" => None,
+            other => {
+                let mut p = Problem::error("H0204", format!("unknown distribution `{other}`"))
+                    .label(func.span, "not a distribution");
+                p = match nearest(other, DISTRIBUTIONS.iter().copied()) {
+                    Some(n) => p.help(format!("did you mean `{n}`?")),
+                    None => p.help(format!(
+                        "the distributions are: {}",
+                        DISTRIBUTIONS.join(", ")
+                    )),
+                };
+                self.error(p);
+                return None;
+            }
+        };
+        if want.is_some_and(|w| w != n_args) || (want.is_none() && n_args == 0) {
+            self.error(
+                Problem::error(
+                    "H0205",
+                    format!(
+                        "`{}` takes {} arguments, found {n_args}",
+                        func.text,
+                        want.map_or("one or more".to_owned(), |w| w.to_string())
+                    ),
+                )
+                .label(func.span, "called here")
+                .help("see the ensemble section of docs/language.md"),
+            );
+            return None;
+        }
+        for (i, a) in args.iter().enumerate() {
+            let arg_dim = match (func.text.as_str(), i) {
+                ("log_normal", 1) | ("grid", 2) => Dim::NONE,
+                _ => dim,
+            };
+            let what = format!("argument {} of `{}`", i + 1, func.text);
+            vals.push(self.const_value(a, arg_dim, &what)?);
+        }
+        let bad = |c: &mut Checker, msg: &str| {
+            c.error(
+                Problem::error("H0411", format!("`{}`: {msg}", func.text))
+                    .label(dist.span, "not a usable distribution")
+                    .help("see the ensemble section of docs/language.md"),
+            );
+        };
+        let d = match func.text.as_str() {
+            "uniform" | "log_uniform" => {
+                if vals[0] >= vals[1] {
+                    bad(self, "the lower end must be below the upper end");
+                    return None;
+                }
+                if func.text == "log_uniform" && vals[0] <= 0.0 {
+                    bad(self, "both ends must be positive");
+                    return None;
+                }
+                if func.text == "uniform" {
+                    Dist::Uniform(vals[0], vals[1])
+                } else {
+                    Dist::LogUniform(vals[0], vals[1])
+                }
+            }
+            "normal" => {
+                if vals[1] <= 0.0 {
+                    bad(self, "the standard deviation must be positive");
+                    return None;
+                }
+                Dist::Normal {
+                    mean: vals[0],
+                    sd: vals[1],
+                }
+            }
+            "log_normal" => {
+                if vals[0] <= 0.0 || vals[1] <= 0.0 {
+                    bad(
+                        self,
+                        "the median and the standard deviation of ln must be positive",
+                    );
+                    return None;
+                }
+                Dist::LogNormal {
+                    median: vals[0],
+                    sd_ln: vals[1],
+                }
+            }
+            "grid" => {
+                let n = vals[2];
+                if n.fract() != 0.0 || !(2.0..=1e6).contains(&n) || vals[0] >= vals[1] {
+                    bad(self, "write `grid(low, high, n)` with low below high and n a whole number from 2");
+                    return None;
+                }
+                Dist::Grid {
+                    lo: vals[0],
+                    hi: vals[1],
+                    n: n as u64,
+                }
+            }
+            _ => Dist::List(vals),
+        };
+        let mut min = None;
+        let mut max = None;
+        for c in clauses {
+            let slot = match c.key.text.as_str() {
+                "min" => &mut min,
+                "max" => &mut max,
+                _ => {
+                    self.error(
+                        Problem::error("H0207", format!("unexpected `{}` here", c.key.text))
+                            .label(c.key.span, "not allowed here")
+                            .help("a `vary` line takes `min = X` and `max = Y` to truncate its distribution"),
+                    );
+                    continue;
+                }
+            };
+            let what = format!("`{}`", c.key.text);
+            let v = self.const_value(&c.value, dim, &what);
+            *slot = v;
+        }
+        if let (Some(a), Some(b)) = (min, max) {
+            if a >= b {
+                self.error(
+                    Problem::error("H0411", "`min` must be below `max`")
+                        .label(span, "empty range")
+                        .help("swap the two bounds"),
+                );
+                return None;
+            }
+        }
+        Some(Vary {
+            param,
+            dist: d,
+            min,
+            max,
+            span,
+        })
     }
 }

@@ -191,6 +191,7 @@ pub(crate) struct Checker {
     items: Vec<Item>,
     header: Vec<syntax::Stmt>,
     stages: Vec<(syntax::Stmt, Vec<Entry>)>,
+    ensembles: Vec<syntax::Stmt>,
     pub(crate) defs: Vec<Def>,
     pub(crate) tables: Vec<Table>,
     /// Name to definition; user definitions shadow the prelude.
@@ -213,6 +214,7 @@ impl Checker {
             items: Vec::new(),
             header: Vec::new(),
             stages: Vec::new(),
+            ensembles: Vec::new(),
             defs: Vec::new(),
             tables: Vec::new(),
             symbols: HashMap::new(),
@@ -322,6 +324,7 @@ impl Checker {
                 | StmtKind::Solver { .. }
                 | StmtKind::Expect { .. }
                 | StmtKind::Stage { .. }
+                | StmtKind::Ensemble { .. }
                     if origin != Origin::Root =>
                 {
                     self.error(
@@ -358,6 +361,14 @@ impl Checker {
                         }
                     }
                     self.stages.push((stmt, rest));
+                }
+                StmtKind::Ensemble { .. } => self.ensembles.push(stmt),
+                StmtKind::Vary { .. } | StmtKind::Option { .. } => {
+                    // The grammar admits these only inside an ensemble block.
+                    self.error(
+                        Problem::error("H0208", "this line belongs inside an `ensemble { }` block")
+                            .label(stmt.span, "outside the ensemble"),
+                    );
                 }
                 StmtKind::Set { .. } => {
                     // The grammar admits `set` only inside stage bodies.
@@ -446,6 +457,7 @@ impl Checker {
         let header = self.check_header();
         let mut stages = self.check_stages(&header);
         let expects = self.check_expects();
+        let ensemble = self.check_ensemble();
         // Stage-local fluxes know their stage.
         for (id, def) in self.defs.iter_mut().enumerate() {
             if let DefKind::Flux { stage: Some(s), .. } = def.kind {
@@ -468,6 +480,7 @@ impl Checker {
             tables: std::mem::take(&mut self.tables),
             stages,
             expects,
+            ensemble,
             sources: self.sources.clone(),
         })
     }

@@ -89,6 +89,10 @@ pub(crate) fn cmd_run(
         ("stages.csv", rep::stages_csv(model, &outcome.run)),
         ("events.csv", rep::events_csv(model, &outcome.run)),
     ];
+    let expectations = rep::expectations(model, &outcome.run);
+    if !model.expects.is_empty() {
+        files.push(("expectations.csv", rep::expectations_csv(&expectations)));
+    }
     let overrides = parse_sets(sets).unwrap_or_default();
     let wall = clock.elapsed();
     if let Err(e) = std::fs::create_dir_all(&dir) {
@@ -110,9 +114,12 @@ pub(crate) fn cmd_run(
     }
     let closure_problems = closure_problems(model, &outcome.run);
     if json {
-        println!("{}", summary_json(model, &outcome, &dir, wall));
+        println!(
+            "{}",
+            summary_json(model, &outcome, &expectations, &dir, wall)
+        );
     } else {
-        print_summary(model, &outcome, &dir, wall);
+        print_summary(model, &outcome, &expectations, &dir, wall);
     }
     if !closure_problems.is_empty() {
         report(&model.sources, &closure_problems);
@@ -147,7 +154,13 @@ fn ocean_masses(model: &Model) -> f64 {
         .unwrap_or(1.4e21)
 }
 
-fn print_summary(model: &Model, outcome: &Outcome, dir: &Path, wall: std::time::Duration) {
+fn print_summary(
+    model: &Model,
+    outcome: &Outcome,
+    expectations: &[rep::ExpectResult],
+    dir: &Path,
+    wall: std::time::Duration,
+) {
     let run = &outcome.run;
     let name = model.name.as_deref().unwrap_or("");
     println!(
@@ -231,14 +244,27 @@ fn print_summary(model: &Model, outcome: &Outcome, dir: &Path, wall: std::time::
             None => println!("event {}: never", model.defs[d].name),
         }
     }
+    if !expectations.is_empty() {
+        let passed = expectations.iter().filter(|e| e.pass).count();
+        println!("expectations: {passed} of {} pass", expectations.len());
+        for e in expectations.iter().filter(|e| !e.pass) {
+            println!("  fails: {} (misfit {})", e.text, rep::human_num(e.misfit));
+        }
+    }
     println!(
-        "wrote {} (series.csv, stages.csv, events.csv, manifest.json) in {:.1} ms",
+        "wrote {} in {:.1} ms",
         dir.display(),
         wall.as_secs_f64() * 1e3
     );
 }
 
-fn summary_json(model: &Model, outcome: &Outcome, dir: &Path, wall: std::time::Duration) -> String {
+fn summary_json(
+    model: &Model,
+    outcome: &Outcome,
+    expectations: &[rep::ExpectResult],
+    dir: &Path,
+    wall: std::time::Duration,
+) -> String {
     let run = &outcome.run;
     let stages: Vec<serde_json::Value> = run
         .stages
@@ -295,6 +321,12 @@ fn summary_json(model: &Model, outcome: &Outcome, dir: &Path, wall: std::time::D
         "stages": stages,
         "final": finals,
         "events_first_age_ga": events,
+        "expectations": expectations.iter().map(|e| serde_json::json!({
+            "expectation": e.text,
+            "value": if e.value.is_finite() { serde_json::json!(e.value) } else { serde_json::Value::Null },
+            "misfit": if e.misfit.is_finite() { serde_json::json!(e.misfit) } else { serde_json::Value::Null },
+            "pass": e.pass,
+        })).collect::<Vec<_>>(),
         "wall_ms": wall.as_secs_f64() * 1e3,
     });
     serde_json::to_string_pretty(&v).unwrap_or_default()

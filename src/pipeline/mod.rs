@@ -123,6 +123,11 @@ pub fn stage_parts(model: &Model, g: &DepGraph, s: usize, events_done: &[bool]) 
         .map(|&a| bits(a))
         .collect();
     parts.insert("report ages".into(), rows.join(","));
+    let probes: Vec<String> = solve::stage_rows(model, s, &solve::probe_ages(model))
+        .iter()
+        .map(|&a| bits(a))
+        .collect();
+    parts.insert("expectation ages".into(), probes.join(","));
     parts.insert("solver settings".into(), format!("{:?}", st.solver));
     parts.insert("span start".into(), bits(model.start_age));
     let layout: Vec<&str> = compile::state_order(model)
@@ -176,20 +181,39 @@ impl R<'_> {
     }
 }
 
-const PAYLOAD_VERSION: u64 = 1;
+const PAYLOAD_VERSION: u64 = 2;
+
+fn write_rows(w: &mut W, rows: &[(f64, Vec<f64>)]) {
+    w.u64(rows.len() as u64);
+    for (age, y) in rows {
+        w.f64(*age);
+        for v in y {
+            w.f64(*v);
+        }
+    }
+}
+
+fn read_rows(r: &mut R, n: usize, limit: usize) -> Option<Vec<(f64, Vec<f64>)>> {
+    let count = r.len(1 << 28)?;
+    let mut rows = Vec::with_capacity(count.min(limit / 8));
+    for _ in 0..count {
+        let age = r.f64()?;
+        let mut y = Vec::with_capacity(n);
+        for _ in 0..n {
+            y.push(r.f64()?);
+        }
+        rows.push((age, y));
+    }
+    Some(rows)
+}
 
 pub fn encode_stage(r: &StageRun) -> Vec<u8> {
     let mut w = W(Vec::new());
     w.u64(PAYLOAD_VERSION);
     let n = r.end.0.len();
     w.u64(n as u64);
-    w.u64(r.rows.len() as u64);
-    for (age, y) in &r.rows {
-        w.f64(*age);
-        for v in y {
-            w.f64(*v);
-        }
-    }
+    write_rows(&mut w, &r.rows);
+    write_rows(&mut w, &r.probes);
     for v in &r.end.0 {
         w.f64(*v);
     }
@@ -232,16 +256,8 @@ pub fn decode_stage(stage: usize, bytes: &[u8]) -> Option<StageRun> {
         return None;
     }
     let n = r.len(1 << 24)?;
-    let rows_n = r.len(1 << 28)?;
-    let mut rows = Vec::with_capacity(rows_n.min(bytes.len() / 8));
-    for _ in 0..rows_n {
-        let age = r.f64()?;
-        let mut y = Vec::with_capacity(n);
-        for _ in 0..n {
-            y.push(r.f64()?);
-        }
-        rows.push((age, y));
-    }
+    let rows = read_rows(&mut r, n, bytes.len())?;
+    let probes = read_rows(&mut r, n, bytes.len())?;
     let mut end = Vec::with_capacity(n);
     for _ in 0..n {
         end.push(r.f64()?);
@@ -271,6 +287,7 @@ pub fn decode_stage(stage: usize, bytes: &[u8]) -> Option<StageRun> {
     Some(StageRun {
         stage,
         rows,
+        probes,
         end: State(end),
         stats,
         method,

@@ -122,6 +122,9 @@ pub fn fmt_num(v: f64) -> String {
     if v == 0.0 {
         return "0".into();
     }
+    if v.is_infinite() {
+        return if v > 0.0 { "inf".into() } else { "-inf".into() };
+    }
     let mut b = ryu::Buffer::new();
     let s = b.format(v);
     s.strip_suffix(".0").unwrap_or(s).to_owned()
@@ -203,6 +206,157 @@ pub fn events_csv(model: &Model, run: &Run) -> Vec<u8> {
     for (k, &d) in run.event_defs.iter().enumerate() {
         let age = run.events[k].map(|a| fmt_num(a / 1e9)).unwrap_or_default();
         let _ = w.write_record([model.defs[d].name.clone(), age]);
+    }
+    w.into_inner().unwrap_or_default()
+}
+
+/// How one expectation fared in one run.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ExpectResult {
+    /// The statement as written.
+    pub text: String,
+    /// The unit `shown` is in.
+    pub unit: String,
+    /// The value in that unit.
+    pub shown: f64,
+    /// The subject's value (internal units), or the event's first age
+    /// (years before present; infinite when it never happened).
+    pub value: f64,
+    /// How far from passing: 0 when it passes (for a target, |z| with
+    /// z = (value - target) / sigma, which passes within 2 sigma).
+    pub misfit: f64,
+    pub pass: bool,
+}
+
+/// A target passes when the value lies within this many uncertainties.
+pub const TARGET_SIGMAS: f64 = 2.0;
+
+/// Evaluate every expectation of the model on a solved run.
+pub fn expectations(model: &Model, run: &Run) -> Vec<ExpectResult> {
+    use crate::model::ExpectCheck;
+    let mut out = Vec::with_capacity(model.expects.len());
+    for e in &model.expects {
+        let (value, misfit, pass) = match &e.check {
+            ExpectCheck::Event { event, before, age } => {
+                let k = run.event_defs.iter().position(|d| d == event);
+                match k.and_then(|k| run.events[k]) {
+                    None => (f64::INFINITY, f64::INFINITY, false),
+                    Some(at) => {
+                        let pass = if *before { at > *age } else { at < *age };
+                        let miss = if pass { 0.0 } else { (at - age).abs() / 1e9 };
+                        (at, miss, pass)
+                    }
+                }
+            }
+            ExpectCheck::Target { age, value, sigma } => {
+                let v = eval_at(model, run, *age, &[&e.subject, value, sigma]);
+                let z = (v[0] - v[1]) / v[2];
+                (v[0], z.abs(), z.abs() <= TARGET_SIGMAS)
+            }
+            ExpectCheck::Range { age, low, high } => {
+                let v = eval_at(model, run, *age, &[&e.subject, low, high]);
+                let (x, lo, hi) = (v[0], v[1], v[2]);
+                let width = (hi - lo).abs().max(f64::MIN_POSITIVE);
+                let miss = if x < lo {
+                    (lo - x) / width
+                } else if x > hi {
+                    (x - hi) / width
+                } else {
+                    0.0
+                };
+                (x, miss, x >= lo && x <= hi)
+            }
+            ExpectCheck::Bound { age, op, value } => {
+                let v = eval_at(model, run, *age, &[&e.subject, value]);
+                let (x, b) = (v[0], v[1]);
+                use crate::syntax::CmpOp;
+                let pass = match op {
+                    CmpOp::Lt => x < b,
+                    CmpOp::Le => x <= b,
+                    CmpOp::Gt => x > b,
+                    CmpOp::Ge => x >= b,
+                };
+                let miss = if pass {
+                    0.0
+                } else {
+                    (x - b).abs() / b.abs().max(f64::MIN_POSITIVE)
+                };
+                (x, miss, pass)
+            }
+        };
+        let (value, misfit) = if value.is_nan() {
+            (f64::INFINITY, f64::INFINITY)
+        } else {
+            (value, misfit)
+        };
+        let (unit, shown) = match &e.display {
+            Some((t, u)) => (units::udunits(t), u.from_internal(value)),
+            None => {
+                let d = match e.check {
+                    ExpectCheck::Event { .. } => crate::units::Dim::AGE,
+                    _ => infer_dim(model, e),
+                };
+                (d.internal_unit(), value)
+            }
+        };
+        out.push(ExpectResult {
+            text: e.text.clone(),
+            unit,
+            shown,
+            value,
+            misfit,
+            pass: pass && misfit.is_finite(),
+        });
+    }
+    out
+}
+
+fn infer_dim(model: &Model, e: &crate::model::Expect) -> crate::units::Dim {
+    match &e.subject.kind {
+        crate::model::ExprKind::Ref(d) => model.defs[*d].dim,
+        _ => crate::units::Dim::NONE,
+    }
+}
+
+/// Values of expressions at `age`, from the probe state the solve kept there.
+fn eval_at(model: &Model, run: &Run, age: f64, exprs: &[&crate::model::Expr]) -> Vec<f64> {
+    let found = run.stages.iter().find_map(|sr| {
+        sr.probes
+            .iter()
+            .find(|(a, _)| *a == age)
+            .map(|(_, y)| (sr.stage, y))
+    });
+    let Some((stage, y)) = found else {
+        return vec![f64::NAN; exprs.len()];
+    };
+    let prog = compile::compile(
+        model,
+        Some(stage),
+        &Wants {
+            rhs: false,
+            defs: Vec::new(),
+            exprs: exprs.iter().map(|e| (*e).clone()).collect(),
+        },
+    );
+    let mut regs = prog.regs();
+    prog.eval(&mut regs, y, model.start_age - age, age);
+    prog.extra.iter().map(|&r| prog.value(&regs, r)).collect()
+}
+
+/// The expectations table of a run.
+pub fn expectations_csv(results: &[ExpectResult]) -> Vec<u8> {
+    let mut w = csv::WriterBuilder::new()
+        .terminator(csv::Terminator::Any(b'\n'))
+        .from_writer(Vec::new());
+    let _ = w.write_record(["expectation", "value", "unit", "misfit", "pass"]);
+    for r in results {
+        let _ = w.write_record([
+            r.text.clone(),
+            fmt_num(r.shown),
+            r.unit.clone(),
+            fmt_num(r.misfit),
+            if r.pass { "yes" } else { "no" }.to_owned(),
+        ]);
     }
     w.into_inner().unwrap_or_default()
 }

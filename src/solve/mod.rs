@@ -34,6 +34,8 @@ pub struct StageRun {
     pub stage: usize,
     /// Report rows produced by this stage: (age, state at that age).
     pub rows: Vec<(f64, Vec<f64>)>,
+    /// States at the ages of expectations that fall in this stage.
+    pub probes: Vec<(f64, Vec<f64>)>,
     pub end: State,
     pub stats: Stats,
     /// "explicit", "implicit" or "explicit, then implicit from X Ga".
@@ -77,9 +79,28 @@ pub fn report_ages(model: &Model) -> Vec<f64> {
     ages
 }
 
+/// The ages at which expectations look at the state, oldest first.
+pub fn probe_ages(model: &Model) -> Vec<f64> {
+    use crate::model::ExpectCheck;
+    let mut ages: Vec<f64> = model
+        .expects
+        .iter()
+        .filter_map(|e| match e.check {
+            ExpectCheck::Target { age, .. }
+            | ExpectCheck::Range { age, .. }
+            | ExpectCheck::Bound { age, .. } => Some(age),
+            ExpectCheck::Event { .. } => None,
+        })
+        .filter(|&a| a <= model.start_age && a >= model.end_age)
+        .collect();
+    ages.sort_by(|a, b| b.total_cmp(a));
+    ages.dedup();
+    ages
+}
+
 /// Rows of stage `s`: ages in [end, start], excluding ones an earlier stage
 /// produced (its end age).
-fn stage_rows(model: &Model, s: usize, ages: &[f64]) -> Vec<f64> {
+pub fn stage_rows(model: &Model, s: usize, ages: &[f64]) -> Vec<f64> {
     let st = &model.stages[s];
     ages.iter()
         .copied()
@@ -128,6 +149,9 @@ struct Obs<'a> {
     rows: Vec<f64>,
     next_row: usize,
     out: Vec<(f64, Vec<f64>)>,
+    probe_ages: Vec<f64>,
+    next_probe: usize,
+    probes: Vec<(f64, Vec<f64>)>,
     scratch: Vec<f64>,
     n_res: usize,
     /// Smallest value a reservoir may take before it counts as negative.
@@ -147,6 +171,21 @@ struct EventWatch<'a> {
 
 impl Observer for Obs<'_> {
     fn accepted(&mut self, t0: f64, t1: f64, y1: &[f64], dense: &Dense) -> Result<(), Stop> {
+        while self.next_probe < self.probe_ages.len() {
+            let age = self.probe_ages[self.next_probe];
+            let t = self.start_age - age;
+            if t > t1 + 1e-9 * (t1 - t0).abs() {
+                break;
+            }
+            let y = if (t - t1).abs() <= 1e-12 * t1.abs().max(1.0) {
+                y1.to_vec()
+            } else {
+                dense.eval(t, &mut self.scratch);
+                self.scratch.clone()
+            };
+            self.probes.push((age, y));
+            self.next_probe += 1;
+        }
         while self.next_row < self.rows.len() {
             let age = self.rows[self.next_row];
             let t = self.start_age - age;
@@ -313,6 +352,7 @@ pub fn solve_stage(
     let mut y = start.0.clone();
     let ages = report_ages(model);
     let rows = stage_rows(model, s, &ages);
+    let probe_ages = stage_rows(model, s, &probe_ages(model));
     // Events already true at the very start of the run count at the start.
     let mut first: Vec<Option<f64>> = vec![None; event_ids.len()];
     let mut prev = vec![0.0; event_ids.len()];
@@ -331,6 +371,9 @@ pub fn solve_stage(
         rows,
         next_row: 0,
         out: Vec::new(),
+        probe_ages,
+        next_probe: 0,
+        probes: Vec::new(),
         scratch: vec![0.0; n],
         n_res,
         floor: -(st.solver.atol * mass_scale).max(1e-9 * mass_scale * st.solver.rtol),
@@ -346,6 +389,10 @@ pub fn solve_stage(
     if s == 0 && obs.rows.first() == Some(&st.start_age) {
         obs.out.push((st.start_age, y.clone()));
         obs.next_row = 1;
+    }
+    if s == 0 && obs.probe_ages.first() == Some(&st.start_age) {
+        obs.probes.push((st.start_age, y.clone()));
+        obs.next_probe = 1;
     }
     // Breakpoints: knots of age tables inside the stage.
     let mut cuts: Vec<f64> = prog
@@ -392,6 +439,7 @@ pub fn solve_stage(
     let events = obs.events.take().map(|e| e.first).unwrap_or_default();
     Ok(StageRun {
         stage: s,
+        probes: obs.probes,
         rows: obs.out,
         end: State(y),
         stats,

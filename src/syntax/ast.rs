@@ -114,8 +114,24 @@ pub enum StmtKind {
         name: Ident,
         value: Expr,
     },
+    /// `ensemble { ... }`: which parameters vary and how.
+    Ensemble {
+        body: StageBody,
+    },
+    /// `vary NAME ~ DIST(ARGS), min = X, max = Y` inside an ensemble.
+    Vary {
+        name: Ident,
+        dist: Expr,
+        clauses: Vec<Clause>,
+    },
+    /// `NAME = VALUE` inside an ensemble (members, seed).
+    Option {
+        key: Ident,
+        value: Expr,
+    },
 }
 
+/// The body of a block (`stage ... {` or `ensemble {`) up to its `}`.
 #[derive(Debug, Clone, PartialEq)]
 pub struct StageBody {
     /// Comment after the opening brace.

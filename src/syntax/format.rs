@@ -36,7 +36,8 @@ fn entry_end_line(entry: &Entry) -> usize {
         EntryKind::Stmt(stmt) => match &stmt.kind {
             StmtKind::Stage {
                 body: Some(body), ..
-            } => body.close_line,
+            }
+            | StmtKind::Ensemble { body } => body.close_line,
             _ => entry.line,
         },
         _ => entry.line,
@@ -204,24 +205,45 @@ fn write_stmt(out: &mut String, stmt: &Stmt, indent: &str) {
                 format_expr(to)
             );
             if let Some(body) = body {
-                out.push_str(" {");
-                if let Some(c) = &body.open_comment {
-                    out.push(' ');
-                    out.push_str(c);
-                }
-                out.push('\n');
-                let inner = format!("{indent}{INDENT}");
-                let open_line = body
-                    .entries
-                    .first()
-                    .map(|e| e.line.min(body.close_line))
-                    .map(|first| first.saturating_sub(1));
-                write_entries(out, &body.entries, &inner, open_line);
-                out.push_str(indent);
-                out.push('}');
+                write_block(out, body, indent);
             }
         }
+        StmtKind::Ensemble { body } => {
+            out.push_str("ensemble");
+            write_block(out, body, indent);
+        }
+        StmtKind::Vary {
+            name,
+            dist,
+            clauses,
+        } => {
+            let _ = write!(out, "vary {} ~ {}", name.text, format_expr(dist));
+            for c in clauses {
+                let _ = write!(out, ", {} = {}", c.key.text, format_expr(&c.value));
+            }
+        }
+        StmtKind::Option { key, value } => {
+            let _ = write!(out, "{} = {}", key.text, format_expr(value));
+        }
     }
+}
+
+fn write_block(out: &mut String, body: &StageBody, indent: &str) {
+    out.push_str(" {");
+    if let Some(c) = &body.open_comment {
+        out.push(' ');
+        out.push_str(c);
+    }
+    out.push('\n');
+    let inner = format!("{indent}{INDENT}");
+    let open_line = body
+        .entries
+        .first()
+        .map(|e| e.line.min(body.close_line))
+        .map(|first| first.saturating_sub(1));
+    write_entries(out, &body.entries, &inner, open_line);
+    out.push_str(indent);
+    out.push('}');
 }
 
 fn write_string(out: &mut String, value: &str) {

@@ -33,13 +33,10 @@ pub fn parse(text: &str, file: u32) -> Result<SyntaxFile, Vec<Problem>> {
     if let Some(problem) = nesting_problem(text, file) {
         return Err(vec![problem]);
     }
-    // Track literal tokens too (`=`, `:`, `,`), so that a missing one is
-    // reported where it is missing rather than at the start of the line.
-    pest::set_error_detail(true);
     let mut errors = Vec::new();
     let mut work = text.to_owned();
     loop {
-        match HadalParser::parse(Rule::file, &work) {
+        match HadalParser::parse(Rule::file, &work).map_err(|e| detailed_error(&work, e)) {
             Ok(mut pairs) => {
                 if errors.is_empty() {
                     let root = pairs.next().expect("file rule yields one pair");
@@ -86,6 +83,23 @@ pub fn parse(text: &str, file: u32) -> Result<SyntaxFile, Vec<Problem>> {
             }
         }
     }
+}
+
+/// Parse a text known to fail again, tracking literal tokens too (`=`,
+/// `:`, `,`), so that a missing one is reported where it is missing rather
+/// than at the start of the line. The tracking costs time, so only failed
+/// parses pay for it. pest switches it with a process-wide flag; the lock
+/// keeps concurrent detailed parses from switching it off under each other
+/// (a plain parse meanwhile at worst tracks too).
+fn detailed_error(text: &str, plain: pest::error::Error<Rule>) -> pest::error::Error<Rule> {
+    static DETAIL: std::sync::Mutex<()> = std::sync::Mutex::new(());
+    let _guard = DETAIL.lock().unwrap_or_else(|e| e.into_inner());
+    pest::set_error_detail(true);
+    let result = HadalParser::parse(Rule::file, text).map(|_| ());
+    pest::set_error_detail(false);
+    // The parse is deterministic, so it fails again; keep the plain error
+    // should it ever not.
+    result.err().unwrap_or(plain)
 }
 
 /// Reject pathologically deep brackets before the recursive-descent parser
@@ -408,7 +422,10 @@ fn rule_words(rule: Rule) -> Option<&'static str> {
         Rule::expect_range => "`in LOW to HIGH`",
         Rule::expect_bound => "a bound such as `< VALUE`",
         Rule::expect_event => "`before AGE` or `after AGE`",
-        Rule::stage_body => "`{`",
+        Rule::stage_body | Rule::ensemble_body => "`{`",
+        Rule::vary_stmt | Rule::option_stmt => {
+            "a `vary` line or a setting such as `members = 1000`"
+        }
         Rule::stage_close => "`}`",
         Rule::scenario_stmt
         | Rule::span_stmt
@@ -425,7 +442,8 @@ fn rule_words(rule: Rule) -> Option<&'static str> {
         | Rule::flux_stmt
         | Rule::event_stmt
         | Rule::expect_stmt
-        | Rule::stage_stmt => "a statement",
+        | Rule::stage_stmt
+        | Rule::ensemble_stmt => "a statement",
         Rule::set_stmt => "a `set`, `flux` or `solver` line",
         Rule::kw_scenario
         | Rule::kw_span
@@ -442,7 +460,9 @@ fn rule_words(rule: Rule) -> Option<&'static str> {
         | Rule::kw_flux
         | Rule::kw_event
         | Rule::kw_expect
+        | Rule::kw_ensemble
         | Rule::kw_stage => "a statement",
+        Rule::kw_vary => "a `vary` line or a setting such as `members = 1000`",
         Rule::kw_set => "a `set`, `flux` or `solver` line",
         Rule::kw_if => "an expression",
         Rule::kw_to => "`to`",
@@ -736,27 +756,7 @@ impl Builder {
                 let name = self.ident(next());
                 let from = self.expr(next());
                 let to = self.expr(next());
-                let body = it.next().map(|b| {
-                    let mut open_comment = None;
-                    let mut close_line = b.line_col().0 - 1;
-                    let mut inner: Vec<Pair<Rule>> = b.into_inner().collect();
-                    if let Some(first) = inner.first() {
-                        if first.as_rule() == Rule::comment && first.line_col().0 - 1 == close_line
-                        {
-                            open_comment = Some(first.as_str().trim_end().to_owned());
-                            inner.remove(0);
-                        }
-                    }
-                    if let Some(close) = inner.iter().find(|p| p.as_rule() == Rule::stage_close) {
-                        close_line = close.line_col().0 - 1;
-                    }
-                    let entries = self.entries(inner);
-                    StageBody {
-                        open_comment,
-                        entries,
-                        close_line,
-                    }
-                });
+                let body = it.next().map(|b| self.body(b));
                 StmtKind::Stage {
                     name,
                     from,
@@ -764,6 +764,29 @@ impl Builder {
                     body,
                 }
             }
+            Rule::ensemble_stmt => StmtKind::Ensemble {
+                body: self.body(next()),
+            },
+            Rule::vary_stmt => {
+                let name = self.ident(next());
+                let dist = self.primary(next());
+                let mut clauses = Vec::new();
+                for c in it.by_ref() {
+                    let mut ci = c.into_inner();
+                    let key = self.ident(ci.next().expect("clause key"));
+                    let value = self.expr(ci.next().expect("clause value"));
+                    clauses.push(Clause { key, value });
+                }
+                StmtKind::Vary {
+                    name,
+                    dist,
+                    clauses,
+                }
+            }
+            Rule::option_stmt => StmtKind::Option {
+                key: self.ident(next()),
+                value: self.expr(next()),
+            },
             other => unreachable!("not a statement rule: {other:?}"),
         };
         // The scenario title is optional and comes last.
@@ -775,6 +798,28 @@ impl Builder {
             k => k,
         };
         Stmt { kind, span }
+    }
+
+    /// A block body: entries up to the closing brace.
+    fn body(&self, b: Pair<Rule>) -> StageBody {
+        let mut open_comment = None;
+        let mut close_line = b.line_col().0 - 1;
+        let open_line = close_line;
+        let mut inner: Vec<Pair<Rule>> = b.into_inner().collect();
+        if let Some(first) = inner.first() {
+            if first.as_rule() == Rule::comment && first.line_col().0 - 1 == open_line {
+                open_comment = Some(first.as_str().trim_end().to_owned());
+                inner.remove(0);
+            }
+        }
+        if let Some(close) = inner.iter().find(|p| p.as_rule() == Rule::stage_close) {
+            close_line = close.line_col().0 - 1;
+        }
+        StageBody {
+            open_comment,
+            entries: self.entries(inner),
+            close_line,
+        }
     }
 
     fn expr(&self, pair: Pair<Rule>) -> Expr {
@@ -899,6 +944,8 @@ fn is_keyword(rule: Rule) -> bool {
             | Rule::kw_output
             | Rule::kw_flux
             | Rule::kw_event
+            | Rule::kw_ensemble
+            | Rule::kw_vary
             | Rule::kw_expect
             | Rule::kw_stage
             | Rule::kw_from
