@@ -558,6 +558,7 @@ mod tests {
                 (4.5e9, vec![1.0, f64::MIN_POSITIVE, -0.0]),
                 (4.4e9, vec![2.0, 3.5e21, 1e-300]),
             ],
+            probes: vec![(4.45e9, vec![0.5, 1.5, 2.5])],
             end: State(vec![0.1, 0.2, 0.3]),
             stats: Stats {
                 accepted: 7,
