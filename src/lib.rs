@@ -10,6 +10,8 @@ pub mod check;
 pub mod cli;
 pub mod compile;
 pub mod diagnostic;
+pub mod ensemble;
+pub mod figures;
 pub mod fsutil;
 pub mod graph;
 pub mod manifest;

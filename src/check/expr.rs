@@ -213,7 +213,7 @@ impl Checker {
                 otherwise,
             } => {
                 let (c, tc) = self.check_expr(cond);
-                self.want_bool(tc, cond.span, "the condition of `if`");
+                self.want_bool(tc, cond.span, "`if`");
                 let (a, ta) = self.check_expr(then);
                 let (b, tb) = self.check_expr(otherwise);
                 let ty = match (ta.ty, tb.ty) {

@@ -17,6 +17,7 @@ use crate::syntax::{self, Entry, EntryKind, StmtKind};
 use crate::units::Dim;
 
 pub use expr::eval_const;
+pub use header::MAX_MEMBERS;
 
 /// Deepest chain of includes accepted.
 pub const MAX_INCLUDE_DEPTH: usize = 16;
@@ -622,7 +623,37 @@ impl Checker {
             };
             match self.symbols.get(name).copied() {
                 Some(id) if matches!(self.defs[id].kind, DefKind::Param) => {
-                    self.def_syntax[id] = Some(value);
+                    // The override must be of the declared kind; otherwise
+                    // every use of the parameter would report a mismatch in
+                    // the file, far from the option that caused it.
+                    let declared = self.def_type(id);
+                    let declared_syntax = self.def_syntax[id].replace(value.clone());
+                    let declared_unit = self.defs[id].display_unit.take();
+                    self.slots[id] = Slot::Todo;
+                    let given = self.def_type(id);
+                    if let (expr::Ty::Num(want), expr::Ty::Num(got)) = (declared.ty, given.ty) {
+                        let time_kinds = want.same_base(Dim::TIME) && want.point != got.point;
+                        if !want.same_base(got) || time_kinds {
+                            self.error(
+                                Problem::error(
+                                    "H0303",
+                                    format!(
+                                        "`--set {name}` must be {}, as declared, found {}",
+                                        want.words(),
+                                        got.words()
+                                    ),
+                                )
+                                .label(value.span, format!("this is {}", got.words()))
+                                .label(self.defs[id].span, "declared here")
+                                .help(expr::dim_hint(want, got)),
+                            );
+                            // Keep the declaration, so its uses check as written.
+                            self.def_syntax[id] = declared_syntax;
+                            self.defs[id].display_unit = declared_unit;
+                            self.slots[id] = Slot::Todo;
+                            self.def_type(id);
+                        }
+                    }
                 }
                 Some(id) => {
                     let word = self.defs[id].kind.word();

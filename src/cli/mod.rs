@@ -13,6 +13,7 @@ use crate::check::{self, CheckError, CheckOptions};
 use crate::diagnostic::Problem;
 use crate::span::Sources;
 
+mod ensemble;
 mod run;
 mod verify;
 
@@ -78,6 +79,39 @@ enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// Run many members with parameters drawn from the scenario's ensemble block
+    Ensemble {
+        file: PathBuf,
+        /// Number of members [default: the block's `members`, or 1000]
+        #[arg(long)]
+        members: Option<u64>,
+        /// Random seed [default: the block's `seed`]
+        #[arg(long)]
+        seed: Option<u64>,
+        /// Run only shard K of N (1-based), e.g. --shard 3/8
+        #[arg(long, value_name = "K/N")]
+        shard: Option<String>,
+        /// Output directory [default: outputs/<scenario>_ensemble]
+        #[arg(long)]
+        out: Option<PathBuf>,
+        /// Worker threads [default: all cores]
+        #[arg(long)]
+        threads: Option<usize>,
+        /// Also write every member's series under DIR/series/
+        #[arg(long)]
+        keep_series: bool,
+        /// Neither read nor write the stage cache
+        #[arg(long)]
+        no_cache: bool,
+    },
+    /// Combine shard outputs into what an unsharded ensemble writes
+    Merge {
+        #[arg(required = true)]
+        dirs: Vec<PathBuf>,
+        /// Output directory [default: the shards' name without _shard_K_of_N]
+        #[arg(long)]
+        out: Option<PathBuf>,
+    },
     /// Rerun published runs from scratch and check every output against their manifests
     Verify {
         #[arg(required = true)]
@@ -133,6 +167,26 @@ pub fn main() -> i32 {
             no_cache,
         } => run::cmd_run(&file, out.as_deref(), &sets, json, !no_cache),
         Command::Params { file, sets, json } => run::cmd_params(&file, &sets, json),
+        Command::Ensemble {
+            file,
+            members,
+            seed,
+            shard,
+            out,
+            threads,
+            keep_series,
+            no_cache,
+        } => ensemble::cmd_ensemble(
+            &file,
+            members,
+            seed,
+            shard.as_deref(),
+            out.as_deref(),
+            threads,
+            keep_series,
+            !no_cache,
+        ),
+        Command::Merge { dirs, out } => ensemble::cmd_merge(&dirs, out.as_deref()),
         Command::Verify { manifests, rtol } => verify::cmd_verify(&manifests, rtol),
         Command::Diff { a, b } => verify::cmd_diff(&a, &b),
         Command::Cache { action } => match action {

@@ -86,10 +86,22 @@ pub struct Program {
     pub observed: Vec<(DefId, Reg)>,
     /// Registers of extra observed expressions, in the order asked.
     pub extra: Vec<Reg>,
-    tables: Vec<(Vec<f64>, Vec<f64>)>,
-    hyps: Vec<Hypsometry>,
+    /// Instructions that depend on parameters but not on the state or the
+    /// clock: run once when the registers are set up, not per evaluation.
+    setup: Vec<Ins>,
+    /// Parameters kept as registers (so one program serves many members).
+    pub param_regs: Vec<(DefId, Reg)>,
+    kernels: Kernels,
     /// Knots of age-indexed tables this program reads (breakpoints).
     pub age_knots: Vec<f64>,
+}
+
+/// Data that instructions read besides registers.
+#[derive(Debug, Clone, Default)]
+struct Kernels {
+    tables: Vec<(Vec<f64>, Vec<f64>)>,
+    hyps: Vec<Hypsometry>,
+    age_reg: Reg,
 }
 
 /// Mutable registers for one evaluator; allocated once per integration.
@@ -97,8 +109,26 @@ pub struct Program {
 pub struct Regs(pub Vec<f64>);
 
 impl Program {
+    /// Registers with every parameter at its compiled value.
     pub fn regs(&self) -> Regs {
-        Regs(self.init.clone())
+        self.regs_with(&[])
+    }
+
+    /// Registers with the given parameters (those compiled as registers)
+    /// set to new values, and the parameter-only instructions run.
+    pub fn regs_with(&self, params: &[(DefId, f64)]) -> Regs {
+        let mut r = self.init.clone();
+        for &(d, v) in params {
+            if let Some(&(_, reg)) = self.param_regs.iter().find(|(p, _)| *p == d) {
+                r[reg as usize] = v;
+            }
+        }
+        for ins in &self.setup {
+            // SAFETY: `r` is a copy of `init`; `check_bounds` verified every
+            // index in `setup` when the program was built.
+            unsafe { exec(&self.kernels, &mut r, *ins) };
+        }
+        Regs(r)
     }
 
     /// Run the program for state `y` at time `t` (years since the span start)
@@ -115,7 +145,7 @@ impl Program {
             // SAFETY: `r` has `init.len()` registers (asserted above) and
             // `check_bounds` verified every index in `ins` when the program
             // was built.
-            unsafe { exec(self, r, *ins) };
+            unsafe { exec(&self.kernels, r, *ins) };
         }
     }
 
@@ -131,11 +161,12 @@ impl Program {
     /// Verify every register and table index; called once per program.
     fn check_bounds(&self) {
         let n = self.init.len() as u32;
-        let t = self.tables.len() as u32;
+        let t = self.kernels.tables.len() as u32;
+        assert_eq!(self.kernels.tables.len(), self.kernels.hyps.len());
         let ok = |regs: &[Reg], tables: &[u32]| {
             regs.iter().all(|&r| r < n) && tables.iter().all(|&x| x < t)
         };
-        for ins in &self.ins {
+        for ins in self.ins.iter().chain(&self.setup) {
             let fine = match *ins {
                 Ins::Add(d, a, b)
                 | Ins::Sub(d, a, b)
@@ -212,7 +243,7 @@ impl Program {
 /// Every register index in `ins` must be below `r.len()` and every table
 /// index within `p`'s tables (see `Program::check_bounds`).
 #[inline(always)]
-unsafe fn exec(p: &Program, r: &mut [f64], ins: Ins) {
+unsafe fn exec(p: &Kernels, r: &mut [f64], ins: Ins) {
     macro_rules! g {
         ($x:expr) => {
             *r.get_unchecked_mut($x as usize)
@@ -289,20 +320,55 @@ pub fn stage_params(model: &Model, stage: Option<usize>) -> Vec<Option<f64>> {
 
 /// Compile `wants` for stage `stage` (its parameter overrides and fluxes).
 pub fn compile(model: &Model, stage: Option<usize>, wants: &Wants) -> Program {
+    compile_with(model, stage, wants, &[])
+}
+
+/// Like [`compile`], keeping the parameters in `symbolic` as registers
+/// (unless the stage sets them), so that one program can run many members:
+/// see [`Program::regs_with`].
+pub fn compile_with(
+    model: &Model,
+    stage: Option<usize>,
+    wants: &Wants,
+    symbolic: &[DefId],
+) -> Program {
     let params = stage_params(model, stage);
     let mut c = Compiler::new(model, params);
+    let sets: Vec<DefId> = stage
+        .map(|s| model.stages[s].sets.iter().map(|(p, _)| *p).collect())
+        .unwrap_or_default();
+    for &p in symbolic {
+        if !sets.contains(&p) {
+            c.symbolic[p] = true;
+        }
+    }
     c.build(stage, wants)
+}
+
+/// What a register holds.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Kind {
+    /// Known when compiling.
+    Const,
+    /// Depends on parameters only.
+    Setup,
+    /// Depends on the state or the clock.
+    Dynamic,
 }
 
 struct Compiler<'m> {
     model: &'m Model,
     params: Vec<Option<f64>>,
     init: Vec<f64>,
-    is_const: Vec<bool>,
+    kind: Vec<Kind>,
     ins: Vec<Ins>,
+    setup: Vec<Ins>,
+    symbolic: Vec<bool>,
+    param_regs: Vec<(DefId, Reg)>,
+    kernels: Kernels,
     def_reg: Vec<Option<Reg>>,
     cap_reg: Vec<Option<Reg>>,
-    const_regs: Vec<(u64, Reg)>,
+    const_regs: std::collections::HashMap<u64, Reg>,
     state_index: Vec<Option<usize>>,
     age_reg: Reg,
     time_reg: Reg,
@@ -328,12 +394,19 @@ impl<'m> Compiler<'m> {
         Compiler {
             model,
             params,
-            is_const: vec![false; len],
+            kind: vec![Kind::Dynamic; len],
             init,
             ins: Vec::new(),
+            setup: Vec::new(),
+            symbolic: vec![false; model.defs.len()],
+            param_regs: Vec::new(),
+            kernels: Kernels {
+                age_reg: n as Reg,
+                ..Default::default()
+            },
             def_reg,
             cap_reg: vec![None; model.defs.len()],
-            const_regs: Vec::new(),
+            const_regs: Default::default(),
             state_index,
             age_reg: n as Reg,
             time_reg: n as Reg + 1,
@@ -397,19 +470,6 @@ impl<'m> Compiler<'m> {
             observed.push((d, reg));
         }
         let extra = wants.exprs.iter().map(|e| self.expr(e)).collect();
-        let tables = self
-            .tables
-            .iter()
-            .map(|&t| (model.tables[t].xs.clone(), model.tables[t].ys.clone()))
-            .collect::<Vec<_>>();
-        let hyps = self
-            .tables
-            .iter()
-            .map(|&t| {
-                let tb = &model.tables[t];
-                Hypsometry::new(&tb.xs, &tb.ys)
-            })
-            .collect();
         let mut age_knots = std::mem::take(&mut self.age_knots);
         age_knots.sort_by(|a, b| b.total_cmp(a));
         age_knots.dedup();
@@ -426,8 +486,9 @@ impl<'m> Compiler<'m> {
             rate_probes,
             observed,
             extra,
-            tables,
-            hyps,
+            setup: std::mem::take(&mut self.setup),
+            param_regs: std::mem::take(&mut self.param_regs),
+            kernels: std::mem::take(&mut self.kernels),
             age_knots,
         };
         program.check_bounds();
@@ -436,25 +497,25 @@ impl<'m> Compiler<'m> {
 
     fn constant(&mut self, v: f64) -> Reg {
         let bits = v.to_bits();
-        if let Some(&(_, r)) = self.const_regs.iter().find(|(b, _)| *b == bits) {
+        if let Some(&r) = self.const_regs.get(&bits) {
             return r;
         }
         let r = self.init.len() as Reg;
         self.init.push(v);
-        self.is_const.push(true);
-        self.const_regs.push((bits, r));
+        self.kind.push(Kind::Const);
+        self.const_regs.insert(bits, r);
         r
     }
 
     fn temp(&mut self) -> Reg {
         let r = self.init.len() as Reg;
         self.init.push(0.0);
-        self.is_const.push(false);
+        self.kind.push(Kind::Dynamic);
         r
     }
 
     fn konst(&self, r: Reg) -> Option<f64> {
-        if self.is_const[r as usize] {
+        if self.kind[r as usize] == Kind::Const {
             Some(self.init[r as usize])
         } else {
             None
@@ -470,6 +531,8 @@ impl<'m> Compiler<'m> {
             self.age_knots.extend(tb.xs.iter().copied());
         }
         self.tables.push(t);
+        self.kernels.tables.push((tb.xs.clone(), tb.ys.clone()));
+        self.kernels.hyps.push(Hypsometry::new(&tb.xs, &tb.ys));
         (self.tables.len() - 1) as u32
     }
 
@@ -480,6 +543,14 @@ impl<'m> Compiler<'m> {
         }
         let d = &self.model.defs[id];
         let r = match d.kind {
+            DefKind::Param if self.symbolic[id] => {
+                // A register set per member; its default is the compiled value.
+                let r = self.temp();
+                self.init[r as usize] = self.params[id].unwrap_or(f64::NAN);
+                self.kind[r as usize] = Kind::Setup;
+                self.param_regs.push((id, r));
+                r
+            }
             DefKind::Param => match self.params[id] {
                 Some(v) => self.constant(v),
                 None => self.expr(&d.expr),
@@ -516,49 +587,30 @@ impl<'m> Compiler<'m> {
         }
         let dst = self.temp();
         let ins = make(dst);
-        if args.iter().all(|&a| self.is_const[a as usize]) {
+        let kinds = args.iter().map(|&a| self.kind[a as usize]);
+        let kind = kinds.fold(Kind::Const, |acc, k| match (acc, k) {
+            (Kind::Dynamic, _) | (_, Kind::Dynamic) => Kind::Dynamic,
+            (Kind::Setup, _) | (_, Kind::Setup) => Kind::Setup,
+            _ => Kind::Const,
+        });
+        if kind == Kind::Const {
             // Every operand known now: evaluate once at compile time. Age and
             // time are never constant, so clock-dependent code stays.
-            let mut scratch = self.init.clone();
-            let probe = Program {
-                ins: Vec::new(),
-                init: Vec::new(),
-                n_state: 0,
-                state_defs: Vec::new(),
-                age_reg: self.age_reg,
-                time_reg: self.time_reg,
-                fluxes: Vec::new(),
-                flux_probes: Vec::new(),
-                rates: Vec::new(),
-                rate_probes: Vec::new(),
-                observed: Vec::new(),
-                extra: Vec::new(),
-                tables: self
-                    .tables
-                    .iter()
-                    .map(|&t| {
-                        (
-                            self.model.tables[t].xs.clone(),
-                            self.model.tables[t].ys.clone(),
-                        )
-                    })
-                    .collect(),
-                hyps: self
-                    .tables
-                    .iter()
-                    .map(|&t| Hypsometry::new(&self.model.tables[t].xs, &self.model.tables[t].ys))
-                    .collect(),
-                age_knots: Vec::new(),
-            };
             // SAFETY: the operands are existing registers and `dst` was just
-            // allocated, all within `scratch` (a copy of the register file);
-            // table indices come from `self.table`, within `probe.tables`.
-            unsafe { exec(&probe, &mut scratch, ins) };
-            let v = scratch[dst as usize];
+            // allocated, all within `init`; table indices come from
+            // `self.table`, within `self.kernels`.
+            unsafe { exec(&self.kernels, &mut self.init, ins) };
+            let v = self.init[dst as usize];
             // Drop the temporary and share the constant.
             self.init.pop();
-            self.is_const.pop();
+            self.kind.pop();
             return self.constant(v);
+        }
+        self.kind[dst as usize] = kind;
+        if kind == Kind::Setup {
+            self.setup.push(ins);
+            self.seen.insert(key, dst);
+            return dst;
         }
         self.ins.push(ins);
         self.seen.insert(key, dst);

@@ -374,6 +374,22 @@ fn reason(previous: Option<&BTreeMap<String, String>>, now: &BTreeMap<String, St
     }
 }
 
+/// The cache key of stage `s` starting from `state`.
+pub fn stage_key(
+    model: &Model,
+    g: &DepGraph,
+    s: usize,
+    state: &State,
+    events_done: &[bool],
+) -> Key {
+    let mut parts = stage_parts(model, g, s, events_done);
+    parts.insert(
+        "start state".into(),
+        blake3::hash(&state.to_bytes()).to_hex().to_string(),
+    );
+    hash_parts("hadal stage", &parts)
+}
+
 /// Run every stage, reusing cached ones where the fingerprint matches.
 pub fn execute(model: &Model, store: Option<&Store>) -> Result<Outcome, Problem> {
     let g = DepGraph::build(model);

@@ -74,22 +74,87 @@ pub fn columns(model: &Model) -> Vec<Column> {
     cols
 }
 
-/// Evaluate outputs on every reported row.
-pub fn series(model: &Model, run: &Run) -> Result<Series, Problem> {
-    let columns = columns(model);
-    let outputs: Vec<DefId> = columns.iter().filter_map(|c| c.def).collect();
-    let mut rows = Vec::new();
-    for sr in &run.stages {
-        let prog = compile::compile(
+/// Compiled output and expectation programs, one per stage.
+#[derive(Debug, Clone)]
+pub struct ReportPrograms {
+    outputs: Vec<compile::Program>,
+    expects: Vec<compile::Program>,
+    /// For each expectation, the range of its expressions in `extra`.
+    expect_slots: Vec<std::ops::Range<usize>>,
+}
+
+fn expect_exprs(e: &crate::model::Expect) -> Vec<crate::model::Expr> {
+    use crate::model::ExpectCheck;
+    match &e.check {
+        ExpectCheck::Target { value, sigma, .. } => {
+            vec![e.subject.clone(), value.clone(), sigma.clone()]
+        }
+        ExpectCheck::Range { low, high, .. } => vec![e.subject.clone(), low.clone(), high.clone()],
+        ExpectCheck::Bound { value, .. } => vec![e.subject.clone(), value.clone()],
+        ExpectCheck::Event { .. } => Vec::new(),
+    }
+}
+
+/// Compile the outputs and expectations of every stage, keeping the
+/// parameters in `symbolic` as registers.
+pub fn report_programs(model: &Model, symbolic: &[DefId]) -> ReportPrograms {
+    let cols = columns(model);
+    let outputs: Vec<DefId> = cols.iter().filter_map(|c| c.def).collect();
+    let mut exprs = Vec::new();
+    let mut expect_slots = Vec::new();
+    for e in &model.expects {
+        let x = expect_exprs(e);
+        expect_slots.push(exprs.len()..exprs.len() + x.len());
+        exprs.extend(x);
+    }
+    let mut out = Vec::new();
+    let mut exp = Vec::new();
+    for s in 0..model.stages.len() {
+        out.push(compile::compile_with(
             model,
-            Some(sr.stage),
+            Some(s),
             &Wants {
                 rhs: false,
                 defs: outputs.clone(),
                 exprs: Vec::new(),
             },
-        );
-        let mut regs = prog.regs();
+            symbolic,
+        ));
+        exp.push(compile::compile_with(
+            model,
+            Some(s),
+            &Wants {
+                rhs: false,
+                defs: Vec::new(),
+                exprs: exprs.clone(),
+            },
+            symbolic,
+        ));
+    }
+    ReportPrograms {
+        outputs: out,
+        expects: exp,
+        expect_slots,
+    }
+}
+
+/// Evaluate outputs on every reported row.
+pub fn series(model: &Model, run: &Run) -> Result<Series, Problem> {
+    series_with(model, run, &report_programs(model, &[]), &[])
+}
+
+/// Evaluate outputs with precompiled programs and parameter values.
+pub fn series_with(
+    model: &Model,
+    run: &Run,
+    programs: &ReportPrograms,
+    params: &[(DefId, f64)],
+) -> Result<Series, Problem> {
+    let columns = columns(model);
+    let mut rows = Vec::new();
+    for sr in &run.stages {
+        let prog = &programs.outputs[sr.stage];
+        let mut regs = prog.regs_with(params);
         for (age, y) in &sr.rows {
             prog.eval(&mut regs, y, model.start_age - age, *age);
             let mut row = Vec::with_capacity(columns.len());
@@ -233,9 +298,20 @@ pub const TARGET_SIGMAS: f64 = 2.0;
 
 /// Evaluate every expectation of the model on a solved run.
 pub fn expectations(model: &Model, run: &Run) -> Vec<ExpectResult> {
+    expectations_with(model, run, &report_programs(model, &[]), &[])
+}
+
+/// Evaluate every expectation with precompiled programs and parameters.
+pub fn expectations_with(
+    model: &Model,
+    run: &Run,
+    programs: &ReportPrograms,
+    params: &[(DefId, f64)],
+) -> Vec<ExpectResult> {
     use crate::model::ExpectCheck;
     let mut out = Vec::with_capacity(model.expects.len());
-    for e in &model.expects {
+    for (k, e) in model.expects.iter().enumerate() {
+        let at = |age: f64| eval_at(model, run, programs, k, age, params);
         let (value, misfit, pass) = match &e.check {
             ExpectCheck::Event { event, before, age } => {
                 let k = run.event_defs.iter().position(|d| d == event);
@@ -248,13 +324,13 @@ pub fn expectations(model: &Model, run: &Run) -> Vec<ExpectResult> {
                     }
                 }
             }
-            ExpectCheck::Target { age, value, sigma } => {
-                let v = eval_at(model, run, *age, &[&e.subject, value, sigma]);
+            ExpectCheck::Target { age, .. } => {
+                let v = at(*age);
                 let z = (v[0] - v[1]) / v[2];
                 (v[0], z.abs(), z.abs() <= TARGET_SIGMAS)
             }
-            ExpectCheck::Range { age, low, high } => {
-                let v = eval_at(model, run, *age, &[&e.subject, low, high]);
+            ExpectCheck::Range { age, .. } => {
+                let v = at(*age);
                 let (x, lo, hi) = (v[0], v[1], v[2]);
                 let width = (hi - lo).abs().max(f64::MIN_POSITIVE);
                 let miss = if x < lo {
@@ -266,8 +342,8 @@ pub fn expectations(model: &Model, run: &Run) -> Vec<ExpectResult> {
                 };
                 (x, miss, x >= lo && x <= hi)
             }
-            ExpectCheck::Bound { age, op, value } => {
-                let v = eval_at(model, run, *age, &[&e.subject, value]);
+            ExpectCheck::Bound { age, op, .. } => {
+                let v = at(*age);
                 let (x, b) = (v[0], v[1]);
                 use crate::syntax::CmpOp;
                 let pass = match op {
@@ -318,8 +394,17 @@ fn infer_dim(model: &Model, e: &crate::model::Expect) -> crate::units::Dim {
     }
 }
 
-/// Values of expressions at `age`, from the probe state the solve kept there.
-fn eval_at(model: &Model, run: &Run, age: f64, exprs: &[&crate::model::Expr]) -> Vec<f64> {
+/// Values of expectation `k`'s expressions at `age`, from the probe state
+/// the solve kept there.
+fn eval_at(
+    model: &Model,
+    run: &Run,
+    programs: &ReportPrograms,
+    k: usize,
+    age: f64,
+    params: &[(DefId, f64)],
+) -> Vec<f64> {
+    let slots = programs.expect_slots[k].clone();
     let found = run.stages.iter().find_map(|sr| {
         sr.probes
             .iter()
@@ -327,20 +412,15 @@ fn eval_at(model: &Model, run: &Run, age: f64, exprs: &[&crate::model::Expr]) ->
             .map(|(_, y)| (sr.stage, y))
     });
     let Some((stage, y)) = found else {
-        return vec![f64::NAN; exprs.len()];
+        return vec![f64::NAN; slots.len()];
     };
-    let prog = compile::compile(
-        model,
-        Some(stage),
-        &Wants {
-            rhs: false,
-            defs: Vec::new(),
-            exprs: exprs.iter().map(|e| (*e).clone()).collect(),
-        },
-    );
-    let mut regs = prog.regs();
+    let prog = &programs.expects[stage];
+    let mut regs = prog.regs_with(params);
     prog.eval(&mut regs, y, model.start_age - age, age);
-    prog.extra.iter().map(|&r| prog.value(&regs, r)).collect()
+    prog.extra[slots]
+        .iter()
+        .map(|&r| prog.value(&regs, r))
+        .collect()
 }
 
 /// The expectations table of a run.

@@ -125,9 +125,13 @@ pub struct Sys<'p> {
 
 impl<'p> Sys<'p> {
     pub fn new(model: &Model, prog: &'p Program) -> Sys<'p> {
+        Sys::with_params(model, prog, &[])
+    }
+
+    pub fn with_params(model: &Model, prog: &'p Program, params: &[(DefId, f64)]) -> Sys<'p> {
         Sys {
             prog,
-            regs: prog.regs(),
+            regs: prog.regs_with(params),
             start_age: model.start_age,
         }
     }
@@ -318,26 +322,56 @@ pub fn solve_stage(
     start: &State,
     events_done: &[bool],
 ) -> Result<StageRun, Problem> {
-    let clock = Instant::now();
-    let st = &model.stages[s];
-    let prog = compile::compile(
+    let progs = stage_programs(model, s, &[]);
+    run_stage(model, s, &progs, &[], start, events_done)
+}
+
+/// The compiled programs of one stage: its right-hand side and its events.
+#[derive(Debug, Clone)]
+pub struct StagePrograms {
+    pub rhs: Program,
+    pub events: Program,
+}
+
+/// Compile stage `s`, keeping the parameters in `symbolic` as registers so
+/// the same programs serve every member of an ensemble.
+pub fn stage_programs(model: &Model, s: usize, symbolic: &[DefId]) -> StagePrograms {
+    let rhs = compile::compile_with(
         model,
         Some(s),
         &Wants {
             rhs: true,
             ..Default::default()
         },
+        symbolic,
     );
-    let event_ids = event_defs(model);
-    let event_prog = compile::compile(
+    let events = compile::compile_with(
         model,
         Some(s),
         &Wants {
             rhs: false,
-            defs: event_ids.clone(),
+            defs: event_defs(model),
             exprs: Vec::new(),
         },
+        symbolic,
     );
+    StagePrograms { rhs, events }
+}
+
+/// Integrate stage `s` with precompiled programs and the given parameter
+/// values (for parameters compiled as registers).
+pub fn run_stage(
+    model: &Model,
+    s: usize,
+    progs: &StagePrograms,
+    params: &[(DefId, f64)],
+    start: &State,
+    events_done: &[bool],
+) -> Result<StageRun, Problem> {
+    let clock = Instant::now();
+    let st = &model.stages[s];
+    let prog = &progs.rhs;
+    let event_prog = &progs.events;
     let n = prog.n_state + 2;
     let n_res = model.reservoirs().count();
     let total0 = water_total(model, &start.0);
@@ -354,9 +388,9 @@ pub fn solve_stage(
     let rows = stage_rows(model, s, &ages);
     let probe_ages = stage_rows(model, s, &probe_ages(model));
     // Events already true at the very start of the run count at the start.
-    let mut first: Vec<Option<f64>> = vec![None; event_ids.len()];
-    let mut prev = vec![0.0; event_ids.len()];
-    let mut eregs = event_prog.regs();
+    let mut first: Vec<Option<f64>> = vec![None; event_prog.observed.len()];
+    let mut prev = vec![0.0; event_prog.observed.len()];
+    let mut eregs = event_prog.regs_with(params);
     event_prog.eval(&mut eregs, &y, span_t0, st.start_age);
     for (k, &(_, reg)) in event_prog.observed.iter().enumerate() {
         prev[k] = eregs.0[reg as usize];
@@ -379,7 +413,7 @@ pub fn solve_stage(
         floor: -(st.solver.atol * mass_scale).max(1e-9 * mass_scale * st.solver.rtol),
         negative: None,
         events: Some(EventWatch {
-            prog: &event_prog,
+            prog: event_prog,
             regs: eregs,
             prev,
             first,
@@ -404,7 +438,7 @@ pub fn solve_stage(
         .collect();
     cuts.sort_by(f64::total_cmp);
     cuts.push(span_t1);
-    let mut sys = Sys::new(model, &prog);
+    let mut sys = Sys::with_params(model, prog, params);
     let mut stats = Stats::default();
     let mut t = span_t0;
     for &cut in &cuts {
@@ -415,7 +449,7 @@ pub fn solve_stage(
         let r = methods::integrate(&mut sys, t, cut, &mut y, &ctl, &mut obs, &mut seg);
         stats.add(&seg);
         if let Err(f) = r {
-            return Err(failure_problem(model, s, &prog, &mut sys, f, &obs, &y));
+            return Err(failure_problem(model, s, prog, &mut sys, f, &obs, &y));
         }
         t = cut;
     }

@@ -1,0 +1,296 @@
+//! A mergeable quantile sketch with a relative-error guarantee, after
+//! Masson, Rim & Lee (2019), "DDSketch: a fast and fully-mergeable quantile
+//! sketch with relative-error guarantees", PVLDB 12(12).
+//!
+//! Values fall into logarithmic buckets; a sketch is only counts, so merging
+//! two sketches adds counts. The result does not depend on the order in which
+//! values arrived, on the number of threads or on how an ensemble was split
+//! into shards: that is what makes ensemble quantiles byte-identical however
+//! they were computed. Each quantile is within `ALPHA` relative error of the
+//! true value at its rank.
+
+/// Relative accuracy of every quantile.
+pub const ALPHA: f64 = 2e-3;
+
+fn gamma_ln() -> f64 {
+    static LN: std::sync::OnceLock<f64> = std::sync::OnceLock::new();
+    *LN.get_or_init(|| libm::log((1.0 + ALPHA) / (1.0 - ALPHA)))
+}
+
+/// Where a value goes in a sketch; computed once, added to several sketches.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Bucket {
+    value: f64,
+    slot: Slot,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq)]
+enum Slot {
+    Skip,
+    Zero,
+    Pos(i32),
+    Neg(i32),
+}
+
+impl Bucket {
+    pub fn of(x: f64) -> Bucket {
+        let slot = if !x.is_finite() {
+            Slot::Skip
+        } else if x.abs() < TINY {
+            Slot::Zero
+        } else {
+            let k = libm::ceil(libm::log(x.abs()) / gamma_ln()) as i32;
+            if x > 0.0 {
+                Slot::Pos(k)
+            } else {
+                Slot::Neg(k)
+            }
+        };
+        Bucket { value: x, slot }
+    }
+}
+
+/// Smallest magnitude kept apart from zero.
+const TINY: f64 = 1e-300;
+
+#[derive(Debug, Clone, PartialEq, Default)]
+struct Store {
+    /// Bucket index of `counts[0]`.
+    offset: i32,
+    counts: Vec<u32>,
+}
+
+impl Store {
+    #[inline]
+    fn add(&mut self, k: i32, n: u32) {
+        if let Some(c) = k
+            .checked_sub(self.offset)
+            .and_then(|i| usize::try_from(i).ok())
+            .and_then(|i| self.counts.get_mut(i))
+        {
+            *c += n;
+            return;
+        }
+        self.grow(k, n);
+    }
+
+    #[cold]
+    fn grow(&mut self, k: i32, n: u32) {
+        if self.counts.is_empty() {
+            self.offset = k;
+            self.counts.push(0);
+        }
+        if k < self.offset {
+            let grow = (self.offset - k) as usize;
+            let mut v = vec![0u32; grow];
+            v.extend_from_slice(&self.counts);
+            self.counts = v;
+            self.offset = k;
+        }
+        let i = (k - self.offset) as usize;
+        if i >= self.counts.len() {
+            self.counts.resize(i + 1, 0);
+        }
+        self.counts[i] += n;
+    }
+
+    fn merge(&mut self, o: &Store) {
+        for (i, &c) in o.counts.iter().enumerate() {
+            if c > 0 {
+                self.add(o.offset + i as i32, c);
+            }
+        }
+    }
+
+    fn total(&self) -> u64 {
+        self.counts.iter().map(|&c| c as u64).sum()
+    }
+}
+
+#[derive(Debug, Clone, PartialEq)]
+pub struct Sketch {
+    pos: Store,
+    neg: Store,
+    zero: u64,
+    /// Exact extremes, to clamp estimates (a constant series stays exact).
+    min: f64,
+    max: f64,
+}
+
+impl Default for Sketch {
+    fn default() -> Self {
+        Sketch {
+            pos: Store::default(),
+            neg: Store::default(),
+            zero: 0,
+            min: f64::INFINITY,
+            max: f64::NEG_INFINITY,
+        }
+    }
+}
+
+impl Sketch {
+    pub fn count(&self) -> u64 {
+        self.pos.total() + self.neg.total() + self.zero
+    }
+
+    pub fn add(&mut self, x: f64) {
+        self.add_bucket(Bucket::of(x));
+    }
+
+    pub fn add_bucket(&mut self, b: Bucket) {
+        match b.slot {
+            Slot::Skip => return,
+            Slot::Zero => self.zero += 1,
+            Slot::Pos(k) => self.pos.add(k, 1),
+            Slot::Neg(k) => self.neg.add(k, 1),
+        }
+        self.min = self.min.min(b.value);
+        self.max = self.max.max(b.value);
+    }
+
+    pub fn merge(&mut self, o: &Sketch) {
+        self.pos.merge(&o.pos);
+        self.neg.merge(&o.neg);
+        self.zero += o.zero;
+        self.min = self.min.min(o.min);
+        self.max = self.max.max(o.max);
+    }
+
+    fn value(k: i32) -> f64 {
+        // The bucket (g^(k-1), g^k] is represented by 2 g^k / (g + 1).
+        let g = libm::exp(gamma_ln());
+        2.0 * libm::exp(k as f64 * gamma_ln()) / (g + 1.0)
+    }
+
+    /// The value at quantile `q` (0..=1), or `None` for an empty sketch.
+    pub fn quantile(&self, q: f64) -> Option<f64> {
+        self.bucket_quantile(q).map(|v| v.clamp(self.min, self.max))
+    }
+
+    fn bucket_quantile(&self, q: f64) -> Option<f64> {
+        let n = self.count();
+        if n == 0 {
+            return None;
+        }
+        // Rank of the wanted value among the sorted values (0-based).
+        let rank = libm::floor(q.clamp(0.0, 1.0) * (n - 1) as f64) as u64;
+        let mut seen = 0u64;
+        // Negative values, most negative first.
+        for (i, &c) in self.neg.counts.iter().enumerate().rev() {
+            seen += c as u64;
+            if seen > rank {
+                return Some(-Self::value(self.neg.offset + i as i32));
+            }
+        }
+        seen += self.zero;
+        if seen > rank {
+            return Some(0.0);
+        }
+        for (i, &c) in self.pos.counts.iter().enumerate() {
+            seen += c as u64;
+            if seen > rank {
+                return Some(Self::value(self.pos.offset + i as i32));
+            }
+        }
+        None
+    }
+
+    pub fn write(&self, out: &mut Vec<u8>) {
+        for st in [&self.pos, &self.neg] {
+            out.extend_from_slice(&st.offset.to_le_bytes());
+            out.extend_from_slice(&(st.counts.len() as u32).to_le_bytes());
+            for c in &st.counts {
+                out.extend_from_slice(&c.to_le_bytes());
+            }
+        }
+        out.extend_from_slice(&self.zero.to_le_bytes());
+        out.extend_from_slice(&self.min.to_le_bytes());
+        out.extend_from_slice(&self.max.to_le_bytes());
+    }
+
+    pub fn read(input: &mut &[u8]) -> Option<Sketch> {
+        fn take<const N: usize>(input: &mut &[u8]) -> Option<[u8; N]> {
+            if input.len() < N {
+                return None;
+            }
+            let (a, b) = input.split_at(N);
+            *input = b;
+            a.try_into().ok()
+        }
+        let mut stores = [Store::default(), Store::default()];
+        for st in &mut stores {
+            st.offset = i32::from_le_bytes(take::<4>(input)?);
+            let n = u32::from_le_bytes(take::<4>(input)?) as usize;
+            if n > input.len() / 4 {
+                return None;
+            }
+            st.counts = (0..n)
+                .map(|_| take::<4>(input).map(u32::from_le_bytes))
+                .collect::<Option<Vec<u32>>>()?;
+        }
+        let zero = u64::from_le_bytes(take::<8>(input)?);
+        let min = f64::from_le_bytes(take::<8>(input)?);
+        let max = f64::from_le_bytes(take::<8>(input)?);
+        let [pos, neg] = stores;
+        Some(Sketch {
+            pos,
+            neg,
+            zero,
+            min,
+            max,
+        })
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn quantiles_are_within_the_relative_error() {
+        let mut s = Sketch::default();
+        let values: Vec<f64> = (1..=1000).map(|i| i as f64 * 1e18).collect();
+        for v in &values {
+            s.add(*v);
+        }
+        for q in [0.05, 0.25, 0.5, 0.75, 0.95] {
+            let exact = values[(q * 999.0f64).floor() as usize];
+            let got = s.quantile(q).unwrap();
+            assert!(
+                (got - exact).abs() / exact <= ALPHA * 1.0001,
+                "q {q}: {got} vs {exact}"
+            );
+        }
+    }
+
+    #[test]
+    fn merging_in_any_split_and_order_gives_the_same_sketch() {
+        let values: Vec<f64> = (0..500).map(|i| ((i * 37) % 101) as f64 - 50.0).collect();
+        let mut whole = Sketch::default();
+        for v in &values {
+            whole.add(*v);
+        }
+        let mut a = Sketch::default();
+        let mut b = Sketch::default();
+        for v in values.iter().rev().take(200) {
+            a.add(*v);
+        }
+        for v in values.iter().rev().skip(200) {
+            b.add(*v);
+        }
+        b.merge(&a);
+        assert_eq!(whole, b);
+        let mut bytes = Vec::new();
+        whole.write(&mut bytes);
+        let back = Sketch::read(&mut bytes.as_slice()).unwrap();
+        assert_eq!(back, whole);
+        assert_eq!(whole.quantile(0.5), Some(0.0));
+        let mut constant = Sketch::default();
+        for _ in 0..10 {
+            constant.add(1e21);
+        }
+        assert_eq!(constant.quantile(0.05), Some(1e21));
+        assert!(whole.quantile(0.0).unwrap() < -49.0);
+    }
+}

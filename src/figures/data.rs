@@ -1,0 +1,466 @@
+//! Reading the files of a run or ensemble directory back into numbers.
+//!
+//! Only the files are read, never the scenario: figures and the report can
+//! be redrawn from a published output directory alone. Readers are lenient
+//! about what they do not need (extra columns, missing optional files) and
+//! strict about what they do (a series without an age column is an error).
+
+use std::path::Path;
+
+use crate::units::{self, Unit};
+
+/// One column of a CSV table whose header is `name [unit]`.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Column {
+    pub name: String,
+    /// The unit as written in the header (UDUNITS style); empty if none.
+    pub unit: String,
+    /// Values in that unit; NaN where a cell was empty or not a number.
+    pub values: Vec<f64>,
+}
+
+/// Split a header cell `name [unit]` into its name and unit.
+pub fn split_header(cell: &str) -> (String, String) {
+    let cell = cell.trim();
+    if let Some(open) = cell.rfind(" [") {
+        if let Some(inner) = cell[open + 2..].strip_suffix(']') {
+            return (cell[..open].trim().to_owned(), inner.trim().to_owned());
+        }
+    }
+    (cell.to_owned(), String::new())
+}
+
+/// Parse a number cell. Empty and unparsable cells are NaN, so a column of
+/// numbers with holes still lines up with its ages.
+pub fn parse_num(cell: &str) -> f64 {
+    let t = cell.trim();
+    match t {
+        "" => f64::NAN,
+        "inf" | "+inf" | "Infinity" => f64::INFINITY,
+        "-inf" | "-Infinity" => f64::NEG_INFINITY,
+        _ => t.parse::<f64>().unwrap_or(f64::NAN),
+    }
+}
+
+/// A CSV file as text cells: header and rows.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct TextTable {
+    pub header: Vec<String>,
+    pub rows: Vec<Vec<String>>,
+}
+
+impl TextTable {
+    pub fn parse(bytes: &[u8]) -> Result<TextTable, String> {
+        let mut r = csv::ReaderBuilder::new()
+            .has_headers(true)
+            .flexible(true)
+            .from_reader(bytes);
+        let header = r
+            .headers()
+            .map_err(|e| format!("bad CSV header: {e}"))?
+            .iter()
+            .map(str::to_owned)
+            .collect();
+        let mut rows = Vec::new();
+        for rec in r.records() {
+            let rec = rec.map_err(|e| format!("bad CSV row: {e}"))?;
+            rows.push(rec.iter().map(str::to_owned).collect());
+        }
+        Ok(TextTable { header, rows })
+    }
+
+    /// Read `dir/name`; `Ok(None)` when the file does not exist.
+    pub fn read_optional(dir: &Path, name: &str) -> Result<Option<TextTable>, String> {
+        let path = dir.join(name);
+        match std::fs::read(&path) {
+            Ok(b) => TextTable::parse(&b)
+                .map(Some)
+                .map_err(|e| format!("{}: {e}", path.display())),
+            Err(e) if e.kind() == std::io::ErrorKind::NotFound => Ok(None),
+            Err(e) => Err(format!("cannot read {}: {e}", path.display())),
+        }
+    }
+
+    /// Index of the column whose name (before any `[unit]`) is `name`.
+    pub fn find(&self, name: &str) -> Option<usize> {
+        self.header
+            .iter()
+            .position(|h| split_header(h).0.eq_ignore_ascii_case(name))
+    }
+
+    pub fn cell(&self, row: usize, col: usize) -> &str {
+        self.rows
+            .get(row)
+            .and_then(|r| r.get(col))
+            .map_or("", String::as_str)
+    }
+
+    /// Every column parsed as numbers.
+    pub fn numeric_columns(&self) -> Vec<Column> {
+        self.header
+            .iter()
+            .enumerate()
+            .map(|(k, h)| {
+                let (name, unit) = split_header(h);
+                Column {
+                    name,
+                    unit,
+                    values: (0..self.rows.len())
+                        .map(|i| parse_num(self.cell(i, k)))
+                        .collect(),
+                }
+            })
+            .collect()
+    }
+}
+
+/// A unit written UDUNITS style in a CSV header (`kg`, `W m-2`, `cm yr-1`,
+/// `degC`, `1`), as the project's unit table knows it. `None` for units the
+/// table does not know; such columns are plotted in their own unit, never
+/// converted.
+pub fn header_unit(text: &str) -> Option<Unit> {
+    let text = text.trim();
+    if text.is_empty() || text == "1" {
+        return units::combine(std::iter::empty()).ok();
+    }
+    let mut factors: Vec<(&str, i32)> = Vec::new();
+    for tok in text.split_whitespace() {
+        let split = tok
+            .char_indices()
+            .find(|&(i, c)| i > 0 && (c == '-' || c.is_ascii_digit()))
+            .map_or(tok.len(), |(i, _)| i);
+        let (name, pow) = tok.split_at(split);
+        let pow = if pow.is_empty() {
+            1
+        } else {
+            pow.parse::<i32>().ok()?
+        };
+        factors.push((name, pow));
+    }
+    units::combine(factors).ok()
+}
+
+/// Convert `v` from unit `from` to unit `to` (header spellings), when both
+/// are known and measure the same kind of quantity.
+pub fn convert(v: f64, from: &str, to: &str) -> Option<f64> {
+    if from == to {
+        return Some(v);
+    }
+    let (a, b) = (header_unit(from)?, header_unit(to)?);
+    if a.dim.plain() != b.dim.plain() {
+        return None;
+    }
+    Some(b.from_internal(a.to_internal(v)))
+}
+
+/// Ages in Ga from a column in any age unit (Ga, Ma, ka, yr).
+fn ages_in_ga(col: &Column) -> Result<Vec<f64>, String> {
+    let unit = if col.unit.is_empty() { "Ga" } else { &col.unit };
+    let f = match unit {
+        "Ga" => 1.0,
+        "Ma" => 1e-3,
+        "ka" => 1e-6,
+        "yr" | "a" => 1e-9,
+        other => return Err(format!("the age column is in `{other}`, not an age unit")),
+    };
+    Ok(col.values.iter().map(|v| v * f).collect())
+}
+
+/// One stage of a run: its name and span.
+#[derive(Debug, Clone, PartialEq)]
+pub struct StageSpan {
+    pub name: String,
+    pub from_ga: f64,
+    pub to_ga: f64,
+    /// Every cell of the stage's row in stages.csv, for the report.
+    pub cells: Vec<String>,
+}
+
+/// An event and the first age at which it happened (None: never).
+#[derive(Debug, Clone, PartialEq)]
+pub struct EventAge {
+    pub name: String,
+    pub age_ga: Option<f64>,
+}
+
+/// What a run directory holds, as numbers.
+#[derive(Debug, Clone)]
+pub struct RunData {
+    /// Report ages in Ga, in file order (oldest first).
+    pub ages: Vec<f64>,
+    /// Every column after the age column.
+    pub columns: Vec<Column>,
+    pub stages: Vec<StageSpan>,
+    pub stages_header: Vec<String>,
+    pub events: Vec<EventAge>,
+    /// The manifest, if present and readable as JSON.
+    pub manifest: Option<serde_json::Value>,
+}
+
+impl RunData {
+    /// Read `series.csv` (required), `stages.csv`, `events.csv` and
+    /// `manifest.json` (optional) from a run directory.
+    pub fn load(dir: &Path) -> Result<RunData, String> {
+        let series = TextTable::read_optional(dir, "series.csv")?
+            .ok_or_else(|| format!("{} has no series.csv", dir.display()))?;
+        let mut cols = series.numeric_columns();
+        let age_at = cols
+            .iter()
+            .position(|c| c.name.eq_ignore_ascii_case("age"))
+            .ok_or_else(|| format!("{}/series.csv has no `age` column", dir.display()))?;
+        let age = cols.remove(age_at);
+        let ages = ages_in_ga(&age)?;
+        if ages.iter().any(|a| !a.is_finite()) {
+            return Err(format!(
+                "{}/series.csv has an empty or non-numeric age",
+                dir.display()
+            ));
+        }
+        let (stages, stages_header) = match TextTable::read_optional(dir, "stages.csv")? {
+            Some(t) => (read_stages(&t), t.header.clone()),
+            None => (Vec::new(), Vec::new()),
+        };
+        let events = match TextTable::read_optional(dir, "events.csv")? {
+            Some(t) => read_events(&t),
+            None => Vec::new(),
+        };
+        let manifest = std::fs::read(dir.join("manifest.json"))
+            .ok()
+            .and_then(|b| serde_json::from_slice(&b).ok());
+        Ok(RunData {
+            ages,
+            columns: cols,
+            stages,
+            stages_header,
+            events,
+            manifest,
+        })
+    }
+
+    pub fn column(&self, name: &str) -> Option<&Column> {
+        self.columns.iter().find(|c| c.name == name)
+    }
+}
+
+fn age_factor(header: &str) -> f64 {
+    match split_header(header).1.as_str() {
+        "Ma" => 1e-3,
+        "ka" => 1e-6,
+        "yr" => 1e-9,
+        _ => 1.0,
+    }
+}
+
+/// The stages of `dir/stages.csv` (none when the file is absent).
+pub fn load_stages(dir: &Path) -> Result<Vec<StageSpan>, String> {
+    Ok(TextTable::read_optional(dir, "stages.csv")?
+        .map(|t| read_stages(&t))
+        .unwrap_or_default())
+}
+
+fn read_stages(t: &TextTable) -> Vec<StageSpan> {
+    let name = t.find("stage").unwrap_or(0);
+    let (Some(from), Some(to)) = (t.find("from"), t.find("to")) else {
+        return Vec::new();
+    };
+    let (ff, ft) = (age_factor(&t.header[from]), age_factor(&t.header[to]));
+    (0..t.rows.len())
+        .filter_map(|i| {
+            let a = parse_num(t.cell(i, from)) * ff;
+            let b = parse_num(t.cell(i, to)) * ft;
+            (a.is_finite() && b.is_finite()).then(|| StageSpan {
+                name: t.cell(i, name).to_owned(),
+                from_ga: a,
+                to_ga: b,
+                cells: t.rows[i].clone(),
+            })
+        })
+        .collect()
+}
+
+fn read_events(t: &TextTable) -> Vec<EventAge> {
+    let name = t.find("event").unwrap_or(0);
+    let age = t
+        .header
+        .iter()
+        .position(|h| split_header(h).0.contains("age"))
+        .unwrap_or(1);
+    let f = t.header.get(age).map_or(1.0, |h| age_factor(h));
+    (0..t.rows.len())
+        .map(|i| {
+            let a = parse_num(t.cell(i, age)) * f;
+            EventAge {
+                name: t.cell(i, name).to_owned(),
+                age_ga: a.is_finite().then_some(a),
+            }
+        })
+        .collect()
+}
+
+/// The five quantile levels of an ensemble, in percent.
+pub const LEVELS: [u32; 5] = [5, 25, 50, 75, 95];
+
+/// Per-age quantiles of one variable for one member set.
+#[derive(Debug, Clone, PartialEq)]
+pub struct QuantileSet {
+    /// `q[k][i]`: level `LEVELS[k]` at age `i` (NaN where the set is empty).
+    pub q: [Vec<f64>; 5],
+}
+
+/// Quantiles of one variable against age, for all and for accepted members.
+#[derive(Debug, Clone, PartialEq)]
+pub struct VariableQuantiles {
+    pub variable: String,
+    pub unit: String,
+    pub ages: Vec<f64>,
+    pub all: QuantileSet,
+    pub accepted: Option<QuantileSet>,
+}
+
+/// Which member set and level a quantile column holds, from its name:
+/// any name containing a level (5, 25, 50, 75, 95; `median` for 50) and,
+/// for the accepted set, the word `acc` (`accepted_p05`, `q50_accepted`,
+/// `accepted 95 %`). Columns naming no level are not quantiles.
+fn quantile_column(name: &str) -> Option<(bool, usize)> {
+    let lower = name.to_ascii_lowercase();
+    let accepted = lower.contains("acc");
+    let level = if lower.contains("median") {
+        Some(50)
+    } else {
+        let mut digits = String::new();
+        let mut found = None;
+        for c in lower.chars().chain(std::iter::once(' ')) {
+            if c.is_ascii_digit() {
+                digits.push(c);
+            } else if !digits.is_empty() {
+                found = digits.parse::<u32>().ok();
+                break;
+            }
+        }
+        found
+    };
+    let k = LEVELS.iter().position(|&l| Some(l) == level)?;
+    Some((accepted, k))
+}
+
+/// Parse `quantiles.csv`: long format, one row per (age, variable), with an
+/// `age [unit]` column, a `variable` column (its cells may carry a
+/// `[unit]`), an optional `unit` column, and quantile columns as described
+/// at [`quantile_column`]. Variables keep their first-seen order.
+pub fn parse_quantiles(t: &TextTable) -> Result<Vec<VariableQuantiles>, String> {
+    let age = t
+        .header
+        .iter()
+        .position(|h| split_header(h).0.eq_ignore_ascii_case("age"))
+        .ok_or("quantiles.csv has no `age` column")?;
+    let af = age_factor(&t.header[age]);
+    let var = t
+        .find("variable")
+        .ok_or("quantiles.csv has no `variable` column")?;
+    let unit_col = t.find("unit");
+    let qcols: Vec<(usize, bool, usize)> = t
+        .header
+        .iter()
+        .enumerate()
+        .filter(|(k, _)| *k != age && *k != var && Some(*k) != unit_col)
+        .filter_map(|(k, h)| quantile_column(&split_header(h).0).map(|(a, l)| (k, a, l)))
+        .collect();
+    if !qcols.iter().any(|&(_, a, _)| !a) {
+        return Err("quantiles.csv has no quantile columns for all members".into());
+    }
+    let has_accepted = qcols.iter().any(|&(_, a, _)| a);
+    let mut out: Vec<VariableQuantiles> = Vec::new();
+    for i in 0..t.rows.len() {
+        let (name, mut unit) = split_header(t.cell(i, var));
+        if let Some(u) = unit_col {
+            unit = t.cell(i, u).trim().to_owned();
+        }
+        if unit.is_empty() {
+            // The unit may sit in the quantile column headers instead.
+            unit = split_header(&t.header[qcols[0].0]).1;
+        }
+        let a = parse_num(t.cell(i, age)) * af;
+        if !a.is_finite() {
+            continue;
+        }
+        let at = match out.iter().position(|v| v.variable == name) {
+            Some(p) => p,
+            None => {
+                let empty = || QuantileSet {
+                    q: Default::default(),
+                };
+                out.push(VariableQuantiles {
+                    variable: name.clone(),
+                    unit: unit.clone(),
+                    ages: Vec::new(),
+                    all: empty(),
+                    accepted: has_accepted.then(empty),
+                });
+                out.len() - 1
+            }
+        };
+        let v = &mut out[at];
+        v.ages.push(a);
+        let mut row_all = [f64::NAN; 5];
+        let mut row_acc = [f64::NAN; 5];
+        for &(k, acc, l) in &qcols {
+            let x = parse_num(t.cell(i, k));
+            if acc {
+                row_acc[l] = x;
+            } else {
+                row_all[l] = x;
+            }
+        }
+        for l in 0..5 {
+            v.all.q[l].push(row_all[l]);
+            if let Some(s) = v.accepted.as_mut() {
+                s.q[l].push(row_acc[l]);
+            }
+        }
+    }
+    Ok(out)
+}
+
+/// The members table of an ensemble.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Members {
+    /// Parameter columns: name, unit, one value per member.
+    pub params: Vec<Column>,
+    /// Whether each member was accepted (all true when the file says nothing).
+    pub accepted: Vec<bool>,
+}
+
+fn truthy(cell: &str) -> bool {
+    matches!(
+        cell.trim().to_ascii_lowercase().as_str(),
+        "1" | "true" | "yes" | "pass" | "accepted" | "y" | "t"
+    )
+}
+
+/// Parse `members.csv`: a member id column (`member`, `id`, `member_id`),
+/// parameter columns, per-constraint columns whose names contain `misfit`
+/// or `pass`, and an `accepted` column. Parameters are the numeric columns
+/// that are none of the others.
+pub fn parse_members(t: &TextTable) -> Members {
+    let acc = t.find("accepted");
+    let mut params = Vec::new();
+    for (k, h) in t.header.iter().enumerate() {
+        let (name, unit) = split_header(h);
+        let lower = name.to_ascii_lowercase();
+        if Some(k) == acc
+            || matches!(lower.as_str(), "member" | "id" | "member_id" | "index")
+            || lower.contains("misfit")
+            || lower.contains("pass")
+        {
+            continue;
+        }
+        let values: Vec<f64> = (0..t.rows.len()).map(|i| parse_num(t.cell(i, k))).collect();
+        if values.iter().any(|v| v.is_finite()) {
+            params.push(Column { name, unit, values });
+        }
+    }
+    let accepted = (0..t.rows.len())
+        .map(|i| acc.is_none_or(|a| truthy(t.cell(i, a))))
+        .collect();
+    Members { params, accepted }
+}

@@ -1,0 +1,258 @@
+//! Ensembles through the real binary: determinism across threads and
+//! shards, and recovery of an accepted region known in closed form.
+
+use std::path::{Path, PathBuf};
+use std::process::Command;
+
+fn hadal(dir: &Path, args: &[&str]) -> std::process::Output {
+    let o = Command::new(env!("CARGO_BIN_EXE_hadal"))
+        .current_dir(dir)
+        .args(args)
+        .env("HADAL_CACHE", dir.join(".cache"))
+        .env("NO_COLOR", "1")
+        .output()
+        .unwrap();
+    assert!(
+        o.status.success(),
+        "{args:?}: {}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    o
+}
+
+const STUDY: &str = "\
+scenario study \"a two-box study\"
+span 2 Ga to 0 Ga
+report every 100 Myr
+param k = 0.5 / 1 Gyr
+param late_k = 0.1 / 1 Gyr
+reservoir a = 1e21 kg
+reservoir b = 1e20 kg
+flux ab: a -> b = k * a
+output share = b / (a + b) in %
+stage one from 2 Ga to 1 Ga
+stage two from 1 Ga to 0 Ga {
+  flux back: b -> a = late_k * b
+}
+event half = b > a
+expect b at 0 Ga = 5e20 kg +- 1e20 kg
+expect half before 0.5 Ga
+ensemble {
+  members = 90
+  seed = 3
+  vary k ~ log_uniform(0.1 / 1 Gyr, 2 / 1 Gyr)
+  vary late_k ~ normal(0.1 / 1 Gyr, 0.05 / 1 Gyr), min = 0 / 1 Gyr
+}
+";
+
+fn outputs(dir: &Path) -> Vec<(String, Vec<u8>)> {
+    [
+        "members.csv",
+        "quantiles.csv",
+        "summary.json",
+        "ensemble.state",
+    ]
+    .iter()
+    .map(|n| {
+        (
+            n.to_string(),
+            std::fs::read(dir.join(n)).unwrap_or_else(|_| panic!("{n} in {}", dir.display())),
+        )
+    })
+    .collect()
+}
+
+#[test]
+fn same_seed_same_bytes_for_any_thread_count_and_shard_split() {
+    let t = tempfile::tempdir().unwrap();
+    let d = t.path();
+    std::fs::write(d.join("s.hadal"), STUDY).unwrap();
+    hadal(
+        d,
+        &[
+            "ensemble",
+            "s.hadal",
+            "--threads",
+            "1",
+            "--out",
+            "one",
+            "--no-cache",
+        ],
+    );
+    hadal(
+        d,
+        &["ensemble", "s.hadal", "--threads", "2", "--out", "two"],
+    );
+    let mut shards: Vec<PathBuf> = Vec::new();
+    for k in 1..=3 {
+        let out = format!("shard{k}");
+        hadal(
+            d,
+            &[
+                "ensemble",
+                "s.hadal",
+                "--shard",
+                &format!("{k}/3"),
+                "--out",
+                &out,
+            ],
+        );
+        shards.push(d.join(out));
+    }
+    let mut args: Vec<String> = vec!["merge".into()];
+    args.extend(
+        shards
+            .iter()
+            .rev()
+            .map(|p| p.to_string_lossy().into_owned()),
+    );
+    args.push("--out".into());
+    args.push("merged".into());
+    let refs: Vec<&str> = args.iter().map(String::as_str).collect();
+    hadal(d, &refs);
+    let one = outputs(&d.join("one"));
+    assert_eq!(one, outputs(&d.join("two")), "1 thread against 2");
+    assert_eq!(
+        one,
+        outputs(&d.join("merged")),
+        "unsharded against 3 shards merged"
+    );
+    // The members file has one row per member, in member order.
+    let members = String::from_utf8(one[0].1.clone()).unwrap();
+    let ids: Vec<u64> = members
+        .lines()
+        .skip(1)
+        .map(|l| l.split(',').next().unwrap().parse().unwrap())
+        .collect();
+    assert_eq!(ids, (0..90).collect::<Vec<_>>());
+    // A different seed gives different members.
+    hadal(d, &["ensemble", "s.hadal", "--seed", "4", "--out", "other"]);
+    assert_ne!(
+        one[0].1,
+        std::fs::read(d.join("other/members.csv")).unwrap()
+    );
+}
+
+#[test]
+fn merge_refuses_incomplete_or_mismatched_shards() {
+    let t = tempfile::tempdir().unwrap();
+    let d = t.path();
+    std::fs::write(d.join("s.hadal"), STUDY).unwrap();
+    hadal(d, &["ensemble", "s.hadal", "--shard", "1/3", "--out", "a"]);
+    hadal(d, &["ensemble", "s.hadal", "--shard", "3/3", "--out", "c"]);
+    let o = Command::new(env!("CARGO_BIN_EXE_hadal"))
+        .current_dir(d)
+        .args(["merge", "a", "c", "--out", "m"])
+        .output()
+        .unwrap();
+    assert_eq!(o.status.code(), Some(1));
+    assert!(
+        String::from_utf8_lossy(&o.stderr).contains("missing"),
+        "{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+}
+
+#[test]
+fn the_accepted_region_of_a_linear_exchange_matches_its_closed_form() {
+    // One-way exchange a -> b at rate k over 1 Gyr: b(T) = b0 + a0 (1 - exp(-k T)).
+    // The target b(T) in [lo, hi] accepts exactly k in [-ln(1 - (lo - b0)/a0) / T,
+    // -ln(1 - (hi - b0)/a0) / T].
+    let t = tempfile::tempdir().unwrap();
+    let d = t.path();
+    let text = "\
+scenario linear \"one-way exchange\"
+span 1 Ga to 0 Ga
+report every 100 Myr
+param k = 1 / 1 Gyr
+reservoir a = 1e21 kg
+reservoir b = 0 kg
+flux ab: a -> b = k * a
+stage all from 1 Ga to 0 Ga
+expect b at 0 Ga in 4e20 kg to 6e20 kg
+ensemble {
+  vary k ~ grid(0.1 / 1 Gyr, 2 / 1 Gyr, 191)
+}
+";
+    std::fs::write(d.join("s.hadal"), text).unwrap();
+    hadal(d, &["ensemble", "s.hadal", "--out", "e"]);
+    let (a0, lo, hi, big_t) = (1e21f64, 4e20f64, 6e20f64, 1e9f64);
+    let k_lo = -(1.0 - lo / a0).ln() / big_t;
+    let k_hi = -(1.0 - hi / a0).ln() / big_t;
+    let members = std::fs::read_to_string(d.join("e/members.csv")).unwrap();
+    let mut accepted = 0;
+    for line in members.lines().skip(1) {
+        let cells: Vec<&str> = line.split(',').collect();
+        let k: f64 = cells[1].parse().unwrap();
+        let expected = k >= k_lo && k <= k_hi;
+        // Members within 1e-6 of the boundary could go either way.
+        if (k - k_lo).abs() / k_lo < 1e-6 || (k - k_hi).abs() / k_hi < 1e-6 {
+            continue;
+        }
+        assert_eq!(cells[cells.len() - 2] == "yes", expected, "k = {k}");
+        accepted += expected as usize;
+    }
+    // The grid step is 0.01 per Gyr; [0.511, 0.916] per Gyr holds 0.52 to 0.91: 40 points.
+    assert_eq!(accepted, 40);
+    let summary: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(d.join("e/summary.json")).unwrap()).unwrap();
+    let acc = &summary["parameters"][0]["accepted"];
+    assert!(
+        (acc["min"].as_f64().unwrap() - 0.52e-9).abs() < 1e-15,
+        "{acc}"
+    );
+    assert!(
+        (acc["max"].as_f64().unwrap() - 0.91e-9).abs() < 1e-15,
+        "{acc}"
+    );
+    assert_eq!(summary["members"], 191);
+}
+
+#[test]
+fn only_late_parameters_vary_so_early_stages_are_shared() {
+    let t = tempfile::tempdir().unwrap();
+    let p = t.path().join("s.hadal");
+    std::fs::write(
+        &p,
+        STUDY.replace("  vary k ~ log_uniform(0.1 / 1 Gyr, 2 / 1 Gyr)\n", ""),
+    )
+    .unwrap();
+    let m = hadal::check::check_file(&p, &Default::default())
+        .unwrap()
+        .model;
+    assert_eq!(hadal::ensemble::first_varying_stage(&m), 1);
+    std::fs::write(&p, STUDY).unwrap();
+    let m = hadal::check::check_file(&p, &Default::default())
+        .unwrap()
+        .model;
+    assert_eq!(hadal::ensemble::first_varying_stage(&m), 0);
+}
+
+#[test]
+fn member_values_depend_only_on_seed_member_and_name() {
+    let t = tempfile::tempdir().unwrap();
+    let p = t.path().join("s.hadal");
+    std::fs::write(&p, STUDY).unwrap();
+    let m = hadal::check::check_file(&p, &Default::default())
+        .unwrap()
+        .model;
+    let a = hadal::ensemble::member_values(&m, 3, 17).unwrap();
+    // Reordering the vary lines keeps each parameter's draw.
+    let swapped = STUDY.replace(
+        "  vary k ~ log_uniform(0.1 / 1 Gyr, 2 / 1 Gyr)\n  vary late_k ~ normal(0.1 / 1 Gyr, 0.05 / 1 Gyr), min = 0 / 1 Gyr\n",
+        "  vary late_k ~ normal(0.1 / 1 Gyr, 0.05 / 1 Gyr), min = 0 / 1 Gyr\n  vary k ~ log_uniform(0.1 / 1 Gyr, 2 / 1 Gyr)\n",
+    );
+    std::fs::write(&p, swapped).unwrap();
+    let m2 = hadal::check::check_file(&p, &Default::default())
+        .unwrap()
+        .model;
+    let b = hadal::ensemble::member_values(&m2, 3, 17).unwrap();
+    assert_eq!(a[0].to_bits(), b[1].to_bits());
+    assert_eq!(a[1].to_bits(), b[0].to_bits());
+    // log-uniform within its bounds, truncated normal above its minimum.
+    for i in 0..500 {
+        let v = hadal::ensemble::member_values(&m, 3, i).unwrap();
+        assert!((1e-10..=2e-9).contains(&v[0]), "{v:?}");
+        assert!(v[1] >= 0.0, "{v:?}");
+    }
+}
