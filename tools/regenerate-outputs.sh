@@ -10,4 +10,7 @@ for f in scenarios/*.hadal; do
     ./target/release/hadal run "$f" --no-cache >/dev/null
     echo "regenerated from $f"
 done
+# The demo ensemble (the study block of the hot-start scenario).
+./target/release/hadal ensemble scenarios/hot_start.hadal --no-cache >/dev/null
+echo "regenerated outputs/mirrowen_hot_start_ensemble"
 ./target/release/hadal verify outputs/*/manifest.json

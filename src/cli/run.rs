@@ -84,15 +84,8 @@ pub(crate) fn cmd_run(
     let dir = out
         .map(Path::to_owned)
         .unwrap_or_else(|| PathBuf::from("outputs").join(&name));
-    let mut files = vec![
-        ("series.csv", outcome.series_csv.clone()),
-        ("stages.csv", rep::stages_csv(model, &outcome.run)),
-        ("events.csv", rep::events_csv(model, &outcome.run)),
-    ];
     let expectations = rep::expectations(model, &outcome.run);
-    if !model.expects.is_empty() {
-        files.push(("expectations.csv", rep::expectations_csv(&expectations)));
-    }
+    let mut files = output_files(model, &outcome, &expectations);
     let overrides = parse_sets(sets).unwrap_or_default();
     let wall = clock.elapsed();
     if let Err(e) = std::fs::create_dir_all(&dir) {
@@ -126,6 +119,23 @@ pub(crate) fn cmd_run(
         return EXIT_INVALID;
     }
     EXIT_OK
+}
+
+/// The files a run writes beside its manifest (and that `verify` recomputes).
+pub(crate) fn output_files(
+    model: &Model,
+    outcome: &Outcome,
+    expectations: &[rep::ExpectResult],
+) -> Vec<(&'static str, Vec<u8>)> {
+    let mut files = vec![
+        ("series.csv", outcome.series_csv.clone()),
+        ("stages.csv", rep::stages_csv(model, &outcome.run)),
+        ("events.csv", rep::events_csv(model, &outcome.run)),
+    ];
+    if !model.expects.is_empty() {
+        files.push(("expectations.csv", rep::expectations_csv(expectations)));
+    }
+    files
 }
 
 fn closure_problems(model: &Model, run: &Run) -> Vec<Problem> {

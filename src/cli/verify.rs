@@ -11,11 +11,8 @@ fn outputs_of(
     model: &crate::model::Model,
     outcome: &crate::pipeline::Outcome,
 ) -> Vec<(&'static str, Vec<u8>)> {
-    vec![
-        ("series.csv", outcome.series_csv.clone()),
-        ("stages.csv", rep::stages_csv(model, &outcome.run)),
-        ("events.csv", rep::events_csv(model, &outcome.run)),
-    ]
+    let expectations = rep::expectations(model, &outcome.run);
+    super::run::output_files(model, outcome, &expectations)
 }
 
 /// Verify one manifest; returns the exit code for it.
