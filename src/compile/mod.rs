@@ -50,6 +50,16 @@ pub enum Ins {
     Fill(Reg, Reg, Reg),
     /// max(0, inventory - capacity)
     Excess(Reg, Reg, Reg),
+    // Fused pairs (see `fuse`): the same operations in the same order, one
+    // dispatch instead of two.
+    /// (a * b) * c
+    Mul3(Reg, Reg, Reg, Reg),
+    /// exp(a * b)
+    ExpMul(Reg, Reg, Reg),
+    /// a * (b - c)
+    MulSub(Reg, Reg, Reg, Reg),
+    /// (a - b) / c
+    SubDiv(Reg, Reg, Reg, Reg),
 }
 
 /// What a compiled value is, for diagnostics.
@@ -158,6 +168,77 @@ impl Program {
         self.ins.is_empty()
     }
 
+    /// Fuse pairs of instructions where the first one's result is used only
+    /// by the second. Results are bit-identical: the fused forms perform the
+    /// same IEEE operations in the same order.
+    fn fuse(&mut self) {
+        let n = self.init.len();
+        let mut uses = vec![0u32; n];
+        let mut count = |r: Reg| uses[r as usize] += 1;
+        for ins in self.ins.iter().chain(&self.setup) {
+            for r in operands(ins) {
+                count(r);
+            }
+        }
+        // Registers read from outside the instruction list count as uses.
+        let outside = self
+            .fluxes
+            .iter()
+            .map(|f| f.0)
+            .chain(self.rates.iter().map(|r| r.1));
+        let observed = self
+            .observed
+            .iter()
+            .map(|o| o.1)
+            .chain(self.extra.iter().copied());
+        for r in outside
+            .chain(observed)
+            .chain(self.param_regs.iter().map(|p| p.1))
+        {
+            uses[r as usize] += 1;
+        }
+        // Where each register is written, among the dynamic instructions.
+        let mut writer: Vec<Option<usize>> = vec![None; n];
+        for (i, ins) in self.ins.iter().enumerate() {
+            writer[dest(ins) as usize] = Some(i);
+        }
+        let mut dead = vec![false; self.ins.len()];
+        for i in 0..self.ins.len() {
+            let single = |r: Reg, dead: &[bool]| -> Option<Ins> {
+                let w = writer[r as usize]?;
+                (w < i && uses[r as usize] == 1 && !dead[w]).then(|| self.ins[w])
+            };
+            let fused = match self.ins[i] {
+                Ins::Mul(d, x, y) => match (single(x, &dead), single(y, &dead)) {
+                    (Some(Ins::Mul(_, a, b)), _) => Some((Ins::Mul3(d, a, b, y), x)),
+                    (_, Some(Ins::Mul(_, a, b))) => Some((Ins::Mul3(d, a, b, x), y)),
+                    (_, Some(Ins::Sub(_, a, b))) => Some((Ins::MulSub(d, x, a, b), y)),
+                    (Some(Ins::Sub(_, a, b)), _) => Some((Ins::MulSub(d, y, a, b), x)),
+                    _ => None,
+                },
+                Ins::Exp(d, x) => match single(x, &dead) {
+                    Some(Ins::Mul(_, a, b)) => Some((Ins::ExpMul(d, a, b), x)),
+                    _ => None,
+                },
+                Ins::Div(d, x, y) => match single(x, &dead) {
+                    Some(Ins::Sub(_, a, b)) => Some((Ins::SubDiv(d, a, b, y), x)),
+                    _ => None,
+                },
+                _ => None,
+            };
+            if let Some((ins, gone)) = fused {
+                let w = writer[gone as usize].expect("written above");
+                dead[w] = true;
+                self.ins[i] = ins;
+            }
+        }
+        let mut k = 0;
+        self.ins.retain(|_| {
+            k += 1;
+            !dead[k - 1]
+        });
+    }
+
     /// Verify every register and table index; called once per program.
     fn check_bounds(&self) {
         let n = self.init.len() as u32;
@@ -178,7 +259,11 @@ impl Program {
                 | Ins::Max(d, a, b)
                 | Ins::Decay(d, a, b)
                 | Ins::Fill(d, a, b)
-                | Ins::Excess(d, a, b) => ok(&[d, a, b, self.age_reg], &[]),
+                | Ins::Excess(d, a, b)
+                | Ins::ExpMul(d, a, b) => ok(&[d, a, b, self.age_reg], &[]),
+                Ins::Mul3(d, a, b, c) | Ins::MulSub(d, a, b, c) | Ins::SubDiv(d, a, b, c) => {
+                    ok(&[d, a, b, c], &[])
+                }
                 Ins::Square(d, a)
                 | Ins::Neg(d, a)
                 | Ins::Not(d, a)
@@ -239,6 +324,82 @@ impl Program {
     }
 }
 
+/// The registers an instruction reads.
+fn operands(ins: &Ins) -> Vec<Reg> {
+    match *ins {
+        Ins::Add(_, a, b)
+        | Ins::Sub(_, a, b)
+        | Ins::Mul(_, a, b)
+        | Ins::Div(_, a, b)
+        | Ins::Pow(_, a, b)
+        | Ins::Other(_, _, a, b)
+        | Ins::Min(_, a, b)
+        | Ins::Max(_, a, b)
+        | Ins::Decay(_, a, b)
+        | Ins::Fill(_, a, b)
+        | Ins::Excess(_, a, b)
+        | Ins::ExpMul(_, a, b) => vec![a, b],
+        Ins::Square(_, a)
+        | Ins::Neg(_, a)
+        | Ins::Not(_, a)
+        | Ins::Exp(_, a)
+        | Ins::Ln(_, a)
+        | Ins::Log10(_, a)
+        | Ins::Sqrt(_, a)
+        | Ins::Abs(_, a) => vec![a],
+        Ins::Select(_, c, a, b)
+        | Ins::Clamp(_, c, a, b)
+        | Ins::Smoothstep(_, c, a, b)
+        | Ins::Mul3(_, c, a, b)
+        | Ins::MulSub(_, c, a, b)
+        | Ins::SubDiv(_, c, a, b) => vec![c, a, b],
+        Ins::Interp(_, _, x)
+        | Ins::SeaLevel(_, _, x)
+        | Ins::LandFraction(_, _, x)
+        | Ins::BasinVolume(_, _, x) => {
+            vec![x]
+        }
+        Ins::SeaLevelIsostatic(_, _, v, a, b) => vec![v, a, b],
+    }
+}
+
+/// The register an instruction writes.
+fn dest(ins: &Ins) -> Reg {
+    match *ins {
+        Ins::Add(d, ..)
+        | Ins::Sub(d, ..)
+        | Ins::Mul(d, ..)
+        | Ins::Div(d, ..)
+        | Ins::Pow(d, ..)
+        | Ins::Square(d, ..)
+        | Ins::Other(_, d, ..)
+        | Ins::Neg(d, ..)
+        | Ins::Not(d, ..)
+        | Ins::Select(d, ..)
+        | Ins::Exp(d, ..)
+        | Ins::Ln(d, ..)
+        | Ins::Log10(d, ..)
+        | Ins::Sqrt(d, ..)
+        | Ins::Abs(d, ..)
+        | Ins::Min(d, ..)
+        | Ins::Max(d, ..)
+        | Ins::Clamp(d, ..)
+        | Ins::Smoothstep(d, ..)
+        | Ins::Decay(d, ..)
+        | Ins::Interp(d, ..)
+        | Ins::SeaLevel(d, ..)
+        | Ins::SeaLevelIsostatic(d, ..)
+        | Ins::LandFraction(d, ..)
+        | Ins::BasinVolume(d, ..)
+        | Ins::Fill(d, ..)
+        | Ins::Excess(d, ..)
+        | Ins::Mul3(d, ..)
+        | Ins::ExpMul(d, ..)
+        | Ins::MulSub(d, ..)
+        | Ins::SubDiv(d, ..) => d,
+    }
+}
+
 /// # Safety
 /// Every register index in `ins` must be below `r.len()` and every table
 /// index within `p`'s tables (see `Program::check_bounds`).
@@ -285,6 +446,10 @@ unsafe fn exec(p: &Kernels, r: &mut [f64], ins: Ins) {
         Ins::BasinVolume(d, h, z) => g!(d) = p.hyps.get_unchecked(h as usize).basin_volume(g!(z)),
         Ins::Fill(d, m, c) => g!(d) = g!(m) / g!(c),
         Ins::Excess(d, m, c) => g!(d) = (g!(m) - g!(c)).max(0.0),
+        Ins::Mul3(d, a, b, c) => g!(d) = (g!(a) * g!(b)) * g!(c),
+        Ins::ExpMul(d, a, b) => g!(d) = libm::exp(g!(a) * g!(b)),
+        Ins::MulSub(d, a, b, c) => g!(d) = g!(a) * (g!(b) - g!(c)),
+        Ins::SubDiv(d, a, b, c) => g!(d) = (g!(a) - g!(b)) / g!(c),
     }
 }
 
@@ -491,6 +656,8 @@ impl<'m> Compiler<'m> {
             kernels: std::mem::take(&mut self.kernels),
             age_knots,
         };
+        let mut program = program;
+        program.fuse();
         program.check_bounds();
         program
     }
