@@ -435,8 +435,8 @@ pub fn execute(model: &Model, store: Option<&Store>) -> Result<Outcome, Problem>
                 ),
             }
         }
-        let (run, bytes, status, why) = match cached {
-            Some((r, bytes)) => (r, bytes, Status::Reused, String::new()),
+        let (run, status, why) = match cached {
+            Some((r, _)) => (r, Status::Reused, String::new()),
             None => {
                 let r = solve::solve_stage(model, s, &state, &done)?;
                 let bytes = encode_stage(&r);
@@ -456,10 +456,12 @@ pub fn execute(model: &Model, store: Option<&Store>) -> Result<Outcome, Problem>
                 } else {
                     "the cache is off".into()
                 };
-                (r, bytes, Status::Computed, why)
+                (r, Status::Computed, why)
             }
         };
-        solved_hash.update(&bytes);
+        // A stage's fingerprint determines its payload (the engine is
+        // deterministic), so the fingerprints stand for the solved rows.
+        solved_hash.update(&key);
         trace.stages.insert(stage_name, hashes);
         for (k, e) in run.events.iter().enumerate() {
             if events[k].is_none() {
@@ -549,7 +551,7 @@ pub fn execute(model: &Model, store: Option<&Store>) -> Result<Outcome, Problem>
             let _ = std::fs::create_dir_all(dir);
         }
         if let Ok(b) = serde_json::to_vec_pretty(&trace) {
-            let _ = crate::fsutil::write_atomic(&path, &b);
+            let _ = crate::fsutil::write_atomic_unsynced(&path, &b);
         }
     }
     Ok(Outcome {
