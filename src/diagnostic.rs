@@ -73,8 +73,9 @@ impl Problem {
                 file.name.clone(),
                 file.text.as_str().to_owned(),
             ));
+            let text = file.text.as_str();
             for label in &self.labels {
-                if label.span.file == primary.file {
+                if label.span.file == primary.file && drawable(text, label.span) {
                     labels.push(LabeledSpan::new(
                         Some(label.text.clone()),
                         label.span.start as usize,
@@ -96,6 +97,10 @@ impl Problem {
                 }
             }
         }
+        if labels.is_empty() {
+            // Every label was folded into the help text: no snippet.
+            source = None;
+        }
         Rendered {
             problem: self.clone(),
             help,
@@ -111,6 +116,25 @@ impl Problem {
             (sources.get(span.file).name.clone(), line, col)
         })
     }
+}
+
+/// Longest stretch of a line, in bytes up to the end of a label, that is
+/// drawn under a source snippet. Further right, the label is given as
+/// `file:line:col` in the help text instead: an underline thousands of
+/// columns wide helps no one, and miette cannot draw one past 65535.
+pub const MAX_DRAWN_COLUMN: usize = 2000;
+
+fn drawable(text: &str, span: Span) -> bool {
+    let (start, end) = (span.start as usize, span.end as usize);
+    if start > end
+        || end > text.len()
+        || !text.is_char_boundary(start)
+        || !text.is_char_boundary(end)
+    {
+        return false;
+    }
+    let line_start = text[..start].rfind('\n').map_or(0, |i| i + 1);
+    end - line_start <= MAX_DRAWN_COLUMN
 }
 
 impl fmt::Display for Problem {
@@ -203,17 +227,24 @@ pub fn edit_distance(a: &str, b: &str) -> usize {
 /// The closest candidate to `name`, if it is close enough to be a likely typo.
 pub fn nearest<'a>(name: &str, candidates: impl IntoIterator<Item = &'a str>) -> Option<&'a str> {
     let lower = name.to_lowercase();
+    let name_len = name.chars().count();
     let mut best: Option<(usize, &str)> = None;
     for cand in candidates {
-        let d = edit_distance(&lower, &cand.to_lowercase());
         // About one edit in three characters; a one-letter name is
         // matched only up to case, since every other letter is one edit away.
-        let longest = name.chars().count().max(cand.chars().count());
+        let cand_len = cand.chars().count();
+        let longest = name_len.max(cand_len);
         let limit = if longest <= 1 {
             0
         } else {
             (longest / 3).max(1)
         };
+        // The distance is at least the difference in length: skip the
+        // quadratic comparison when that alone is too far.
+        if name_len.abs_diff(cand_len) > limit {
+            continue;
+        }
+        let d = edit_distance(&lower, &cand.to_lowercase());
         if d <= limit && best.is_none_or(|(bd, bc)| d < bd || (d == bd && cand < bc)) {
             best = Some((d, cand));
         }

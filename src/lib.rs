@@ -21,5 +21,6 @@ pub mod pipeline;
 pub mod report;
 pub mod solve;
 pub mod span;
+mod stack;
 pub mod syntax;
 pub mod units;

@@ -13,4 +13,8 @@ done
 # The demo ensemble (the study block of the hot-start scenario).
 ./target/release/hadal ensemble scenarios/hot_start.hadal --no-cache >/dev/null
 echo "regenerated outputs/mirrowen_hot_start_ensemble"
+# One-page reports (figures are drawn by run and ensemble themselves).
+for d in outputs/*/; do
+    ./target/release/hadal report "$d" >/dev/null
+done
 ./target/release/hadal verify outputs/*/manifest.json

@@ -40,13 +40,24 @@ DEG_C = 273.15
 
 # span and stages: ages in years before present
 START_AGE = 4.5e9
-STAGES = [
-    # name, start age, end age, slab_water_column (kg/m^2),
-    # regassing_efficiency_ref, early delivery flux active
-    ("early", 4.5e9, 4.0e9, 3e5, 0.35, True),  # set slab_water_column = 3e5 kg/m^2
-    ("middle", 4.0e9, 1.0e9, 5e5, 0.35, False),
-    ("late", 1.0e9, 0.0, 5e5, 0.45, False),  # set regassing_efficiency_ref = 0.45
-]
+REGASSING_EFFICIENCY_REF = 0.35
+# late stage: set regassing_efficiency_ref = late_regassing_efficiency
+LATE_REGASSING_EFFICIENCY = 0.45
+
+
+def stage_table(regassing_efficiency_ref=REGASSING_EFFICIENCY_REF):
+    """The stages, with the regassing efficiency of the early and middle
+    stages (a parameter study varies it; the late stage sets its own)."""
+    return [
+        # name, start age, end age, slab_water_column (kg/m^2),
+        # regassing_efficiency_ref, early delivery flux active
+        ("early", 4.5e9, 4.0e9, 3e5, regassing_efficiency_ref, True),  # set slab_water_column = 3e5 kg/m^2
+        ("middle", 4.0e9, 1.0e9, 5e5, regassing_efficiency_ref, False),
+        ("late", 1.0e9, 0.0, 5e5, LATE_REGASSING_EFFICIENCY, False),
+    ]
+
+
+STAGES = stage_table()
 
 # planet
 R_PLANET = 5800e3  # m
@@ -114,14 +125,17 @@ def decay(q, half_life, age):
     return q * 2.0 ** (age / half_life)
 
 
-def rhs(t, y, slab_water_column, regassing_efficiency_ref, delivery):
-    """Derivatives per year; t is years since the span start (4.5 Ga)."""
+def rhs(t, y, slab_water_column, regassing_efficiency_ref, delivery, q0=Q0, transfer_time=TRANSFER_TIME):
+    """Derivatives per year; t is years since the span start (4.5 Ga).
+
+    q0 and transfer_time default to the scenario's values; a parameter study
+    (benches/peer/peer.py) passes its members' values."""
     age = START_AGE - t
     ocean, um, tz, temp = y[OCEAN], y[UM], y[TZ], y[TEMP]
 
     radiogenic = sum(decay(q, h, age) for q, h in NUCLIDES)
     heat_loss = (
-        Q0
+        q0
         * ((temp - T_SURFACE) / (T_REF - T_SURFACE)) ** (1.0 + CONVECTION_BETA)
         * math.exp(VISCOSITY_SENSITIVITY * (temp - T_REF))
     )
@@ -143,7 +157,7 @@ def rhs(t, y, slab_water_column, regassing_efficiency_ref, delivery):
 
     regassing = TRENCH_LENGTH * plate_speed * slab_water_column * regassing_efficiency * slab_hydration
     degassing = DEGASSING_EFFICIENCY * melting_rate * um / ROCK_MASS_UM
-    transfer = um / TRANSFER_TIME * plate_speed / PLATE_SPEED_REF * max(0.0, 1.0 - fill_tz)
+    transfer = um / transfer_time * plate_speed / PLATE_SPEED_REF * max(0.0, 1.0 - fill_tz)
     tz_overflow = excess_tz / OVERFLOW_TIME
     um_overflow = excess_um / OVERFLOW_TIME
     deliv = DELIVERY_RATE0 * math.exp(-t / DELIVERY_EFOLD) if delivery else 0.0

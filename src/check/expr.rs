@@ -2,7 +2,7 @@
 
 use super::Checker;
 use crate::diagnostic::{nearest, Problem};
-use crate::model::{Builtin, DefKind, Expr, ExprKind, Model};
+use crate::model::{Builtin, DefId, DefKind, Expr, ExprKind, Model};
 use crate::span::Span;
 use crate::syntax::{self, BinOp, UnOp, UnitText};
 use crate::units::{self, Dim, UnitError};
@@ -113,14 +113,36 @@ impl Checker {
     }
 
     fn names_in_scope(&self) -> Vec<&str> {
+        if self.error_limit_reached() {
+            // The problem will not be kept; a suggestion would cost a pass
+            // over every name for nothing.
+            return Vec::new();
+        }
         let mut v: Vec<&str> = self.symbols.keys().map(String::as_str).collect();
         v.extend(["age", "time"]);
         v.sort_unstable();
         v
     }
 
-    /// Resolve names and compute the dimension of an expression.
+    /// Resolve names and compute the dimension of an expression, counting
+    /// how deep the checker is nested (through the definitions it checks on
+    /// first use) so that no input exhausts the stack.
     pub(crate) fn check_expr(&mut self, e: &syntax::Expr) -> (Expr, Typed) {
+        if self.depth >= super::MAX_DEPTH {
+            self.depth_problem(e.span);
+            let placeholder = Expr {
+                kind: ExprKind::Num(0.0),
+                span: e.span,
+            };
+            return (placeholder, Typed::error());
+        }
+        self.depth += 1;
+        let result = crate::stack::guard(|| self.check_expr_inner(e));
+        self.depth -= 1;
+        result
+    }
+
+    fn check_expr_inner(&mut self, e: &syntax::Expr) -> (Expr, Typed) {
         let span = e.span;
         let mk = |kind| Expr { kind, span };
         match &e.kind {
@@ -994,51 +1016,116 @@ fn integer_literal(e: &Expr) -> Option<i32> {
 /// Evaluate an expression that the checker found constant. `None` when it
 /// is not constant after all or reads something unavailable.
 pub fn eval_const(model: &Model, e: &Expr) -> Option<f64> {
-    eval_const_depth(model, e, 0)
+    ConstEval::new(model).eval(e)
 }
 
-fn eval_const_depth(model: &Model, e: &Expr, depth: usize) -> Option<f64> {
-    if depth > 256 {
-        return None;
+/// Constant folding that evaluates every definition once: a chain of
+/// constants that each use the one before twice would otherwise cost two to
+/// the power of its length.
+pub(crate) struct ConstEval<'m> {
+    model: &'m Model,
+    /// Per definition: not yet seen, being evaluated, or its value.
+    memo: Vec<Memo>,
+    /// Set when the depth limit cut an evaluation short; such results are
+    /// not memoized, since a shallower start might reach further.
+    cut: bool,
+}
+
+#[derive(Clone, Copy)]
+enum Memo {
+    Todo,
+    Busy,
+    Done(Option<f64>),
+}
+
+/// Deepest recursion of constant folding; definitions nest at most
+/// [`super::MAX_DEPTH`] deep in a model that checks.
+const EVAL_DEPTH: usize = super::MAX_DEPTH + 64;
+
+impl<'m> ConstEval<'m> {
+    pub(crate) fn new(model: &'m Model) -> ConstEval<'m> {
+        ConstEval {
+            model,
+            memo: vec![Memo::Todo; model.defs.len()],
+            cut: false,
+        }
     }
-    let ev = |x: &Expr| eval_const_depth(model, x, depth + 1);
-    Some(match &e.kind {
-        ExprKind::Num(v) => *v,
-        ExprKind::Ref(d) => match model.defs[*d].kind {
-            DefKind::Const | DefKind::Param | DefKind::Let => ev(&model.defs[*d].expr)?,
-            _ => return None,
-        },
-        ExprKind::Age | ExprKind::Time => return None,
-        ExprKind::Neg(x) => -ev(x)?,
-        ExprKind::Not(x) => bool_num(ev(x)? == 0.0),
-        ExprKind::Binary(op, a, b) => crate::numeric::binary(*op, ev(a)?, ev(b)?),
-        ExprKind::If(c, a, b) => {
-            if ev(c)? != 0.0 {
-                ev(a)?
-            } else {
-                ev(b)?
-            }
+
+    pub(crate) fn eval(&mut self, e: &Expr) -> Option<f64> {
+        self.eval_depth(e, 0)
+    }
+
+    fn def(&mut self, d: DefId, depth: usize) -> Option<f64> {
+        let model = self.model;
+        if !matches!(
+            model.defs[d].kind,
+            DefKind::Const | DefKind::Param | DefKind::Let
+        ) {
+            return None;
         }
-        ExprKind::Call(f, args) => {
-            let vals: Option<Vec<f64>> = args.iter().map(ev).collect();
-            let v = vals?;
-            match f {
-                Builtin::Exp => libm::exp(v[0]),
-                Builtin::Ln => libm::log(v[0]),
-                Builtin::Log10 => libm::log10(v[0]),
-                Builtin::Sqrt => libm::sqrt(v[0]),
-                Builtin::Abs => v[0].abs(),
-                Builtin::Min => v.iter().copied().fold(f64::INFINITY, f64::min),
-                Builtin::Max => v.iter().copied().fold(f64::NEG_INFINITY, f64::max),
-                Builtin::Clamp => v[0].max(v[1]).min(v[2]),
-                Builtin::Smoothstep => crate::numeric::smoothstep(v[0], v[1], v[2]),
-                Builtin::Interp(t) => {
-                    crate::numeric::interp(&model.tables[*t].xs, &model.tables[*t].ys, v[0])
+        match self.memo[d] {
+            Memo::Done(v) => return v,
+            // A cycle (already reported by the checker).
+            Memo::Busy => return None,
+            Memo::Todo => {}
+        }
+        self.memo[d] = Memo::Busy;
+        let outer_cut = std::mem::replace(&mut self.cut, false);
+        let v = self.eval_depth(&model.defs[d].expr, depth + 1);
+        self.memo[d] = if self.cut { Memo::Todo } else { Memo::Done(v) };
+        self.cut |= outer_cut;
+        v
+    }
+
+    fn eval_depth(&mut self, e: &Expr, depth: usize) -> Option<f64> {
+        if depth > EVAL_DEPTH {
+            self.cut = true;
+            return None;
+        }
+        crate::stack::guard(|| self.eval_node(e, depth))
+    }
+
+    fn eval_node(&mut self, e: &Expr, depth: usize) -> Option<f64> {
+        let mut ev = |x: &Expr| self.eval_depth(x, depth + 1);
+        Some(match &e.kind {
+            ExprKind::Num(v) => *v,
+            ExprKind::Ref(d) => return self.def(*d, depth),
+            ExprKind::Age | ExprKind::Time => return None,
+            ExprKind::Neg(x) => -ev(x)?,
+            ExprKind::Not(x) => bool_num(ev(x)? == 0.0),
+            ExprKind::Binary(op, a, b) => {
+                let a = ev(a)?;
+                crate::numeric::binary(*op, a, ev(b)?)
+            }
+            ExprKind::If(c, a, b) => {
+                if ev(c)? != 0.0 {
+                    ev(a)?
+                } else {
+                    ev(b)?
                 }
-                _ => return None,
             }
-        }
-    })
+            ExprKind::Call(f, args) => {
+                let vals: Option<Vec<f64>> = args.iter().map(&mut ev).collect();
+                let v = vals?;
+                let model = self.model;
+                match f {
+                    Builtin::Exp => libm::exp(v[0]),
+                    Builtin::Ln => libm::log(v[0]),
+                    Builtin::Log10 => libm::log10(v[0]),
+                    Builtin::Sqrt => libm::sqrt(v[0]),
+                    Builtin::Abs => v[0].abs(),
+                    Builtin::Min => v.iter().copied().fold(f64::INFINITY, f64::min),
+                    Builtin::Max => v.iter().copied().fold(f64::NEG_INFINITY, f64::max),
+                    Builtin::Clamp => v[0].max(v[1]).min(v[2]),
+                    Builtin::Smoothstep => crate::numeric::smoothstep(v[0], v[1], v[2]),
+                    Builtin::Interp(t) => {
+                        crate::numeric::interp(&model.tables[*t].xs, &model.tables[*t].ys, v[0])
+                    }
+                    _ => return None,
+                }
+            }
+        })
+    }
 }
 
 fn bool_num(b: bool) -> f64 {

@@ -17,12 +17,25 @@ use crate::syntax::{self, Entry, EntryKind, StmtKind};
 use crate::units::Dim;
 
 pub use expr::eval_const;
-pub use header::MAX_MEMBERS;
+pub use header::{MAX_MEMBERS, MAX_REPORT_ROWS};
+pub use tables::MAX_TABLE_ROWS;
 
 /// Deepest chain of includes accepted.
 pub const MAX_INCLUDE_DEPTH: usize = 16;
 /// Largest scenario or table file read, bytes.
 pub const MAX_FILE_BYTES: u64 = 16 * 1024 * 1024;
+/// Most bytes read for one scenario: the file, its includes and its tables
+/// together (a file included or a table read many times counts each time).
+pub const MAX_TOTAL_BYTES: u64 = 64 * 1024 * 1024;
+/// Most errors reported for one scenario; checking stops collecting after
+/// that many (the first ones are the ones to fix), so a huge broken file
+/// costs neither minutes of suggestions nor pages of output.
+pub const MAX_ERRORS: usize = 100;
+/// Deepest nesting of an expression through the definitions it uses: a
+/// `let` that uses a `let` that uses a `let` ... adds the depth of each
+/// formula. Later phases walk definitions recursively; the limit keeps any
+/// input from exhausting their stack.
+pub const MAX_DEPTH: usize = 1000;
 
 const PRELUDE: &str = include_str!("prelude.hadal");
 
@@ -74,6 +87,7 @@ pub fn check_text(
     options: &CheckOptions,
 ) -> Result<Checked, CheckError> {
     let mut c = Checker::new(root_dir);
+    c.bytes_read = text.len() as u64;
     let prelude = c
         .sources
         .add("<prelude>".into(), PathBuf::new(), PRELUDE.to_owned());
@@ -129,18 +143,25 @@ pub fn read_text(path: &Path) -> Result<String, String> {
 }
 
 pub(crate) fn read_limited(path: &Path) -> Result<String, String> {
+    use std::io::Read;
     let meta = std::fs::metadata(path).map_err(|e| io_words(&e))?;
     if meta.is_dir() {
         return Err("is a directory, not a file".into());
     }
+    let too_big = |n: u64| format!("is {n} bytes, more than the limit of {MAX_FILE_BYTES} bytes");
     if meta.len() > MAX_FILE_BYTES {
-        return Err(format!(
-            "is {} bytes, more than the limit of {} bytes",
-            meta.len(),
-            MAX_FILE_BYTES
-        ));
+        return Err(too_big(meta.len()));
     }
-    let bytes = std::fs::read(path).map_err(|e| io_words(&e))?;
+    // Devices and pipes report no length: read at most one byte past the
+    // limit, so an endless stream is refused rather than read forever.
+    let file = std::fs::File::open(path).map_err(|e| io_words(&e))?;
+    let mut bytes = Vec::with_capacity(meta.len() as usize);
+    file.take(MAX_FILE_BYTES + 1)
+        .read_to_end(&mut bytes)
+        .map_err(|e| io_words(&e))?;
+    if bytes.len() as u64 > MAX_FILE_BYTES {
+        return Err(format!("is more than the limit of {MAX_FILE_BYTES} bytes"));
+    }
     let mut text = String::from_utf8(bytes).map_err(|e| {
         format!(
             "is not UTF-8 text (bad byte at offset {})",
@@ -204,6 +225,14 @@ pub(crate) struct Checker {
     pub(crate) stack: Vec<DefId>,
     /// Which definitions were declared with which item.
     def_item: Vec<usize>,
+    /// Errors collected so far (at most [`MAX_ERRORS`] are kept).
+    errors: usize,
+    /// Bytes of scenario, include and table text read so far.
+    bytes_read: u64,
+    /// How deep `check_expr` is nested now, and whether passing
+    /// [`MAX_DEPTH`] was reported.
+    pub(crate) depth: usize,
+    depth_reported: bool,
 }
 
 impl Checker {
@@ -223,11 +252,209 @@ impl Checker {
             slots: Vec::new(),
             stack: Vec::new(),
             def_item: Vec::new(),
+            errors: 0,
+            bytes_read: 0,
+            depth: 0,
+            depth_reported: false,
+        }
+    }
+
+    /// The checker itself reached [`MAX_DEPTH`] (following definitions it
+    /// checks on first use): report it once, at the expression where it
+    /// stopped and with the chain of definitions that led there.
+    pub(crate) fn depth_problem(&mut self, span: Span) {
+        if self.depth_reported {
+            return;
+        }
+        self.depth_reported = true;
+        let chain = self.chain_words(&self.stack.clone());
+        self.error(
+            Problem::error(
+                "H0102",
+                format!("expressions nest more than {MAX_DEPTH} deep through the definitions they use"),
+            )
+            .label(span, "too deep here")
+            .help(format!(
+                "the chain of definitions is {chain}; compute parts of it as constants, or shorten it"
+            )),
+        );
+    }
+
+    fn chain_words(&self, ids: &[DefId]) -> String {
+        let names: Vec<&str> = ids.iter().map(|&d| self.defs[d].name.as_str()).collect();
+        if names.len() <= 8 {
+            return names.join(" -> ");
+        }
+        format!(
+            "{} -> ... ({} more) ... -> {}",
+            names[..4].join(" -> "),
+            names.len() - 8,
+            names[names.len() - 4..].join(" -> ")
+        )
+    }
+
+    /// How deep every definition nests through the definitions it uses:
+    /// compiling, folding and printing walk definitions recursively, and
+    /// the order in which the checker visited them does not bound that.
+    /// A definition deeper than [`MAX_DEPTH`] is an error (reported for the
+    /// shallowest such definition of a chain only). Also finds cycles
+    /// through capacities (`fill`, `capacity`, `excess` of a reservoir
+    /// whose capacity uses them), which checking on first use cannot see.
+    fn check_depths(&mut self) {
+        let n = self.defs.len();
+        #[derive(Clone, Copy, PartialEq)]
+        enum Mark {
+            New,
+            Open,
+            Done(usize),
+        }
+        let mut mark = vec![Mark::New; n];
+        let depth_of = |mark: &[Mark], d: DefId| match mark[d] {
+            Mark::Done(x) => x,
+            _ => 0,
+        };
+        // Iterative depth-first search: the definition graph may be
+        // arbitrarily deep, this walk keeps its own stack. An entry
+        // `(d, true)` on the stack is an open definition on the current path.
+        let mut order = Vec::with_capacity(n);
+        let mut cycle: Option<Vec<DefId>> = None;
+        for root in 0..n {
+            if mark[root] != Mark::New {
+                continue;
+            }
+            let mut stack: Vec<(DefId, bool)> = vec![(root, false)];
+            while let Some((d, expanded)) = stack.pop() {
+                if expanded {
+                    let x = body(&self.defs[d])
+                        .map_or(1, |e| expr_depth(&self.defs, e, &|r| depth_of(&mark, r)));
+                    mark[d] = Mark::Done(x);
+                    order.push(d);
+                    continue;
+                }
+                if mark[d] != Mark::New {
+                    continue;
+                }
+                mark[d] = Mark::Open;
+                stack.push((d, true));
+                let mut refs = Vec::new();
+                if let Some(e) = body(&self.defs[d]) {
+                    expr_refs(&self.defs, e, &mut refs);
+                }
+                for r in refs {
+                    match mark[r] {
+                        Mark::New if body(&self.defs[r]).is_some() => stack.push((r, false)),
+                        Mark::Open if cycle.is_none() => {
+                            let path: Vec<DefId> =
+                                stack.iter().filter(|e| e.1).map(|e| e.0).collect();
+                            let from = path.iter().position(|&p| p == r).unwrap_or(0);
+                            cycle = Some(path[from..].to_vec());
+                        }
+                        _ => {}
+                    }
+                }
+            }
+        }
+        if let Some(cycle) = cycle {
+            let mut names: Vec<String> = cycle.iter().map(|&d| self.defs[d].name.clone()).collect();
+            names.push(names[0].clone());
+            let mut p = Problem::error(
+                "H0406",
+                format!(
+                    "definitions depend on each other in a cycle: {}",
+                    names.join(" -> ")
+                ),
+            );
+            for (i, &d) in cycle.iter().enumerate() {
+                let span = body(&self.defs[d]).map_or(self.defs[d].span, |e| e.span);
+                let what = match self.defs[d].kind {
+                    DefKind::Reservoir { .. } => {
+                        format!("the capacity of `{}` uses `{}`", names[i], names[i + 1])
+                    }
+                    _ => format!("`{}` uses `{}`", names[i], names[i + 1]),
+                };
+                p = p.label(span, what);
+            }
+            self.error(p.help(
+                "a capacity may not depend on itself: `fill`, `capacity` and `excess` of a reservoir need its capacity first",
+            ));
+            return;
+        }
+        for d in order {
+            let x = depth_of(&mark, d);
+            if x <= MAX_DEPTH {
+                continue;
+            }
+            // Report where the chain first passes the limit: a definition
+            // whose own parts are all within it.
+            let mut refs = Vec::new();
+            if let Some(e) = body(&self.defs[d]) {
+                expr_refs(&self.defs, e, &mut refs);
+            }
+            if refs.iter().any(|&r| depth_of(&mark, r) > MAX_DEPTH) {
+                continue;
+            }
+            let mut chain = vec![d];
+            let mut cur = d;
+            while chain.len() < 10_000 {
+                let mut next = Vec::new();
+                if let Some(e) = body(&self.defs[cur]) {
+                    expr_refs(&self.defs, e, &mut next);
+                }
+                match next.into_iter().max_by_key(|&r| depth_of(&mark, r)) {
+                    Some(r) if depth_of(&mark, r) > 1 && !chain.contains(&r) => {
+                        chain.push(r);
+                        cur = r;
+                    }
+                    _ => break,
+                }
+            }
+            let words = self.chain_words(&chain);
+            let span = body(&self.defs[d]).map_or(self.defs[d].span, |e| e.span);
+            self.error(
+                Problem::error(
+                    "H0102",
+                    format!(
+                        "`{}` nests {x} deep through the definitions it uses; at most {MAX_DEPTH} are allowed",
+                        self.defs[d].name
+                    ),
+                )
+                .label(span, "too deep")
+                .help(format!(
+                    "the chain of definitions is {words}; compute parts of it as constants, or shorten it"
+                )),
+            );
         }
     }
 
     pub(crate) fn error(&mut self, p: Problem) {
+        if !p.warning {
+            if self.errors >= MAX_ERRORS {
+                return;
+            }
+            self.errors += 1;
+        } else if self.problems.len() >= 2 * MAX_ERRORS {
+            return;
+        }
         self.problems.push(p);
+    }
+
+    /// True once [`MAX_ERRORS`] errors are collected: callers skip work that
+    /// only improves a message no one will see (suggestions).
+    pub(crate) fn error_limit_reached(&self) -> bool {
+        self.errors >= MAX_ERRORS
+    }
+
+    /// Count `len` more bytes read for this scenario; `Err` with the reason
+    /// when that would pass [`MAX_TOTAL_BYTES`].
+    pub(crate) fn take_bytes(&mut self, len: usize) -> Result<(), String> {
+        let total = self.bytes_read.saturating_add(len as u64);
+        if total > MAX_TOTAL_BYTES {
+            return Err(format!(
+                "the scenario with its includes and tables would pass {MAX_TOTAL_BYTES} bytes read"
+            ));
+        }
+        self.bytes_read = total;
+        Ok(())
     }
 
     /// Resolve a path written in `file` (relative to that file's directory)
@@ -291,7 +518,9 @@ impl Checker {
         let parsed = match syntax::parse(&text, file) {
             Ok(f) => f,
             Err(problems) => {
-                self.problems.extend(problems);
+                for p in problems {
+                    self.error(p);
+                }
                 return;
             }
         };
@@ -421,7 +650,7 @@ impl Checker {
             );
             return;
         }
-        let text = match read_limited(&path) {
+        let text = match read_limited(&path).and_then(|t| self.take_bytes(t.len()).map(|_| t)) {
             Ok(t) => t,
             Err(why) => {
                 self.error(
@@ -455,6 +684,9 @@ impl Checker {
         }
         self.check_finite_constants();
         self.check_def_extras();
+        if self.errors == 0 {
+            self.check_depths();
+        }
         let header = self.check_header();
         let mut stages = self.check_stages(&header);
         let expects = self.check_expects();
@@ -610,7 +842,9 @@ impl Checker {
             let parsed = match syntax::parse(&text, file) {
                 Ok(p) => p,
                 Err(problems) => {
-                    self.problems.extend(problems);
+                    for p in problems {
+                        self.error(p);
+                    }
                     continue;
                 }
             };
@@ -796,6 +1030,8 @@ impl Checker {
     /// than a failed run later.
     fn check_finite_constants(&mut self) {
         let model = self.partial_model();
+        // One evaluator for all: each definition is folded once.
+        let mut folder = expr::ConstEval::new(&model);
         for (id, def) in model.defs.iter().enumerate() {
             if def.prelude || !matches!(def.kind, DefKind::Const | DefKind::Param) {
                 continue;
@@ -803,7 +1039,7 @@ impl Checker {
             if matches!(self.slots[id], Slot::Done(t) if t.ty == expr::Ty::Error) {
                 continue;
             }
-            if let Some(v) = eval_const(&model, &def.expr) {
+            if let Some(v) = folder.eval(&def.expr) {
                 if !v.is_finite() {
                     let what = if v.is_nan() {
                         "not a number (NaN)"
@@ -1060,6 +1296,76 @@ impl Checker {
             .filter(|d| matches!(d.kind, DefKind::Reservoir { .. }))
             .map(|d| d.name.clone())
             .collect()
+    }
+}
+
+/// The expression whose depth counts when a definition is used: a value's
+/// formula; a reservoir's capacity (inlined by `fill`, `capacity` and
+/// `excess`). A reference to a reservoir or a state reads a register and
+/// ends the walk.
+fn body(d: &Def) -> Option<&Expr> {
+    match &d.kind {
+        DefKind::Reservoir { capacity } => capacity.as_ref(),
+        DefKind::State { .. } | DefKind::Table(_) => None,
+        _ => Some(&d.expr),
+    }
+}
+
+fn is_register(defs: &[Def], d: DefId) -> bool {
+    matches!(
+        defs[d].kind,
+        DefKind::Reservoir { .. } | DefKind::State { .. } | DefKind::Table(_)
+    )
+}
+
+/// Nesting depth of a checked expression, a reference counting as the
+/// depth of what it refers to.
+fn expr_depth(defs: &[Def], e: &Expr, def_depth: &dyn Fn(DefId) -> usize) -> usize {
+    let sub = |x: &Expr| expr_depth(defs, x, def_depth);
+    1 + match &e.kind {
+        ExprKind::Num(_) | ExprKind::Age | ExprKind::Time => 0,
+        ExprKind::Ref(d) if is_register(defs, *d) => 0,
+        ExprKind::Ref(d) => def_depth(*d),
+        ExprKind::Neg(x) | ExprKind::Not(x) => sub(x),
+        ExprKind::Binary(_, a, b) => sub(a).max(sub(b)),
+        ExprKind::If(c, a, b) => sub(c).max(sub(a)).max(sub(b)),
+        ExprKind::Call(f, args) => {
+            let inner = match f {
+                Builtin::Capacity(r) | Builtin::Fill(r) | Builtin::Excess(r) => def_depth(*r),
+                _ => 0,
+            };
+            args.iter().map(sub).max().unwrap_or(0).max(inner)
+        }
+    }
+}
+
+/// Definitions whose expressions an expression pulls in when compiled.
+fn expr_refs(defs: &[Def], e: &Expr, out: &mut Vec<DefId>) {
+    match &e.kind {
+        ExprKind::Num(_) | ExprKind::Age | ExprKind::Time => {}
+        ExprKind::Ref(d) => {
+            if !is_register(defs, *d) {
+                out.push(*d)
+            }
+        }
+        ExprKind::Neg(x) | ExprKind::Not(x) => expr_refs(defs, x, out),
+        ExprKind::Binary(_, a, b) => {
+            expr_refs(defs, a, out);
+            expr_refs(defs, b, out);
+        }
+        ExprKind::If(c, a, b) => {
+            expr_refs(defs, c, out);
+            expr_refs(defs, a, out);
+            expr_refs(defs, b, out);
+        }
+        ExprKind::Call(f, args) => {
+            if let Builtin::Capacity(r) | Builtin::Fill(r) | Builtin::Excess(r) = f {
+                out.push(*r);
+            }
+            for a in args {
+                expr_refs(defs, a, out);
+            }
+        }
     }
 }
 

@@ -30,6 +30,7 @@ pub(crate) fn cmd_ensemble(
     threads: Option<usize>,
     keep_series: bool,
     use_cache: bool,
+    plots: bool,
 ) -> i32 {
     let clock = Instant::now();
     let shard = match shard.map(parse_shard).transpose() {
@@ -80,6 +81,12 @@ pub(crate) fn cmd_ensemble(
     };
     if let Err(e) = ensemble::write_outputs(&state, &dir) {
         return usage_error(e);
+    }
+    // A shard holds only part of the members: figures come after the merge.
+    if plots && shard.1 == 1 {
+        if let Err(e) = super::plot::write_figures(&dir, &crate::figures::RunOptions::default()) {
+            eprintln!("warning: figures not drawn: {e}");
+        }
     }
     let n = state.members();
     let wall = clock.elapsed().as_secs_f64();
@@ -133,6 +140,10 @@ pub(crate) fn cmd_merge(dirs: &[PathBuf], out: Option<&Path>) -> i32 {
     };
     match ensemble::merge_dirs(dirs, &out) {
         Ok(s) => {
+            if let Err(e) = super::plot::write_figures(&out, &crate::figures::RunOptions::default())
+            {
+                eprintln!("warning: figures not drawn: {e}");
+            }
             println!(
                 "merged {} shards into {}: {} members, {} accepted",
                 dirs.len(),

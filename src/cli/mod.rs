@@ -14,6 +14,7 @@ use crate::diagnostic::Problem;
 use crate::span::Sources;
 
 mod ensemble;
+mod plot;
 mod run;
 mod verify;
 
@@ -70,7 +71,19 @@ enum Command {
         /// Neither read nor write the stage cache
         #[arg(long)]
         no_cache: bool,
+        /// Do not draw the figures (inventories.svg, temperature.svg, sea_level.svg)
+        #[arg(long)]
+        no_plots: bool,
     },
+    /// Redraw the figures of a run or ensemble directory from its files
+    Plot {
+        dir: PathBuf,
+        /// Draw inventories in kg instead of ocean masses
+        #[arg(long)]
+        kg: bool,
+    },
+    /// Write DIR/report.html: one self-contained page with figures, tables and hashes
+    Report { dir: PathBuf },
     /// List every parameter with its value, units and the stages it influences
     Params {
         file: PathBuf,
@@ -103,6 +116,9 @@ enum Command {
         /// Neither read nor write the stage cache
         #[arg(long)]
         no_cache: bool,
+        /// Do not draw the figures
+        #[arg(long)]
+        no_plots: bool,
     },
     /// Combine shard outputs into what an unsharded ensemble writes
     Merge {
@@ -165,7 +181,10 @@ pub fn main() -> i32 {
             sets,
             json,
             no_cache,
-        } => run::cmd_run(&file, out.as_deref(), &sets, json, !no_cache),
+            no_plots,
+        } => run::cmd_run(&file, out.as_deref(), &sets, json, !no_cache, !no_plots),
+        Command::Plot { dir, kg } => plot::cmd_plot(&dir, kg),
+        Command::Report { dir } => plot::cmd_report(&dir),
         Command::Params { file, sets, json } => run::cmd_params(&file, &sets, json),
         Command::Ensemble {
             file,
@@ -176,6 +195,7 @@ pub fn main() -> i32 {
             threads,
             keep_series,
             no_cache,
+            no_plots,
         } => ensemble::cmd_ensemble(
             &file,
             members,
@@ -185,6 +205,7 @@ pub fn main() -> i32 {
             threads,
             keep_series,
             !no_cache,
+            !no_plots,
         ),
         Command::Merge { dirs, out } => ensemble::cmd_merge(&dirs, out.as_deref()),
         Command::Verify { manifests, rtol } => verify::cmd_verify(&manifests, rtol),

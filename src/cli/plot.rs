@@ -34,13 +34,8 @@ fn check_dir(dir: &Path) -> Result<(), i32> {
     Ok(())
 }
 
-/// `hadal plot DIR`, inventories in ocean masses.
-pub(crate) fn cmd_plot(dir: &Path) -> i32 {
-    cmd_plot_with(dir, false)
-}
-
-/// `hadal plot DIR [--kg]`.
-pub(crate) fn cmd_plot_with(dir: &Path, kg: bool) -> i32 {
+/// `hadal plot DIR [--kg]`: inventories in ocean masses, or in kg.
+pub(crate) fn cmd_plot(dir: &Path, kg: bool) -> i32 {
     if let Err(code) = check_dir(dir) {
         return code;
     }

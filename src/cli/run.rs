@@ -64,6 +64,7 @@ pub(crate) fn cmd_run(
     sets: &[String],
     json: bool,
     use_cache: bool,
+    plots: bool,
 ) -> i32 {
     let clock = Instant::now();
     let checked = match load(file, sets) {
@@ -104,6 +105,13 @@ pub(crate) fn cmd_run(
     files.push(("manifest.json", manifest.to_json()));
     if let Err(e) = write_outputs(&dir, &files) {
         return usage_error(e);
+    }
+    // Figures are drawn from the files just written (so `hadal plot DIR`
+    // redraws the same bytes) and are not listed in the manifest.
+    if plots {
+        if let Err(e) = super::plot::write_figures(&dir, &crate::figures::RunOptions::default()) {
+            eprintln!("warning: figures not drawn: {e}");
+        }
     }
     let closure_problems = closure_problems(model, &outcome.run);
     if json {

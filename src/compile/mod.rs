@@ -785,6 +785,12 @@ impl<'m> Compiler<'m> {
     }
 
     fn expr(&mut self, e: &Expr) -> Reg {
+        // Definitions compile on first use, so this recursion follows chains
+        // of definitions (at most `check::MAX_DEPTH` deep in a checked model).
+        crate::stack::guard(|| self.expr_inner(e))
+    }
+
+    fn expr_inner(&mut self, e: &Expr) -> Reg {
         match &e.kind {
             ExprKind::Num(v) => self.constant(*v),
             ExprKind::Ref(d) => match self.model.defs[*d].kind {

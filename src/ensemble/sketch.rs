@@ -196,12 +196,35 @@ impl Sketch {
         None
     }
 
+    /// Sparse encoding: for each store its offset, the number of non-empty
+    /// buckets, then (gap to the previous one, count) as LEB128 varints.
     pub fn write(&self, out: &mut Vec<u8>) {
+        fn varint(out: &mut Vec<u8>, mut v: u64) {
+            loop {
+                let b = (v & 0x7f) as u8;
+                v >>= 7;
+                if v == 0 {
+                    out.push(b);
+                    return;
+                }
+                out.push(b | 0x80);
+            }
+        }
         for st in [&self.pos, &self.neg] {
             out.extend_from_slice(&st.offset.to_le_bytes());
-            out.extend_from_slice(&(st.counts.len() as u32).to_le_bytes());
-            for c in &st.counts {
-                out.extend_from_slice(&c.to_le_bytes());
+            let nonzero: Vec<(usize, u32)> = st
+                .counts
+                .iter()
+                .enumerate()
+                .filter(|(_, &c)| c > 0)
+                .map(|(i, &c)| (i, c))
+                .collect();
+            varint(out, nonzero.len() as u64);
+            let mut prev = 0usize;
+            for (i, c) in nonzero {
+                varint(out, (i - prev) as u64);
+                varint(out, c as u64);
+                prev = i;
             }
         }
         out.extend_from_slice(&self.zero.to_le_bytes());
@@ -218,16 +241,34 @@ impl Sketch {
             *input = b;
             a.try_into().ok()
         }
+        fn varint(input: &mut &[u8]) -> Option<u64> {
+            let mut v = 0u64;
+            for shift in (0..64).step_by(7) {
+                let [b] = take::<1>(input)?;
+                v |= ((b & 0x7f) as u64) << shift;
+                if b & 0x80 == 0 {
+                    return Some(v);
+                }
+            }
+            None
+        }
         let mut stores = [Store::default(), Store::default()];
         for st in &mut stores {
-            st.offset = i32::from_le_bytes(take::<4>(input)?);
-            let n = u32::from_le_bytes(take::<4>(input)?) as usize;
-            if n > input.len() / 4 {
+            let offset = i32::from_le_bytes(take::<4>(input)?);
+            let n = varint(input)? as usize;
+            if n > input.len() {
                 return None;
             }
-            st.counts = (0..n)
-                .map(|_| take::<4>(input).map(u32::from_le_bytes))
-                .collect::<Option<Vec<u32>>>()?;
+            let mut at = 0usize;
+            for k in 0..n {
+                let gap = varint(input)? as usize;
+                let c = u32::try_from(varint(input)?).ok()?;
+                at = at.checked_add(gap)?;
+                if k > 0 && gap == 0 || c == 0 || at > 1 << 26 {
+                    return None;
+                }
+                st.add(offset.checked_add(i32::try_from(at).ok()?)?, c);
+            }
         }
         let zero = u64::from_le_bytes(take::<8>(input)?);
         let min = f64::from_le_bytes(take::<8>(input)?);

@@ -93,14 +93,14 @@ pub struct AgePlot {
     pub zero_line: bool,
 }
 
-/// The unit the age axis is labelled in, and its size in Ga.
+/// The unit the age axis is labelled in, and how many of it make a Ga.
 pub(crate) fn age_unit(span_ga: f64) -> (&'static str, f64) {
     if span_ga >= 0.1 {
         ("Ga", 1.0)
     } else if span_ga >= 1e-4 {
-        ("Ma", 1e-3)
+        ("Ma", 1e3)
     } else {
-        ("ka", 1e-6)
+        ("ka", 1e6)
     }
 }
 
@@ -260,8 +260,7 @@ pub fn draw(p: &AgePlot) -> Result<Vec<u8>, String> {
     } else {
         (old_ga + 1e-3, young_ga)
     };
-    let (xunit, unit_ga) = age_unit(old_ga - young_ga);
-    let xf = 1.0 / unit_ga;
+    let (xunit, xf) = age_unit(old_ga - young_ga);
 
     // Value axis: pad by 4 %, start at zero if asked, factor out a power of ten.
     if p.from_zero && vlo >= 0.0 {
@@ -495,8 +494,16 @@ pub fn draw(p: &AgePlot) -> Result<Vec<u8>, String> {
             TextSpec::new(AXIS_PX, Anchor::Middle, Baseline::Center).vertical(),
         )?;
         if !p.title.is_empty() {
+            // Bold text runs about a tenth wider than the estimate.
+            let room = WIDTH - MARGIN - left;
+            let mut title = p.title.clone();
+            let mut keep = title.chars().count();
+            while keep > 8 && 1.1 * text_width(&title, TITLE_PX) > room {
+                keep -= 1;
+                title = shorten(&p.title, keep);
+            }
             c.text(
-                &p.title,
+                &title,
                 (left, MARGIN),
                 TextSpec::new(TITLE_PX, Anchor::Start, Baseline::Top).bold(),
             )?;

@@ -156,14 +156,14 @@ pub fn convert(v: f64, from: &str, to: &str) -> Option<f64> {
 /// Ages in Ga from a column in any age unit (Ga, Ma, ka, yr).
 fn ages_in_ga(col: &Column) -> Result<Vec<f64>, String> {
     let unit = if col.unit.is_empty() { "Ga" } else { &col.unit };
-    let f = match unit {
+    let per_ga = match unit {
         "Ga" => 1.0,
-        "Ma" => 1e-3,
-        "ka" => 1e-6,
-        "yr" | "a" => 1e-9,
+        "Ma" => 1e3,
+        "ka" => 1e6,
+        "yr" | "a" => 1e9,
         other => return Err(format!("the age column is in `{other}`, not an age unit")),
     };
-    Ok(col.values.iter().map(|v| v * f).collect())
+    Ok(col.values.iter().map(|v| v / per_ga).collect())
 }
 
 /// One stage of a run: its name and span.
@@ -242,11 +242,13 @@ impl RunData {
     }
 }
 
-fn age_factor(header: &str) -> f64 {
+/// How many of a header's age unit make a Ga (ages are divided by it, so
+/// 20 ka is exactly the double nearest 2e-5 Ga).
+fn per_ga(header: &str) -> f64 {
     match split_header(header).1.as_str() {
-        "Ma" => 1e-3,
-        "ka" => 1e-6,
-        "yr" => 1e-9,
+        "Ma" => 1e3,
+        "ka" => 1e6,
+        "yr" => 1e9,
         _ => 1.0,
     }
 }
@@ -263,11 +265,11 @@ fn read_stages(t: &TextTable) -> Vec<StageSpan> {
     let (Some(from), Some(to)) = (t.find("from"), t.find("to")) else {
         return Vec::new();
     };
-    let (ff, ft) = (age_factor(&t.header[from]), age_factor(&t.header[to]));
+    let (ff, ft) = (per_ga(&t.header[from]), per_ga(&t.header[to]));
     (0..t.rows.len())
         .filter_map(|i| {
-            let a = parse_num(t.cell(i, from)) * ff;
-            let b = parse_num(t.cell(i, to)) * ft;
+            let a = parse_num(t.cell(i, from)) / ff;
+            let b = parse_num(t.cell(i, to)) / ft;
             (a.is_finite() && b.is_finite()).then(|| StageSpan {
                 name: t.cell(i, name).to_owned(),
                 from_ga: a,
@@ -285,10 +287,10 @@ fn read_events(t: &TextTable) -> Vec<EventAge> {
         .iter()
         .position(|h| split_header(h).0.contains("age"))
         .unwrap_or(1);
-    let f = t.header.get(age).map_or(1.0, |h| age_factor(h));
+    let f = t.header.get(age).map_or(1.0, |h| per_ga(h));
     (0..t.rows.len())
         .map(|i| {
-            let a = parse_num(t.cell(i, age)) * f;
+            let a = parse_num(t.cell(i, age)) / f;
             EventAge {
                 name: t.cell(i, name).to_owned(),
                 age_ga: a.is_finite().then_some(a),
@@ -353,7 +355,7 @@ pub fn parse_quantiles(t: &TextTable) -> Result<Vec<VariableQuantiles>, String> 
         .iter()
         .position(|h| split_header(h).0.eq_ignore_ascii_case("age"))
         .ok_or("quantiles.csv has no `age` column")?;
-    let af = age_factor(&t.header[age]);
+    let af = per_ga(&t.header[age]);
     let var = t
         .find("variable")
         .ok_or("quantiles.csv has no `variable` column")?;
@@ -379,7 +381,7 @@ pub fn parse_quantiles(t: &TextTable) -> Result<Vec<VariableQuantiles>, String> 
             // The unit may sit in the quantile column headers instead.
             unit = split_header(&t.header[qcols[0].0]).1;
         }
-        let a = parse_num(t.cell(i, age)) * af;
+        let a = parse_num(t.cell(i, age)) / af;
         if !a.is_finite() {
             continue;
         }

@@ -119,8 +119,8 @@ pub fn parse_constraint(text: &str) -> Option<ConstraintMark> {
     let (age, age_unit, n) = quantity(&t[2..])?;
     let age_ga = match age_unit.as_str() {
         "Ga" => age,
-        "Ma" => age * 1e-3,
-        "ka" => age * 1e-6,
+        "Ma" => age / 1e3,
+        "ka" => age / 1e6,
         _ => return None,
     };
     let rest = &t[2 + n..];
@@ -565,7 +565,7 @@ pub fn scatter_matrix(m: &Members) -> Result<Option<Vec<u8>>, String> {
         .map(|(_, l)| 20.0 + text_width(l, LEGEND_PX) + 24.0)
         .sum();
     let width = (left + size + 16.0)
-        .max(left + text_width(&title, TITLE_PX) + 16.0)
+        .max(left + 1.2 * text_width(&title, TITLE_PX) + 16.0)
         .max(12.0 + legend_w + 12.0)
         .max(12.0 + text_width(note, LEGEND_PX) + 12.0);
     let height = legend_y + 2.0 * 24.0 + 12.0;
@@ -625,10 +625,11 @@ pub fn scatter_matrix(m: &Members) -> Result<Option<Vec<u8>>, String> {
                             TextSpec::new(STAGE_PX, Anchor::Middle, Baseline::Top),
                         )?;
                     }
+                    let (name, px) = fit(cj, panel - 14.0);
                     c.text(
-                        &axis_name(cj),
+                        &name,
                         ((x0 + x1) / 2.0, y1 + 8.0 + STAGE_PX + 6.0),
-                        TextSpec::new(AXIS_PX, Anchor::Middle, Baseline::Top),
+                        TextSpec::new(px, Anchor::Middle, Baseline::Top),
                     )?;
                 }
                 if j == 0 {
@@ -641,10 +642,11 @@ pub fn scatter_matrix(m: &Members) -> Result<Option<Vec<u8>>, String> {
                             TextSpec::new(STAGE_PX, Anchor::End, Baseline::Center),
                         )?;
                     }
+                    let (name, px) = fit(ci, panel - 14.0);
                     c.text(
-                        &axis_name(ci),
+                        &name,
                         (12.0 + AXIS_PX / 2.0, (y0 + y1) / 2.0),
-                        TextSpec::new(AXIS_PX, Anchor::Middle, Baseline::Center).vertical(),
+                        TextSpec::new(px, Anchor::Middle, Baseline::Center).vertical(),
                     )?;
                 }
             }
@@ -675,12 +677,28 @@ pub fn scatter_matrix(m: &Members) -> Result<Option<Vec<u8>>, String> {
     Ok(Some(svg))
 }
 
-fn axis_name(c: &super::data::Column) -> String {
-    if c.unit.is_empty() {
-        c.name.clone()
+/// A panel label, `name [unit]`, that fits `room` px: at the axis size if
+/// it fits, else at the small size, else with the name cut short (the unit
+/// is always kept).
+fn fit(c: &super::data::Column, room: f64) -> (String, f64) {
+    let unit = if c.unit.is_empty() {
+        String::new()
     } else {
-        format!("{} [{}]", c.name, pretty_unit(&c.unit))
+        format!(" [{}]", pretty_unit(&c.unit))
+    };
+    let full = format!("{}{unit}", c.name);
+    if text_width(&full, AXIS_PX) <= room {
+        return (full, AXIS_PX);
     }
+    let mut name: Vec<char> = c.name.chars().collect();
+    let label = |n: &[char]| format!("{}{unit}", n.iter().collect::<String>());
+    while name.len() > 3 && text_width(&label(&name), STAGE_PX) > room {
+        name.pop();
+        if let Some(last) = name.last_mut() {
+            *last = '…';
+        }
+    }
+    (label(&name), STAGE_PX)
 }
 
 const BINS: usize = 16;
@@ -708,9 +726,9 @@ fn histogram(
     let top = all.iter().copied().max().unwrap_or(0).max(1) as f64;
     let w = (x1 - x0) / BINS as f64;
     let h = (y1 - y0) * 0.9;
-    for b in 0..BINS {
+    for (b, &count) in acc.iter().enumerate() {
         let bx = x0 + b as f64 * w;
-        let ha = acc[b] as f64 / top * h;
+        let ha = count as f64 / top * h;
         c.rect_fill(bx + 0.5, y1 - ha, bx + w - 0.5, y1, ACC_90.mix(0.9))?;
     }
     // Outline of all members.

@@ -28,7 +28,7 @@ th,td{border:1px solid #d4d4d4;padding:.25rem .55rem;text-align:left;vertical-al
 th{background:#f1f1f1}td.n{text-align:right;font-variant-numeric:tabular-nums}\
 code,pre,.h{font-family:ui-monospace,'SFMono-Regular',Menlo,Consolas,monospace;font-size:.88rem}\
 pre{background:#f5f5f5;border:1px solid #ddd;padding:.6rem .8rem;overflow-x:auto}\
-.h{word-break:break-all}\
+.h{word-break:break-all}.t{overflow-x:auto}h3{font-size:1rem;margin-bottom:.2rem}\
 .pass{color:#0b6e4f;font-weight:600}.fail{color:#b3400a;font-weight:600}\
 figure{margin:1rem 0 1.6rem}figure svg{max-width:100%;height:auto;display:block}\
 figcaption{color:#555;font-size:.88rem}\
@@ -85,7 +85,7 @@ fn pass_cell(s: &str) -> Option<String> {
 /// A CSV table as an HTML table; columns named `pass`/`accepted` show
 /// pass and fail.
 fn table_html(t: &TextTable, out: &mut String) {
-    out.push_str("<table><thead><tr>");
+    out.push_str("<div class=\"t\"><table><thead><tr>");
     for h in &t.header {
         let (name, unit) = split_header(h);
         if unit.is_empty() {
@@ -126,7 +126,7 @@ fn table_html(t: &TextTable, out: &mut String) {
         }
         out.push_str("</tr>\n");
     }
-    out.push_str("</tbody></table>\n");
+    out.push_str("</tbody></table></div>\n");
 }
 
 fn json_scalar(v: &serde_json::Value) -> String {
@@ -202,7 +202,7 @@ fn files_table(list: &serde_json::Value, out: &mut String) {
         return;
     };
     out.push_str(
-        "<table><thead><tr><th>file</th><th>bytes</th><th>blake3</th></tr></thead><tbody>\n",
+        "<div class=\"t\"><table><thead><tr><th>file</th><th>bytes</th><th>blake3</th></tr></thead><tbody>\n",
     );
     for f in items {
         let path = f.get("path").and_then(|p| p.as_str()).unwrap_or("");
@@ -220,7 +220,36 @@ fn files_table(list: &serde_json::Value, out: &mut String) {
             escape(hash)
         );
     }
-    out.push_str("</tbody></table>\n");
+    out.push_str("</tbody></table></div>\n");
+}
+
+/// Per-stage solver settings, stage first, in a fixed column order.
+fn solver_table(stages: &[serde_json::Value], out: &mut String) {
+    const KEYS: [(&str, &str); 8] = [
+        ("stage", "stage"),
+        ("method", "method"),
+        ("rtol", "rtol"),
+        ("atol", "atol"),
+        ("max_step_yr", "max step [yr]"),
+        ("initial_step_yr", "initial step [yr]"),
+        ("max_steps", "max steps"),
+        ("budget_tolerance", "budget tolerance"),
+    ];
+    out.push_str("<div class=\"t\"><table><thead><tr>");
+    for (_, head) in KEYS {
+        let _ = write!(out, "<th>{head}</th>");
+    }
+    out.push_str("</tr></thead><tbody>\n");
+    for st in stages {
+        out.push_str("<tr>");
+        for (key, _) in KEYS {
+            let v = st.get(key).unwrap_or(&serde_json::Value::Null);
+            let class = if v.is_number() { " class=\"n\"" } else { "" };
+            let _ = write!(out, "<td{class}>{}</td>", json_scalar(v));
+        }
+        out.push_str("</tr>\n");
+    }
+    out.push_str("</tbody></table></div>\n");
 }
 
 fn manifest_section(m: &serde_json::Value, out: &mut String) {
@@ -284,9 +313,9 @@ fn manifest_section(m: &serde_json::Value, out: &mut String) {
         out.push_str("<h3>Outputs</h3>\n");
         files_table(outputs, out);
     }
-    if let Some(solver) = c.and_then(|c| c.get("solver")) {
+    if let Some(solver) = c.and_then(|c| c.get("solver")).and_then(|s| s.as_array()) {
         out.push_str("<h3>Solver settings</h3>\n");
-        json_html(solver, 1, out);
+        solver_table(solver, out);
     }
     out.push_str("</section>\n");
 }
@@ -528,6 +557,18 @@ pub fn report(dir: &Path) -> Result<String, String> {
             out,
             "<p>{where_} the scenario from scratch and compare every output with its recorded hash:</p>\n<pre><code>hadal verify {}</code></pre>",
             escape(&target)
+        );
+    } else if let (DirKind::Ensemble, Some(seed), Some(n)) = (
+        kind,
+        summary.as_ref().and_then(|s| s.get("seed")),
+        summary.as_ref().and_then(|s| s.get("members")),
+    ) {
+        let _ = writeln!(
+            out,
+            "<p>Rerunning <code>hadal ensemble</code> on scenario <code>{}</code> with <code>--seed {} --members {}</code> reproduces <code>members.csv</code>, <code>quantiles.csv</code> and <code>summary.json</code> byte for byte, on any number of threads or shards.</p>",
+            escape(&name),
+            json_scalar(seed),
+            json_scalar(n)
         );
     } else {
         out.push_str(

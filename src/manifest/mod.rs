@@ -133,14 +133,27 @@ pub fn canonical_hash(model: &Model) -> String {
         );
     }
     for e in &model.expects {
-        h.update(
-            format!(
-                "expect {} {:?}\n",
-                model.canonical_expr(&e.subject),
-                e.check
-            )
-            .as_bytes(),
-        );
+        // Canonical expressions, not `Debug` of them: that would hold byte
+        // offsets, and reformatting the file would change the hash.
+        use crate::model::ExpectCheck;
+        let c = |x: &crate::model::Expr| model.canonical_expr(x);
+        let check = match &e.check {
+            ExpectCheck::Target { age, value, sigma } => {
+                format!("at {age} = {} +- {}", c(value), c(sigma))
+            }
+            ExpectCheck::Range { age, low, high } => {
+                format!("at {age} in {} to {}", c(low), c(high))
+            }
+            ExpectCheck::Bound { age, op, value } => {
+                format!("at {age} {} {}", op.symbol(), c(value))
+            }
+            ExpectCheck::Event { event, before, age } => format!(
+                "{} {} {age}",
+                model.defs[*event].name,
+                if *before { "before" } else { "after" }
+            ),
+        };
+        h.update(format!("expect {} {check}\n", model.canonical_expr(&e.subject)).as_bytes());
     }
     h.finalize().to_hex().to_string()
 }

@@ -102,12 +102,36 @@ fn detailed_error(text: &str, plain: pest::error::Error<Rule>) -> pest::error::E
     result.err().unwrap_or(plain)
 }
 
-/// Reject pathologically deep brackets before the recursive-descent parser
-/// sees them.
+/// Reject pathologically deep brackets, and lines with more `if`s than
+/// brackets may nest (each `if` nests its branches), before the
+/// recursive-descent parser sees them. Comments and strings are skipped.
 fn nesting_problem(text: &str, file: u32) -> Option<Problem> {
     let mut depth = 0usize;
+    let mut ifs = 0usize;
+    let mut in_string = false;
+    let mut in_comment = false;
+    let mut escaped = false;
+    let bytes = text.as_bytes();
     for (i, c) in text.char_indices() {
+        if c == '\n' {
+            (depth, ifs, in_string, in_comment, escaped) = (0, 0, false, false, false);
+            continue;
+        }
+        if in_comment {
+            continue;
+        }
+        if in_string {
+            match c {
+                _ if escaped => escaped = false,
+                '\\' => escaped = true,
+                '"' => in_string = false,
+                _ => {}
+            }
+            continue;
+        }
         match c {
+            '#' => in_comment = true,
+            '"' => in_string = true,
             '(' => {
                 depth += 1;
                 if depth > MAX_NESTING {
@@ -122,11 +146,30 @@ fn nesting_problem(text: &str, file: u32) -> Option<Problem> {
                 }
             }
             ')' => depth = depth.saturating_sub(1),
-            '\n' => depth = 0,
+            'i' if text[i..].starts_with("if")
+                && (i == 0 || !is_word_byte(bytes[i - 1]))
+                && bytes.get(i + 2).is_none_or(|&b| !is_word_byte(b)) =>
+            {
+                ifs += 1;
+                if ifs > MAX_NESTING {
+                    return Some(
+                        Problem::error(
+                            "H0102",
+                            format!("more than {MAX_NESTING} `if`s in one statement"),
+                        )
+                        .label(Span::new(file, i, i + 2), "too deep here")
+                        .help("split the expression into `let` definitions"),
+                    );
+                }
+            }
             _ => {}
         }
     }
     None
+}
+
+fn is_word_byte(b: u8) -> bool {
+    b.is_ascii_alphanumeric() || b == b'_'
 }
 
 /// Punctuation that separates the parts of a statement, in plain words.

@@ -214,6 +214,17 @@ fn copy_dir(from: &Path, to: &Path) {
     }
 }
 
+/// The files every case can read: a `.git` (so `root` is the project
+/// root), the demo's shared files and the diagnostics cases' data.
+pub fn populate(root: &Path) {
+    std::fs::create_dir_all(root.join(".git")).expect("workspace");
+    let src = manifest_dir();
+    copy_dir(&src.join("scenarios/shared"), &root.join("shared"));
+    for sub in ["data", "lib", "cycle", "deep"] {
+        copy_dir(&src.join("tests/diagnostics").join(sub), &root.join(sub));
+    }
+}
+
 impl Workspace {
     pub fn new() -> Workspace {
         // A RAM disk when there is one: a case writes up to three files.
@@ -230,12 +241,7 @@ impl Workspace {
         }
         .expect("a temporary directory");
         let root = dir.path().join("project");
-        std::fs::create_dir_all(root.join(".git")).expect("workspace");
-        let src = manifest_dir();
-        copy_dir(&src.join("scenarios/shared"), &root.join("shared"));
-        for sub in ["data", "lib", "cycle", "deep"] {
-            copy_dir(&src.join("tests/diagnostics").join(sub), &root.join(sub));
-        }
+        populate(&root);
         let outside = dir.path().join("outside");
         let _ = std::fs::create_dir_all(&outside);
         let _ = std::fs::write(outside.join("secret.csv"), "x,y\n0,1\n1,2\n");
@@ -279,8 +285,11 @@ pub struct Case {
 
 impl Case {
     /// Save the case's files into `dir` (created).
+    /// The directory is a project of its own (`hadal check DIR/s.hadal`
+    /// reads the same files as the case did).
     pub fn save(&self, dir: &Path) -> std::io::Result<()> {
         std::fs::create_dir_all(dir)?;
+        populate(dir);
         std::fs::write(dir.join("s.hadal"), &self.scenario)?;
         std::fs::write(dir.join("inc.hadal"), &self.include)?;
         std::fs::write(dir.join("t.csv"), &self.table)?;
@@ -1034,7 +1043,7 @@ fn mutate_text(rng: &mut Rng, text: &mut String, corpus: &Corpus) {
         // Many lines: a block repeated, or many definitions with errors.
         25 => {
             let times = *rng.pick(&[10usize, 100, 1000, 5000]);
-            match rng.below(3) {
+            match rng.below(7) {
                 0 if !lines.is_empty() => {
                     let a = rng.below(lines.len());
                     let b = (a + 1 + rng.below(5)).min(lines.len());
@@ -1049,11 +1058,64 @@ fn mutate_text(rng: &mut Rng, text: &mut String, corpus: &Corpus) {
                     }
                     s
                 }
-                _ => {
+                2 => {
                     let mut s = text.clone();
                     s.push('\n');
                     for k in 0..times {
                         s.push_str(&format!("let v{k} = v{} * 2\n", k + 1));
+                    }
+                    s
+                }
+                3 => {
+                    // Each constant uses the one before twice.
+                    let mut s = text.clone();
+                    s.push_str("\nconst w0 = 1\n");
+                    for k in 1..times.min(300) {
+                        s.push_str(&format!("const w{k} = w{} + w{}\n", k - 1, k - 1));
+                    }
+                    s
+                }
+                4 => {
+                    // A chain in dependency order, or closing into a cycle.
+                    let mut s = text.clone();
+                    s.push_str(&format!("\nconst z{times} = 1\n"));
+                    for k in (0..times).rev() {
+                        s.push_str(&format!("let z{k} = z{} + 1\n", k + 1));
+                    }
+                    if rng.one_in(2) {
+                        s.push_str(&format!("let z{} = z0\n", times + 1));
+                    }
+                    s
+                }
+                5 => {
+                    // Capacities that use fill, capacity or excess of
+                    // reservoirs, possibly their own.
+                    let mut s = text.clone();
+                    s.push('\n');
+                    let n = 1 + rng.below(4);
+                    for k in 0..n {
+                        let other = rng.below(n);
+                        let f = rng.pick(&["fill", "capacity", "excess"]);
+                        let cap = if *f == "fill" {
+                            format!("1e21 kg * (1 - {f}(cr{other}))")
+                        } else {
+                            format!("{f}(cr{other}) + 1 kg")
+                        };
+                        s.push_str(&format!("reservoir cr{k} = 1e19 kg, capacity = {cap}\n"));
+                    }
+                    s.push_str("flux crf: cr0 -> outside = excess(cr0) / 1 Myr\n");
+                    s
+                }
+                _ => {
+                    // The same file included, or the same table read, many times.
+                    let mut s = text.clone();
+                    s.push('\n');
+                    for k in 0..times.min(200) {
+                        if rng.one_in(2) {
+                            s.push_str("include \"inc.hadal\"\n");
+                        } else {
+                            s.push_str(&format!("table tt{k} = \"t.csv\" (Ma, K)\n"));
+                        }
                     }
                     s
                 }
@@ -1340,6 +1402,52 @@ fn single_source(name: &str, text: &str) -> Sources {
     s
 }
 
+/// The first difference between two models' canonical forms, in words.
+fn model_difference(a: &hadal::model::Model, b: &hadal::model::Model) -> String {
+    let canon = |m: &hadal::model::Model| -> Vec<String> {
+        let mut v: Vec<String> = (0..m.defs.len())
+            .filter(|&i| !m.defs[i].prelude)
+            .map(|i| m.canonical_def(i))
+            .collect();
+        v.sort();
+        v
+    };
+    let (ca, cb) = (canon(a), canon(b));
+    for (x, y) in ca.iter().zip(&cb) {
+        if x != y {
+            let cut = |s: &str| s.chars().take(300).collect::<String>();
+            return format!("`{}` became `{}`", cut(x), cut(y));
+        }
+    }
+    if ca.len() != cb.len() {
+        return format!("{} definitions became {}", ca.len(), cb.len());
+    }
+    if (a.start_age, a.end_age, a.cadence) != (b.start_age, b.end_age, b.cadence) {
+        return "the span or cadence changed".into();
+    }
+    if format!("{:?}", a.solver) != format!("{:?}", b.solver) {
+        return format!("solver {:?} became {:?}", a.solver, b.solver);
+    }
+    for (x, y) in a.stages.iter().zip(&b.stages) {
+        let sx = format!("{} {} {} {:?}", x.name, x.start_age, x.end_age, x.solver);
+        let sy = format!("{} {} {} {:?}", y.name, y.start_age, y.end_age, y.solver);
+        if sx != sy {
+            return format!("stage `{sx}` became `{sy}`");
+        }
+    }
+    for (x, y) in a.expects.iter().zip(&b.expects) {
+        let ex = format!("{} {:?}", a.canonical_expr(&x.subject), x.check);
+        let ey = format!("{} {:?}", b.canonical_expr(&y.subject), y.check);
+        if ex != ey {
+            return format!("expectation `{ex}` became `{ey}`");
+        }
+    }
+    if a.expects.len() != b.expects.len() || a.stages.len() != b.stages.len() {
+        return "the number of stages or expectations changed".into();
+    }
+    "the stage parameter settings changed".into()
+}
+
 /// Run every check on one case. `Err` is a property violation (panics are
 /// caught by the caller).
 pub fn run_case(ws: &Workspace, case: &Case, solve: bool) -> Result<Reached, String> {
@@ -1416,7 +1524,10 @@ pub fn run_case(ws: &Workspace, case: &Case, solve: bool) -> Result<Reached, Str
                     let a = hadal::manifest::canonical_hash(&checked.model);
                     let b = hadal::manifest::canonical_hash(&again.model);
                     if a != b {
-                        return Err("formatting changed the checked model".into());
+                        return Err(format!(
+                            "formatting changed the checked model: {}",
+                            model_difference(&checked.model, &again.model)
+                        ));
                     }
                 }
                 Err(CheckError::Invalid { problems, .. }) => {

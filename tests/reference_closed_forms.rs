@@ -1,4 +1,5 @@
-//! The solver against closed-form solutions, each written as a scenario.
+//! The solver against closed-form solutions, each written as a scenario (the
+//! closed-form part of the reference suite, formerly solver_closed_forms.rs).
 //! Sources: textbook solutions of linear ODEs (two-box exchange, exponential
 //! decay), the logistic equation (Verhulst), and Airy isostasy
 //! (Turcotte & Schubert, Geodynamics, isostasy chapter).
