@@ -42,7 +42,7 @@ fn prelude_lambda(nuclide: &str) -> f64 {
 fn u238_half_life_reproduces_the_iugs_decay_constant() {
     // Steiger & Jaeger 1977, EPSL 36: 1.55125e-10 per yr. Prelude 4.468 Gyr,
     // written to 4 digits: rounding at most 0.0005 / 4.468 = 1.1e-4.
-    // Measured 6.8e-5.
+    // Measured 7.0e-5.
     let l = prelude_lambda("u238");
     assert!(
         rel(l, LAMBDA_U238) < 0.0005 / 4.468,
@@ -66,7 +66,7 @@ fn u235_half_life_reproduces_the_iugs_decay_constant() {
 #[test]
 fn th232_half_life_reproduces_the_iugs_decay_constant() {
     // Steiger & Jaeger 1977, EPSL 36: 4.9475e-11 per yr. Prelude 14.01 Gyr:
-    // rounding at most 0.005 / 14.01 = 3.6e-4. Measured 2e-6.
+    // rounding at most 0.005 / 14.01 = 3.6e-4. Measured 3.5e-6.
     let l = prelude_lambda("th232");
     assert!(
         rel(l, LAMBDA_TH232) < 0.005 / 14.01,
@@ -79,11 +79,12 @@ fn th232_half_life_reproduces_the_iugs_decay_constant() {
 fn k40_half_life_reproduces_the_iugs_decay_constant() {
     // Steiger & Jaeger 1977, EPSL 36: 5.543e-10 per yr (total, beta plus
     // electron capture), whose half-life is ln 2 / 5.543e-10 = 1.2505 Gyr.
-    // Prelude 1.248 Gyr: rounding would allow 0.0005 / 1.248 = 4.0e-4.
+    // Prelude 1.2505 Gyr: rounding would allow 0.00005 / 1.2505 = 4.0e-5.
+    // (The often-quoted 1.248 Gyr is a later measurement, 2e-3 away.)
     let l = prelude_lambda("k40");
     assert!(
-        rel(l, LAMBDA_K40) < 0.0005 / 1.248,
-        "half_life_k40 = 1.248 Gyr gives ln 2 / t = {l:e} per yr, {:.2e} from the \
+        rel(l, LAMBDA_K40) < 0.00005 / 1.2505,
+        "half_life_k40 gives ln 2 / t = {l:e} per yr, {:.2e} from the \
          IUGS 5.543e-10 per yr (Steiger & Jaeger 1977, EPSL 36) that the prelude \
          cites; that constant's half-life is {:.4} Gyr",
         rel(l, LAMBDA_K40),
@@ -181,9 +182,9 @@ fn heat_production_ratio_4_5_ga_to_today_matches_the_closed_form() {
         );
     }
     // The prelude's half-lives through the same built-in: the closed form
-    // q 2^(t / t_half) with 4.468, 0.7038, 14.01 and 1.248 Gyr.
+    // q 2^(t / t_half) with 4.468, 0.7038, 14.01 and 1.2505 Gyr.
     let prelude = r.at("heat_prelude_ratio", 4.5);
-    let halves = [4.468e9, 0.7038e9, 14.01e9, 1.248e9];
+    let halves = [4.468e9, 0.7038e9, 14.01e9, 1.2505e9];
     let total: f64 = PRESENT_TW.iter().map(|(_, q, _)| q).sum();
     let want: f64 = PRESENT_TW
         .iter()

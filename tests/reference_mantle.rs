@@ -126,7 +126,7 @@ fn the_transition_zone_is_about_7_percent_of_the_planet_and_holds_several_oceans
     let (top, bottom) = (6371.0e3_f64 - 410e3, 6371.0e3_f64 - 660e3);
     let volume = 4.0 / 3.0 * pi * (top.powi(3) - bottom.powi(3));
     // Derived from Dziewonski & Anderson 1981 (reference model): a shell of
-    // about 1.07e20 m^3. Measured 1.0703e20 m^3; "about" to the written
+    // about 1.07e20 m^3. Measured 1.0702e20 m^3; "about" to the written
     // digit: 1 %.
     let v = r.at("tz_volume_out", 0.0);
     assert!(rel(v, volume) < 1e-12, "{v:e} vs {volume:e}");

@@ -76,7 +76,7 @@ NUCLIDES = [
     (7.2e12, 4.468e9),  # U-238
     (0.32e12, 0.7038e9),  # U-235
     (7.6e12, 14.01e9),  # Th-232
-    (2.5e12, 1.248e9),  # K-40
+    (2.5e12, 1.2505e9),  # K-40
 ]
 Q0 = 24e12  # W, convective heat loss at T_REF
 CONVECTION_BETA = 0.3

@@ -179,7 +179,7 @@ impl Constants {
                 (7.2 * TW, 4.468 * GYR),
                 (0.32 * TW, 0.7038 * GYR),
                 (7.6 * TW, 14.01 * GYR),
-                (2.5 * TW, 1.248 * GYR),
+                (2.5 * TW, 1.2505 * GYR),
             ],
             q0: 24.0 * TW,
             convection_exponent: 1.0 + 0.3,

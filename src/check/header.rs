@@ -569,13 +569,21 @@ impl Checker {
                 });
                 continue;
             }
-            let written_unit = |e: &syntax::Expr| match &e.kind {
-                syntax::ExprKind::Quantity { unit: Some(u), .. } => {
-                    crate::units::combine(u.factors.iter().map(|f| (f.name.as_str(), f.power)))
-                        .ok()
-                        .map(|unit| (u.text.clone(), unit))
+            let written_unit = |mut e: &syntax::Expr| {
+                // See through a sign and parentheses: `-135 m`, `(2 K)`.
+                while let syntax::ExprKind::Unary { operand: x, .. } | syntax::ExprKind::Paren(x) =
+                    &e.kind
+                {
+                    e = x;
                 }
-                _ => None,
+                match &e.kind {
+                    syntax::ExprKind::Quantity { unit: Some(u), .. } => {
+                        crate::units::combine(u.factors.iter().map(|f| (f.name.as_str(), f.power)))
+                            .ok()
+                            .map(|unit| (u.text.clone(), unit))
+                    }
+                    _ => None,
+                }
             };
             let display = match check {
                 syntax::ExpectCheck::Target { value, .. } => written_unit(value),

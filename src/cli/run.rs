@@ -182,10 +182,11 @@ fn print_summary(
     let run = &outcome.run;
     let name = model.name.as_deref().unwrap_or("");
     println!(
-        "{name}: {} Ga to {} Ga, {} stages, {} report rows",
+        "{name}: {} Ga to {} Ga, {} stage{}, {} report rows",
         fmt_num(model.start_age / 1e9),
         fmt_num(model.end_age / 1e9),
         run.stages.len(),
+        if run.stages.len() == 1 { "" } else { "s" },
         outcome.rows
     );
     let width = model

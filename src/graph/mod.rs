@@ -256,6 +256,20 @@ pub fn node_name(model: &Model, n: Node) -> String {
     }
 }
 
+/// Whether the value expression of a `set` line depends on `id`.
+fn set_reads(g: &DepGraph, e: &crate::model::Expr, id: DefId) -> bool {
+    let mut refs = Vec::new();
+    e.refs(&mut refs);
+    let nodes: Vec<Node> = refs
+        .into_iter()
+        .filter_map(|r| match r {
+            Ref::Def(d) => Some(Node::Def(d)),
+            _ => None,
+        })
+        .collect();
+    g.closure(&nodes).contains(&Node::Def(id))
+}
+
 /// Every parameter's influence: the stages whose solve reaches it.
 pub fn param_stages(model: &Model, g: &DepGraph) -> Vec<(DefId, Vec<usize>)> {
     let closures: Vec<BTreeSet<Node>> = (0..model.stages.len())
@@ -270,7 +284,10 @@ pub fn param_stages(model: &Model, g: &DepGraph) -> Vec<(DefId, Vec<usize>)> {
             let stages = (0..model.stages.len())
                 .filter(|&s| {
                     closures[s].contains(&Node::Def(id))
-                        || model.stages[s].sets.iter().any(|(p, _)| *p == id)
+                        || model.stages[s]
+                            .sets
+                            .iter()
+                            .any(|(p, e)| *p == id || set_reads(g, e, id))
                 })
                 .collect();
             (id, stages)

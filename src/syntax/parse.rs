@@ -17,6 +17,10 @@ struct HadalParser;
 /// Most syntax errors reported for one file before giving up.
 const MAX_SYNTAX_ERRORS: usize = 25;
 
+/// Bytes that error recovery may parse again beyond twice the file's
+/// length (small files get their 25 errors; a huge one stops sooner).
+const MAX_RECOVERY_BYTES: usize = 1 << 20;
+
 /// Deepest expression nesting accepted; deeper input is a diagnostic, not a
 /// stack overflow.
 pub const MAX_NESTING: usize = 64;
@@ -35,7 +39,13 @@ pub fn parse(text: &str, file: u32) -> Result<SyntaxFile, Vec<Problem>> {
     }
     let mut errors = Vec::new();
     let mut work = text.to_owned();
+    // Each recovery parses the whole file again (twice: plain, then with
+    // detail); bound the total work so a large file with many broken lines
+    // costs a few parses, not fifty.
+    let budget = 2 * text.len() + MAX_RECOVERY_BYTES;
+    let mut spent = 0usize;
     loop {
+        spent += work.len();
         match HadalParser::parse(Rule::file, &work).map_err(|e| detailed_error(&work, e)) {
             Ok(mut pairs) => {
                 if errors.is_empty() {
@@ -77,7 +87,7 @@ pub fn parse(text: &str, file: u32) -> Result<SyntaxFile, Vec<Problem>> {
                     })
                     .collect();
                 work.replace_range(blank_from..line_end, &blank);
-                if errors.len() >= MAX_SYNTAX_ERRORS {
+                if errors.len() >= MAX_SYNTAX_ERRORS || spent + work.len() > budget {
                     return Err(errors);
                 }
             }
@@ -644,12 +654,21 @@ impl Builder {
             }
             let factor = &text[start..i];
             let (name, power) = match factor.split_once('^') {
-                Some((n, p)) => (n, p.parse::<i32>().unwrap_or(1)),
+                // The grammar admits only digits: a failure is an overflow,
+                // kept as the largest power so the checker rejects it.
+                Some((n, p)) => (
+                    n,
+                    p.parse::<i32>().unwrap_or(if p.starts_with('-') {
+                        i32::MIN
+                    } else {
+                        i32::MAX
+                    }),
+                ),
                 None => (factor, 1),
             };
             factors.push(UnitFactor {
                 name: name.to_owned(),
-                power: power * sign,
+                power: power.saturating_mul(sign),
                 span: Span::new(self.file, base + start, base + i),
             });
             if i < bytes.len() {

@@ -340,6 +340,10 @@ pub enum UnitError {
 /// its 273.15 offset and is an absolute temperature; inside a compound unit
 /// (`W/degC`, `degC^-1`) it is a temperature difference. Likewise an age
 /// unit inside a compound is a plain duration.
+/// Largest power of one unit factor (`m^127`); dimensions hold exponents
+/// of that size too.
+pub const MAX_UNIT_POWER: u32 = 127;
+
 pub fn combine<'a>(factors: impl IntoIterator<Item = (&'a str, i32)>) -> Result<Unit, UnitError> {
     let factors: Vec<(&str, i32)> = factors.into_iter().collect();
     if let [(name, 1)] = factors.as_slice() {
@@ -349,6 +353,14 @@ pub fn combine<'a>(factors: impl IntoIterator<Item = (&'a str, i32)>) -> Result<
     let mut dim = Dim::NONE;
     for (i, (name, power)) in factors.iter().enumerate() {
         let u = lookup(name).ok_or_else(|| UnitError::Unknown(i, (*name).to_owned()))?;
+        // Checked before the loop below, which runs once per unit of power
+        // (`ppm^2147483647` is dimensionless, but no real unit).
+        if power.unsigned_abs() > MAX_UNIT_POWER {
+            return Err(UnitError::Overflow);
+        }
+        dim = dim
+            .times(u.dim.plain().powi(*power).ok_or(UnitError::Overflow)?)
+            .ok_or(UnitError::Overflow)?;
         // Repeated multiplication rather than `powi`, whose evaluation order
         // the compiler may choose per platform.
         for _ in 0..power.unsigned_abs() {
@@ -358,9 +370,9 @@ pub fn combine<'a>(factors: impl IntoIterator<Item = (&'a str, i32)>) -> Result<
                 scale /= u.scale;
             }
         }
-        dim = dim
-            .times(u.dim.plain().powi(*power).ok_or(UnitError::Overflow)?)
-            .ok_or(UnitError::Overflow)?;
+        if !scale.is_finite() || scale == 0.0 {
+            return Err(UnitError::Overflow);
+        }
     }
     Ok(Unit {
         scale,
@@ -403,7 +415,7 @@ pub fn parse_unit(text: &str) -> Result<Unit, UnitError> {
         if name.is_empty() {
             return Err(UnitError::Unknown(i, (*tok).to_owned()));
         }
-        factors.push((name, power * s));
+        factors.push((name, power.saturating_mul(*s)));
     }
     combine(factors)
 }
