@@ -384,20 +384,25 @@ impl Checker {
         out
     }
 
+    /// H0201 for a name that should be a parameter, with the nearest one.
+    fn unknown_parameter(&mut self, name: &syntax::Ident) {
+        let params: Vec<String> = self
+            .defs
+            .iter()
+            .filter(|d| matches!(d.kind, DefKind::Param))
+            .map(|d| d.name.clone())
+            .collect();
+        let mut p = Problem::error("H0201", format!("unknown parameter `{}`", name.text))
+            .label(name.span, "no such parameter");
+        if let Some(s) = nearest(&name.text, params.iter().map(String::as_str)) {
+            p = p.help(format!("did you mean `{s}`?"));
+        }
+        self.error(p);
+    }
+
     fn stage_set(&mut self, p: &syntax::Ident, value: &syntax::Expr, stage: &mut Stage) {
         let Some(&id) = self.symbols.get(&p.text) else {
-            let params: Vec<String> = self
-                .defs
-                .iter()
-                .filter(|d| matches!(d.kind, DefKind::Param))
-                .map(|d| d.name.clone())
-                .collect();
-            let mut pr = Problem::error("H0201", format!("unknown parameter `{}`", p.text))
-                .label(p.span, "no such parameter");
-            if let Some(s) = nearest(&p.text, params.iter().map(String::as_str)) {
-                pr = pr.help(format!("did you mean `{s}`?"));
-            }
-            self.error(pr);
+            self.unknown_parameter(p);
             return;
         };
         if !matches!(self.defs[id].kind, DefKind::Param) {
@@ -781,18 +786,7 @@ impl Checker {
         span: Span,
     ) -> Option<Vary> {
         let Some(&param) = self.symbols.get(&name.text) else {
-            let params: Vec<String> = self
-                .defs
-                .iter()
-                .filter(|d| matches!(d.kind, DefKind::Param))
-                .map(|d| d.name.clone())
-                .collect();
-            let mut p = Problem::error("H0201", format!("unknown parameter `{}`", name.text))
-                .label(name.span, "no such parameter");
-            if let Some(s) = nearest(&name.text, params.iter().map(String::as_str)) {
-                p = p.help(format!("did you mean `{s}`?"));
-            }
-            self.error(p);
+            self.unknown_parameter(name);
             return None;
         };
         if !matches!(self.defs[param].kind, DefKind::Param) {

@@ -364,20 +364,8 @@ pub(crate) fn cmd_params(file: &Path, sets: &[String], json: bool) -> i32 {
     for (id, stages) in influence {
         let d = &model.defs[id];
         let v = base[id].unwrap_or(f64::NAN);
-        let (unit_text, shown) = match &d.display_unit {
-            Some((t, u)) => (t.clone(), u.from_internal(v)),
-            None => {
-                let (n, u) = crate::units::display_unit(d.dim);
-                (
-                    if n.is_empty() {
-                        d.dim.internal_unit()
-                    } else {
-                        n.to_owned()
-                    },
-                    u.from_internal(v),
-                )
-            }
-        };
+        let (unit_text, unit) = rep::shown_unit(model, id);
+        let shown = unit.from_internal(v);
         let initial = model
             .defs
             .iter()

@@ -238,21 +238,7 @@ pub struct EnsembleState {
 }
 
 fn display_of(model: &Model, d: DefId) -> (String, crate::units::Unit) {
-    let def = &model.defs[d];
-    match &def.display_unit {
-        Some((t, u)) => (crate::units::udunits(t), *u),
-        None => {
-            let (n, u) = crate::units::display_unit(def.dim);
-            (
-                if n.is_empty() {
-                    def.dim.internal_unit()
-                } else {
-                    n.to_owned()
-                },
-                u,
-            )
-        }
-    }
+    report::shown_unit(model, d)
 }
 
 /// Compiled programs shared by every member.

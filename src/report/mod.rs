@@ -29,20 +29,32 @@ pub struct Series {
     pub rows: Vec<Vec<f64>>,
 }
 
+/// The unit a definition's values are shown in: the unit it was written
+/// with (`in UNIT` of an output, or the unit of a lone literal), else a
+/// default for its dimension; as a UDUNITS-style string and a conversion.
+pub fn shown_unit(model: &Model, id: DefId) -> (String, Unit) {
+    let d = &model.defs[id];
+    match &d.display_unit {
+        Some((text, unit)) => (units::udunits(text), *unit),
+        None => default_unit(d.dim),
+    }
+}
+
+fn default_unit(dim: units::Dim) -> (String, Unit) {
+    let (name, unit) = units::display_unit(dim);
+    if name.is_empty() {
+        (dim.internal_unit(), unit)
+    } else {
+        (name.to_owned(), unit)
+    }
+}
+
 fn column_for(model: &Model, id: DefId) -> Column {
     let d = &model.defs[id];
-    let (unit_text, display) = match &d.display_unit {
-        Some((text, unit)) if matches!(d.kind, DefKind::Output | DefKind::State { .. }) => {
-            (units::udunits(text), *unit)
-        }
-        _ => {
-            let (name, unit) = units::display_unit(d.dim);
-            if name.is_empty() {
-                (d.dim.internal_unit(), unit)
-            } else {
-                (name.to_owned(), unit)
-            }
-        }
+    // Inventories are always in kg; outputs and states as written.
+    let (unit_text, display) = match d.kind {
+        DefKind::Output | DefKind::State { .. } => shown_unit(model, id),
+        _ => default_unit(d.dim),
     };
     Column {
         name: d.name.clone(),

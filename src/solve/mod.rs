@@ -173,38 +173,64 @@ struct EventWatch<'a> {
     first: Vec<Option<f64>>,
 }
 
+/// One accepted step, for capturing states at given ages inside it.
+struct Step<'a, 'd> {
+    start_age: f64,
+    t0: f64,
+    t1: f64,
+    y1: &'a [f64],
+    dense: &'a Dense<'d>,
+}
+
+impl Step<'_, '_> {
+    /// Append the state at each age of `ages[*next..]` that this step
+    /// reaches: the step's end state exactly at its end, the interpolant
+    /// inside it.
+    fn capture(
+        &self,
+        ages: &[f64],
+        next: &mut usize,
+        out: &mut Vec<(f64, Vec<f64>)>,
+        scratch: &mut [f64],
+    ) {
+        while let Some(&age) = ages.get(*next) {
+            let t = self.start_age - age;
+            if t > self.t1 + 1e-9 * (self.t1 - self.t0).abs() {
+                break;
+            }
+            let y = if (t - self.t1).abs() <= 1e-12 * self.t1.abs().max(1.0) {
+                self.y1.to_vec()
+            } else {
+                self.dense.eval(t, scratch);
+                scratch.to_vec()
+            };
+            out.push((age, y));
+            *next += 1;
+        }
+    }
+}
+
 impl Observer for Obs<'_> {
     fn accepted(&mut self, t0: f64, t1: f64, y1: &[f64], dense: &Dense) -> Result<(), Stop> {
-        while self.next_probe < self.probe_ages.len() {
-            let age = self.probe_ages[self.next_probe];
-            let t = self.start_age - age;
-            if t > t1 + 1e-9 * (t1 - t0).abs() {
-                break;
-            }
-            let y = if (t - t1).abs() <= 1e-12 * t1.abs().max(1.0) {
-                y1.to_vec()
-            } else {
-                dense.eval(t, &mut self.scratch);
-                self.scratch.clone()
-            };
-            self.probes.push((age, y));
-            self.next_probe += 1;
-        }
-        while self.next_row < self.rows.len() {
-            let age = self.rows[self.next_row];
-            let t = self.start_age - age;
-            if t > t1 + 1e-9 * (t1 - t0).abs() {
-                break;
-            }
-            let y = if (t - t1).abs() <= 1e-12 * t1.abs().max(1.0) {
-                y1.to_vec()
-            } else {
-                dense.eval(t, &mut self.scratch);
-                self.scratch.clone()
-            };
-            self.out.push((age, y));
-            self.next_row += 1;
-        }
+        let step = Step {
+            start_age: self.start_age,
+            t0,
+            t1,
+            y1,
+            dense,
+        };
+        step.capture(
+            &self.probe_ages,
+            &mut self.next_probe,
+            &mut self.probes,
+            &mut self.scratch,
+        );
+        step.capture(
+            &self.rows,
+            &mut self.next_row,
+            &mut self.out,
+            &mut self.scratch,
+        );
         if let Some(i) = y1[..self.n_res].iter().position(|&v| v < self.floor) {
             // Locate where it crossed zero on the interpolant.
             let (mut lo, mut hi) = (t0, t1);
