@@ -10,8 +10,10 @@
 # Scenarios come from benches/scaling/generate.py (not committed). Each run
 # is a whole `hadal run --no-cache` process: wall time is the median of
 # SCALING_RUNS runs (default 3; 1 for runs over 20 s), "solve" the time the
-# run reports for its stages, peak memory the largest resident set
-# (/usr/bin/time -v). The growth columns give the exponent k of time ~ size^k
+# run reports for its stages, "parse+check" the median of three `hadal check`
+# processes on the same file, peak memory the largest resident set
+# (/usr/bin/time -v). Outputs are written to /dev/shm when it exists. The
+# growth columns give the exponent k of time ~ size^k
 # between neighbouring sizes (1 is linear). Figures also go to
 # target/scaling/summary.json.
 set -euo pipefail
@@ -20,12 +22,22 @@ root=$(pwd)
 RUNS=${SCALING_RUNS:-3}
 echo "building (release) ..." >&2
 cargo build --release --quiet
-H=$root/target/release/hadal
 gen=$root/benches/scaling/generate.py
 out=$root/target/scaling
 mkdir -p "$out"
 tmp=$(mktemp -d)
 trap 'rm -rf "$tmp"' EXIT
+# Outputs go to a memory file system when there is one: the runs write up to
+# 190 MB each, and on a disk shared with other work the durable writes
+# (fsync) would measure the disk's queue rather than hadal.
+work=$tmp
+if [ -d /dev/shm ] && w=$(mktemp -d -p /dev/shm hadal-scaling.XXXXXX 2>/dev/null); then
+    work=$w
+    trap 'rm -rf "$tmp" "$work"' EXIT
+fi
+# a copy, so a rebuild by someone else mid-run cannot change what is measured
+cp "$root/target/release/hadal" "$tmp/hadal"
+H=$tmp/hadal
 : >"$out/runs.jsonl"
 
 # run_one LABEL FILE: RUNS whole-process runs of `hadal run`, one JSON line
@@ -33,25 +45,45 @@ trap 'rm -rf "$tmp"' EXIT
 run_one() {
     local label=$1 file=$2 i walls=() rss=0
     for ((i = 0; i < RUNS; i++)); do
-        /usr/bin/time -v -o "$tmp/time.txt" "$H" run "$file" --no-cache --json --out "$tmp/out" >"$tmp/run.json"
-        walls+=("$(awk -F': ' '/Elapsed \(wall clock\)/ {n = split($2, p, ":"); s = 0; for (k = 1; k <= n; k++) s = s * 60 + p[k]; print s}' "$tmp/time.txt")")
-        local r
+        local s e r
+        s=$(date +%s%N)
+        /usr/bin/time -v -o "$tmp/time.txt" "$H" run "$file" --no-cache --json --out "$work/out" >"$tmp/run.json"
+        e=$(date +%s%N)
+        walls+=("$(((e - s) / 1000))")
         r=$(awk -F': ' '/Maximum resident set size/ {print $2}' "$tmp/time.txt")
         ((r > rss)) && rss=$r
         # one run is enough to know a size is slow
-        if (($(echo "${walls[-1]} > 20" | bc -l))); then break; fi
+        (((e - s) > 20000000000)) && break
     done
-    python3 - "$label" "$file" "$tmp/run.json" "$rss" "${walls[@]}" >>"$out/runs.jsonl" <<'EOF'
+    # parse and check alone, the same file
+    local checks=()
+    for ((i = 0; i < 3; i++)); do
+        local s e
+        s=$(date +%s%N)
+        "$H" check "$file" >/dev/null
+        e=$(date +%s%N)
+        checks+=("$(((e - s) / 1000))")
+    done
+    python3 - "$label" "$file" "$tmp/run.json" "$rss" "${checks[*]}" "${walls[@]}" >>"$out/runs.jsonl" <<'EOF'
 import json, statistics, sys
-label, file, run, rss = sys.argv[1:5]
-walls = [float(w) for w in sys.argv[5:]]
+label, file, run, rss, checks = sys.argv[1:6]
+walls = [int(w) / 1e6 for w in sys.argv[6:]]
+checks = [int(c) / 1e6 for c in checks.split()]
 r = json.load(open(run))
 stages = r["stages"]
-methods = sorted({s["method"] for s in stages})
+switched = sum(1 for s in stages if s["method"].startswith("explicit, then implicit"))
+implicit = sum(1 for s in stages if s["method"] == "implicit")
+if implicit == len(stages):
+    method = "implicit"
+elif switched or implicit:
+    method = f"explicit, implicit in {switched + implicit} of {len(stages)} stages"
+else:
+    method = "explicit"
 print(json.dumps({
     "label": label,
     "lines": sum(1 for _ in open(file)),
     "wall_s": statistics.median(walls),
+    "check_s": statistics.median(checks),
     "runs": len(walls),
     "solve_s": sum(s["wall_ms"] for s in stages) / 1e3,
     "peak_mb": int(rss) / 1024,
@@ -59,7 +91,7 @@ print(json.dumps({
     "rhs": sum(s["rhs_evaluations"] for s in stages),
     "rows": r["rows"],
     "stages": len(stages),
-    "method": ", ".join(methods),
+    "method": method,
 }))
 EOF
     echo "  $label: $(tail -1 "$out/runs.jsonl")" >&2
@@ -104,10 +136,12 @@ EOF
     echo "  $(tail -1 "$out/check.jsonl")" >&2
 done
 
-python3 - "$out" "$(nproc)" "$(free -g | awk '/^Mem:/ {print $2}')" "$(date -u +%Y-%m-%d)" <<'EOF'
+where=disk
+[ "$work" != "$tmp" ] && where="tmpfs (/dev/shm)"
+python3 - "$out" "$(nproc)" "$(free -g | awk '/^Mem:/ {print $2}')" "$(date -u +%Y-%m-%d)" "$where" <<'EOF'
 import json, math, os, sys
 
-out, cores, mem, date = sys.argv[1:5]
+out, cores, mem, date, where = sys.argv[1:6]
 runs = {r["label"]: r for r in map(json.loads, open(os.path.join(out, "runs.jsonl")))}
 checks = [json.loads(l) for l in open(os.path.join(out, "check.jsonl"))]
 
@@ -122,30 +156,31 @@ def k(a, b, xa, xb):
     return f"{math.log(b / a) / math.log(xb / xa):.2f}"
 
 
-print(f"hadal scaling, {date}, {cores} cores, {mem} GiB")
-print("| reservoirs | span | stages | rows | method | steps | wall | solve | peak memory | k(wall) vs reservoirs | k(solve) vs span |")
-print("|---|---|---|---|---|---|---|---|---|---|---|")
+print(f"hadal scaling, {date}, {cores} cores, {mem} GiB, outputs written to {where}")
+print("Growth: exponent k of wall / solve / peak memory ~ size^k against the next smaller size (1 is linear).")
+print("| reservoirs | span | stages | rows | method | steps | parse+check | solve | wall (whole run) | peak memory "
+      "| growth vs reservoirs | growth vs span |")
+print("|---|---|---|---|---|---|---|---|---|---|---|---|")
+
+
+def growth(p, r, xp, xr):
+    return " / ".join(k(p[q], r[q], xp, xr) for q in ("wall_s", "solve_s", "peak_mb"))
+
+
+spans = ("0.5", "4.5", "45")
 for n in (10, 100, 1000):
-    for span in ("0.5", "4.5", "45"):
+    for span in spans:
         r = runs[f"auto {n} {span}"]
-        kn = ""
-        if n > 10:
-            p = runs[f"auto {n // 10} {span}"]
-            kn = k(p["wall_s"], r["wall_s"], n // 10, n)
-        ks = ""
-        if span != "0.5":
-            p = runs[f"auto {n} {'0.5' if span == '4.5' else '4.5'}"]
-            ks = k(p["solve_s"], r["solve_s"], float(p["label"].split()[2]), float(span))
-        print(f"| {n} | {span} Gyr | {r['stages']} | {r['rows']} | {r['method']} | {r['steps']} | {t(r['wall_s'])} "
-              f"| {t(r['solve_s'])} | {r['peak_mb']:.0f} MB | {kn} | {ks} |")
+        gn = growth(runs[f"auto {n // 10} {span}"], r, n // 10, n) if n > 10 else ""
+        i = spans.index(span)
+        gs = growth(runs[f"auto {n} {spans[i - 1]}"], r, float(spans[i - 1]), float(span)) if i else ""
+        print(f"| {n} | {span} Gyr | {r['stages']} | {r['rows']} | {r['method']} | {r['steps']} | {t(r['check_s'])} "
+              f"| {t(r['solve_s'])} | {t(r['wall_s'])} | {r['peak_mb']:.0f} MB | {gn} | {gs} |")
 for n in (10, 100, 1000):
     r = runs[f"implicit {n} 4.5"]
-    kn = ""
-    if n > 10:
-        p = runs[f"implicit {n // 10} 4.5"]
-        kn = k(p["solve_s"], r["solve_s"], n // 10, n) + " (solve)"
-    print(f"| {n} | 4.5 Gyr | {r['stages']} | {r['rows']} | implicit (forced) | {r['steps']} | {t(r['wall_s'])} "
-          f"| {t(r['solve_s'])} | {r['peak_mb']:.0f} MB | {kn} | |")
+    gn = growth(runs[f"implicit {n // 10} 4.5"], r, n // 10, n) if n > 10 else ""
+    print(f"| {n} | 4.5 Gyr | {r['stages']} | {r['rows']} | implicit (forced) | {r['steps']} | {t(r['check_s'])} "
+          f"| {t(r['solve_s'])} | {t(r['wall_s'])} | {r['peak_mb']:.0f} MB | {gn} | |")
 print()
 print("| parse and check | wall (whole process) | peak memory | k vs lines | target |")
 print("|---|---|---|---|---|")
@@ -155,6 +190,6 @@ for i, c in enumerate(checks):
     if c["lines"] >= 10000:
         target = "met (< 100 ms)" if c["wall_s"] < 0.1 else f"gap: {t(c['wall_s'])} (target 100 ms)"
     print(f"| {c['lines']} lines | {t(c['wall_s'])} | {c['peak_mb']:.0f} MB | {kk} | {target} |")
-json.dump({"date": date, "cores": int(cores), "memory_gib": int(mem), "runs": runs, "check": checks},
+json.dump({"date": date, "cores": int(cores), "memory_gib": int(mem), "outputs": where, "runs": runs, "check": checks},
           open(os.path.join(out, "summary.json"), "w"), indent=2)
 EOF

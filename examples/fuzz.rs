@@ -9,7 +9,8 @@
 //! Options: `--count N` cases (default 10000), `--seed S` (default 1),
 //! `--start I` first case index (replay one case with `--start I --count 1`),
 //! `--jobs J` worker threads (default 1), `--hang-ms MS` (default 2000),
-//! `--no-solve`, `--save DIR` where failing cases are written (default
+//! `--no-solve`, `--print` (show the inputs, run nothing), `--write DIR`
+//! (write each input as a project `DIR/case-SEED-I/`, run nothing), `--save DIR` where failing cases are written (default
 //! `fuzz-failures`). Exit status 0 when every case passed, 1 otherwise, 2 on
 //! bad arguments.
 //!
@@ -29,6 +30,8 @@ fn main() {
         ..Default::default()
     };
     let mut jobs = 1usize;
+    let mut print = false;
+    let mut write: Option<PathBuf> = None;
     let mut args = std::env::args().skip(1);
     while let Some(a) = args.next() {
         let mut value = |name: &str| -> String {
@@ -53,6 +56,8 @@ fn main() {
             }
             "--save" => settings.save_dir = Some(PathBuf::from(value("--save"))),
             "--no-solve" => settings.solve = false,
+            "--print" => print = true,
+            "--write" => write = Some(PathBuf::from(value("--write"))),
             "-h" | "--help" => {
                 println!("usage: fuzz [--count N] [--seed S] [--start I] [--jobs J] [--hang-ms MS] [--no-solve] [--save DIR]");
                 return;
@@ -63,12 +68,30 @@ fn main() {
             }
         }
     }
+    if print || write.is_some() {
+        // Show or write out the inputs instead of running them.
+        let corpus = fuzzer::Corpus::load();
+        for i in settings.start..settings.start + settings.count {
+            let case = fuzzer::make_case(&corpus, settings.seed, i);
+            if let Some(dir) = &write {
+                let d = dir.join(format!("case-{}-{i}", settings.seed));
+                if let Err(e) = case.save(&d) {
+                    eprintln!("fuzz: cannot write {}: {e}", d.display());
+                    std::process::exit(2);
+                }
+            } else {
+                println!("==== case {i}\n{}", String::from_utf8_lossy(&case.scenario));
+            }
+        }
+        return;
+    }
     println!(
-        "fuzz: seed {}, cases {}..{}, {jobs} job(s), hang limit {} ms, solve {}",
+        "fuzz: seed {}, cases {}..{}, {jobs} job(s), hang limit {} ms + {} ms per MB of input, solve {}",
         settings.seed,
         settings.start,
         settings.start + settings.count,
         settings.hang_after.as_millis(),
+        settings.hang_per_mb.as_millis(),
         if settings.solve { "on" } else { "off" }
     );
     let report = fuzzer::run_parallel(&settings, jobs, |k, r| {

@@ -69,10 +69,6 @@ impl Problem {
         let mut source = None;
         if let Some(primary) = self.primary() {
             let file = sources.get(primary.file);
-            source = Some(NamedSource::new(
-                file.name.clone(),
-                file.text.as_str().to_owned(),
-            ));
             let text = file.text.as_str();
             for label in &self.labels {
                 if label.span.file == primary.file && drawable(text, label.span) {
@@ -97,9 +93,13 @@ impl Problem {
                 }
             }
         }
-        if labels.is_empty() {
-            // Every label was folded into the help text: no snippet.
-            source = None;
+        if let (Some(primary), false) = (self.primary(), labels.is_empty()) {
+            // Some label is drawn (else all went to the help text).
+            let file = sources.get(primary.file);
+            source = Some(NamedSource::new(
+                file.name.clone(),
+                file.text.as_str().to_owned(),
+            ));
         }
         Rendered {
             problem: self.clone(),
@@ -118,11 +118,12 @@ impl Problem {
     }
 }
 
-/// Longest stretch of a line, in bytes up to the end of a label, that is
-/// drawn under a source snippet. Further right, the label is given as
-/// `file:line:col` in the help text instead: an underline thousands of
-/// columns wide helps no one, and miette cannot draw one past 65535.
-pub const MAX_DRAWN_COLUMN: usize = 2000;
+/// Longest line, in bytes, drawn in a source snippet (with the line before
+/// and the one after, each shown whole). A label on a longer line, or next
+/// to one, is given as `file:line:col` in the help text instead: a snippet
+/// thousands of columns wide helps no one, costs time to draw for every
+/// problem, and miette cannot underline past column 65535.
+pub const MAX_DRAWN_LINE: usize = 2000;
 
 fn drawable(text: &str, span: Span) -> bool {
     let (start, end) = (span.start as usize, span.end as usize);
@@ -133,8 +134,35 @@ fn drawable(text: &str, span: Span) -> bool {
     {
         return false;
     }
+    let bytes = text.as_bytes();
+    // From the start of the line before to the end of the line after.
     let line_start = text[..start].rfind('\n').map_or(0, |i| i + 1);
-    end - line_start <= MAX_DRAWN_COLUMN
+    let from = if line_start == 0 {
+        0
+    } else {
+        text[..line_start - 1].rfind('\n').map_or(0, |i| i + 1)
+    };
+    let line_end = text[end..].find('\n').map_or(text.len(), |i| end + i);
+    let to = if line_end >= text.len() {
+        line_end
+    } else {
+        text[line_end + 1..]
+            .find('\n')
+            .map_or(text.len(), |i| line_end + 1 + i)
+    };
+    // The span itself may cross lines (a stage); each line must be short.
+    let mut longest = 0;
+    let mut last = from;
+    for (i, &b) in bytes[from..to].iter().enumerate() {
+        if b == b'\n' {
+            longest = longest.max(from + i - last);
+            last = from + i + 1;
+        }
+        if longest > MAX_DRAWN_LINE {
+            return false;
+        }
+    }
+    longest.max(to - last) <= MAX_DRAWN_LINE
 }
 
 impl fmt::Display for Problem {

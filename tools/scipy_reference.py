@@ -13,6 +13,10 @@ This script does not read or run hadal: every parameter below was copied by
 hand from scenarios/hot_start.hadal, scenarios/shared/mantle_minerals.hadal
 and hadal's prelude (src/check/prelude.hadal).
 
+The benchmarks' scripted peer, benches/peer/peer.py, imports this module
+for its equations (``rhs``, ``stage_table`` and the constants), so this is
+the one hand-written copy of the demo's equations in the repository.
+
 Regenerate with:
 
     pip install scipy numpy && python3 tools/scipy_reference.py

@@ -181,6 +181,24 @@ impl Store {
         (n, bad)
     }
 
+    /// Remove the temporary files of writers that were killed (see
+    /// [`crate::fsutil::remove_stale_temps`]) from every folder of the
+    /// store. Returns how many were removed.
+    pub fn remove_stale_temps(&self) -> u64 {
+        let mut removed = crate::fsutil::remove_stale_temps(&self.root);
+        for sub in [self.root.join(LAYOUT), self.root.join("traces")] {
+            removed += crate::fsutil::remove_stale_temps(&sub);
+            if let Ok(dirs) = std::fs::read_dir(&sub) {
+                for d in dirs.flatten() {
+                    if d.file_type().is_ok_and(|t| t.is_dir()) {
+                        removed += crate::fsutil::remove_stale_temps(&d.path());
+                    }
+                }
+            }
+        }
+        removed
+    }
+
     /// Remove entries unused for longer than `older_than`, then the least
     /// recently used until the store is at most `max_size` bytes. Returns
     /// (removed entries, freed bytes).

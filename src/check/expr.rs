@@ -1019,11 +1019,21 @@ pub fn eval_const(model: &Model, e: &Expr) -> Option<f64> {
     ConstEval::new(model).eval(e)
 }
 
+/// The same over definitions and tables checked so far (no model needed).
+pub(crate) fn eval_const_in(
+    defs: &[crate::model::Def],
+    tables: &[crate::model::Table],
+    e: &Expr,
+) -> Option<f64> {
+    ConstEval::over(defs, tables).eval(e)
+}
+
 /// Constant folding that evaluates every definition once: a chain of
 /// constants that each use the one before twice would otherwise cost two to
 /// the power of its length.
 pub(crate) struct ConstEval<'m> {
-    model: &'m Model,
+    defs: &'m [crate::model::Def],
+    tables: &'m [crate::model::Table],
     /// Per definition: not yet seen, being evaluated, or its value.
     memo: Vec<Memo>,
     /// Set when the depth limit cut an evaluation short; such results are
@@ -1044,9 +1054,17 @@ const EVAL_DEPTH: usize = super::MAX_DEPTH + 64;
 
 impl<'m> ConstEval<'m> {
     pub(crate) fn new(model: &'m Model) -> ConstEval<'m> {
+        ConstEval::over(&model.defs, &model.tables)
+    }
+
+    pub(crate) fn over(
+        defs: &'m [crate::model::Def],
+        tables: &'m [crate::model::Table],
+    ) -> ConstEval<'m> {
         ConstEval {
-            model,
-            memo: vec![Memo::Todo; model.defs.len()],
+            defs,
+            tables,
+            memo: vec![Memo::Todo; defs.len()],
             cut: false,
         }
     }
@@ -1056,11 +1074,8 @@ impl<'m> ConstEval<'m> {
     }
 
     fn def(&mut self, d: DefId, depth: usize) -> Option<f64> {
-        let model = self.model;
-        if !matches!(
-            model.defs[d].kind,
-            DefKind::Const | DefKind::Param | DefKind::Let
-        ) {
+        let defs = self.defs;
+        if !matches!(defs[d].kind, DefKind::Const | DefKind::Param | DefKind::Let) {
             return None;
         }
         match self.memo[d] {
@@ -1071,7 +1086,7 @@ impl<'m> ConstEval<'m> {
         }
         self.memo[d] = Memo::Busy;
         let outer_cut = std::mem::replace(&mut self.cut, false);
-        let v = self.eval_depth(&model.defs[d].expr, depth + 1);
+        let v = self.eval_depth(&defs[d].expr, depth + 1);
         self.memo[d] = if self.cut { Memo::Todo } else { Memo::Done(v) };
         self.cut |= outer_cut;
         v
@@ -1107,7 +1122,7 @@ impl<'m> ConstEval<'m> {
             ExprKind::Call(f, args) => {
                 let vals: Option<Vec<f64>> = args.iter().map(&mut ev).collect();
                 let v = vals?;
-                let model = self.model;
+                let tables = self.tables;
                 match f {
                     Builtin::Exp => libm::exp(v[0]),
                     Builtin::Ln => libm::log(v[0]),
@@ -1118,8 +1133,11 @@ impl<'m> ConstEval<'m> {
                     Builtin::Max => v.iter().copied().fold(f64::NEG_INFINITY, f64::max),
                     Builtin::Clamp => v[0].max(v[1]).min(v[2]),
                     Builtin::Smoothstep => crate::numeric::smoothstep(v[0], v[1], v[2]),
+                    // A table that failed to load (already reported) has no
+                    // value, rather than a NaN that would be reported again.
+                    Builtin::Interp(t) if tables[*t].xs.is_empty() => return None,
                     Builtin::Interp(t) => {
-                        crate::numeric::interp(&model.tables[*t].xs, &model.tables[*t].ys, v[0])
+                        crate::numeric::interp(&tables[*t].xs, &tables[*t].ys, v[0])
                     }
                     _ => return None,
                 }

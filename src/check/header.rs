@@ -49,8 +49,7 @@ impl Checker {
             self.expect_constant(&t, e.span, what);
             return None;
         }
-        let model = self.partial_model();
-        let v = super::eval_const(&model, &x);
+        let v = super::expr::eval_const_in(&self.defs, &self.tables, &x);
         if v.is_none_or(|v| !v.is_finite()) {
             self.error(
                 Problem::error(

@@ -227,6 +227,8 @@ pub(crate) struct Checker {
     def_item: Vec<usize>,
     /// Errors collected so far (at most [`MAX_ERRORS`] are kept).
     errors: usize,
+    /// Every file included so far, with the include that first named it.
+    included: HashMap<PathBuf, Span>,
     /// Bytes of scenario, include and table text read so far.
     bytes_read: u64,
     /// How deep `check_expr` is nested now, and whether passing
@@ -253,6 +255,7 @@ impl Checker {
             stack: Vec::new(),
             def_item: Vec::new(),
             errors: 0,
+            included: HashMap::new(),
             bytes_read: 0,
             depth: 0,
             depth_reported: false,
@@ -639,6 +642,18 @@ impl Checker {
             );
             return;
         }
+        if let Some(&first) = self.included.get(&canonical) {
+            // Its names would all be defined twice; say so once, and do not
+            // read (and parse) the file again.
+            self.error(
+                Problem::error("H0502", format!("`{written}` is included twice"))
+                    .label(span, "included again here")
+                    .label(first, "first included here")
+                    .help("include each file once; its definitions are then visible everywhere"),
+            );
+            return;
+        }
+        self.included.insert(canonical.clone(), span);
         if chain.len() > MAX_INCLUDE_DEPTH {
             self.error(
                 Problem::error(

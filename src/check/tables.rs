@@ -106,6 +106,19 @@ impl Checker {
             );
         };
         match reader.headers() {
+            Ok(h) if h.len() == 2 && h.iter().all(|c| c.parse::<f64>().is_ok()) => {
+                // Without a header the first row would silently be dropped.
+                problem(
+                    self,
+                    Span::new(file, 0, text.find(['\r', '\n']).unwrap_or(text.len())),
+                    format!(
+                        "the first line of `{}` holds numbers, not column names",
+                        path.value
+                    ),
+                    "start the table with a header line naming its two columns, e.g. `age,forcing`",
+                );
+                return None;
+            }
             Ok(h) if h.len() == 2 => {}
             Ok(h) if h.is_empty() || text.trim().is_empty() => {
                 problem(
@@ -153,9 +166,21 @@ impl Checker {
                     return None;
                 }
             };
-            let pos = rec.position().map_or(0, |p| p.byte() as usize);
-            let line_end = text[pos..].find('\n').map_or(text.len(), |i| pos + i);
-            let line_span = Span::new(file, pos, line_end.max(pos));
+            // With CRLF line ends the reader places a record at the `\n`
+            // ending the line before it; a record never starts with a line
+            // end, so step over them.
+            let mut pos = rec
+                .position()
+                .map_or(0, |p| p.byte() as usize)
+                .min(text.len());
+            while matches!(text.as_bytes().get(pos), Some(b'\r' | b'\n')) {
+                pos += 1;
+            }
+            let mut line_end = text[pos..].find('\n').map_or(text.len(), |i| pos + i);
+            if line_end > pos && text.as_bytes()[line_end - 1] == b'\r' {
+                line_end -= 1;
+            }
+            let line_span = Span::new(file, pos, line_end);
             if rec.iter().all(|c| c.is_empty()) {
                 continue;
             }
@@ -177,10 +202,15 @@ impl Checker {
                 match cell.parse::<f64>() {
                     Ok(v) if v.is_finite() => vals[k] = v,
                     _ => {
+                        let what = if cell.is_empty() {
+                            "a cell of this row is empty".to_owned()
+                        } else {
+                            format!("`{cell}` is not a number")
+                        };
                         problem(
                             self,
                             line_span,
-                            format!("`{cell}` is not a number"),
+                            what,
                             "cells hold plain numbers in the units declared after the path",
                         );
                         return None;
@@ -196,7 +226,17 @@ impl Checker {
                 );
                 return None;
             }
-            rows.push((xu.to_internal(vals[0]), yu.to_internal(vals[1]), line_span));
+            let (x, y) = (xu.to_internal(vals[0]), yu.to_internal(vals[1]));
+            if !x.is_finite() || !y.is_finite() {
+                problem(
+                    self,
+                    line_span,
+                    "a value of this row is too large in the declared units".to_owned(),
+                    "cells hold plain numbers in the units declared after the path",
+                );
+                return None;
+            }
+            rows.push((x, y, line_span));
         }
         if rows.len() < 2 {
             problem(

@@ -48,14 +48,20 @@ pub(crate) fn load(file: &Path, sets: &[String]) -> Result<check::Checked, i32> 
     }
 }
 
-fn write_outputs(dir: &Path, files: &[(&str, Vec<u8>)]) -> Result<(), String> {
+/// Write a run's files as one unit (see [`crate::fsutil::write_group`]):
+/// on failure the directory is as it was (a directory this run created is
+/// removed again), and the manifest, written last, marks a complete set.
+/// Temporary files of runs that were killed here are cleared first.
+fn write_outputs(dir: &Path, files: &[(&str, Vec<u8>)], created: bool) -> Result<(), String> {
     std::fs::create_dir_all(dir).map_err(|e| format!("cannot create {}: {e}", dir.display()))?;
-    for (name, bytes) in files {
-        let path = dir.join(name);
-        crate::fsutil::write_atomic(&path, bytes)
-            .map_err(|e| format!("cannot write {}: {e}", path.display()))?;
-    }
-    Ok(())
+    crate::fsutil::remove_stale_temps(dir);
+    let group: Vec<(&str, &[u8])> = files.iter().map(|(n, b)| (*n, b.as_slice())).collect();
+    crate::fsutil::write_group(dir, &group, "manifest.json").map_err(|e| {
+        if created {
+            let _ = std::fs::remove_dir(dir);
+        }
+        format!("cannot write the outputs in {}: {e}", dir.display())
+    })
 }
 
 pub(crate) fn cmd_run(
@@ -89,6 +95,7 @@ pub(crate) fn cmd_run(
     let mut files = output_files(model, &outcome, &expectations);
     let overrides = parse_sets(sets).unwrap_or_default();
     let wall = clock.elapsed();
+    let created = !dir.is_dir();
     if let Err(e) = std::fs::create_dir_all(&dir) {
         return usage_error(format!("cannot create {}: {e}", dir.display()));
     }
@@ -103,7 +110,7 @@ pub(crate) fn cmd_run(
     );
     // The manifest is written last: a directory with a manifest is complete.
     files.push(("manifest.json", manifest.to_json()));
-    if let Err(e) = write_outputs(&dir, &files) {
+    if let Err(e) = write_outputs(&dir, &files, created) {
         return usage_error(e);
     }
     // Figures are drawn from the files just written (so `hadal plot DIR`
@@ -506,6 +513,10 @@ pub(crate) fn cmd_cache_gc(older: Option<&str>, max: Option<&str>) -> i32 {
         return usage_error("say what to remove: --older-than DUR or --max-size SIZE");
     }
     let store = Store::new(Store::default_location());
+    let temps = store.remove_stale_temps();
+    if temps > 0 {
+        println!("removed {temps} temporary files left by killed writers");
+    }
     let (removed, freed) = store.gc(older, max);
     println!(
         "removed {removed} entries ({:.1} MiB) from {}",

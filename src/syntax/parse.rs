@@ -87,6 +87,8 @@ pub fn parse(text: &str, file: u32) -> Result<SyntaxFile, Vec<Problem>> {
                     })
                     .collect();
                 work.replace_range(blank_from..line_end, &blank);
+                // The failed parse ran twice (plain, then with detail).
+                spent += work.len();
                 if errors.len() >= MAX_SYNTAX_ERRORS || spent + work.len() > budget {
                     return Err(errors);
                 }

@@ -511,7 +511,7 @@ fn random_unit(rng: &mut Rng) -> String {
         if k > 0 {
             s.push_str(if rng.one_in(2) { "/" } else { "." });
         }
-        s.push_str(*rng.pick(UNITS));
+        s.push_str(rng.pick(UNITS));
         if rng.one_in(3) {
             s.push('^');
             let p: &[&str] = &[
@@ -530,7 +530,7 @@ fn random_unit(rng: &mut Rng) -> String {
                 "-",
                 "",
             ];
-            s.push_str(*rng.pick(p));
+            s.push_str(rng.pick(p));
         }
     }
     s
@@ -562,8 +562,15 @@ fn random_token(rng: &mut Rng, corpus: &Corpus) -> String {
 
 // ---- generated scenarios --------------------------------------------------------
 
+/// A plain positive number, for generated scenarios that should check.
+fn sane_number(rng: &mut Rng) -> String {
+    format!("{}e{}", 1 + rng.below(9), 8 + rng.below(10))
+}
+
 struct GenNames {
     reservoirs: Vec<String>,
+    /// Reservoirs with a capacity (`fill` and `excess` need one).
+    capped: Vec<String>,
     dimless: Vec<String>,
     temps: Vec<String>,
     durations: Vec<String>,
@@ -576,9 +583,9 @@ fn dimless_expr(rng: &mut Rng, n: &GenNames, depth: usize) -> String {
         return match rng.below(5) {
             0 => format!("{}", (rng.below(1000) as f64) / 100.0),
             1 if !n.dimless.is_empty() => rng.pick(&n.dimless).clone(),
-            2 if !n.reservoirs.is_empty() => format!("fill({})", rng.pick(&n.reservoirs)),
+            2 if !n.capped.is_empty() => format!("fill({})", rng.pick(&n.capped)),
             3 if !n.reservoirs.is_empty() => {
-                format!("{} / {} kg", rng.pick(&n.reservoirs), random_number(rng))
+                format!("{} / {} kg", rng.pick(&n.reservoirs), sane_number(rng))
             }
             _ => format!("{} %", rng.below(100)),
         };
@@ -600,7 +607,7 @@ fn dimless_expr(rng: &mut Rng, n: &GenNames, depth: usize) -> String {
         ),
         5 => format!("clamp({}, 0, 1)", dimless_expr(rng, n, d)),
         6 => format!(
-            "if age > {} Ga then {} else {}",
+            "(if age > {} Ga then {} else {})",
             rng.below(45) as f64 / 10.0,
             dimless_expr(rng, n, d),
             dimless_expr(rng, n, d)
@@ -629,16 +636,18 @@ fn duration(rng: &mut Rng, n: &GenNames) -> String {
 fn rate_expr(rng: &mut Rng, n: &GenNames, from: Option<&str>) -> String {
     match rng.below(5) {
         0 | 1 if from.is_some() => format!(
-            "{} / {} * {}",
+            "{} / {} * ({})",
             from.unwrap_or("x"),
             duration(rng, n),
             dimless_expr(rng, n, 2)
         ),
         2 if !n.rates.is_empty() => {
-            format!("{} * {}", rng.pick(&n.rates), dimless_expr(rng, n, 2))
+            format!("{} * ({})", rng.pick(&n.rates), dimless_expr(rng, n, 2))
         }
-        3 if from.is_some() => format!("excess({}) / {}", from.unwrap_or("x"), duration(rng, n)),
-        _ => format!("{} kg/yr * {}", random_number(rng), dimless_expr(rng, n, 1)),
+        3 if from.is_some_and(|f| n.capped.iter().any(|c| c == f)) => {
+            format!("excess({}) / {}", from.unwrap_or("x"), duration(rng, n))
+        }
+        _ => format!("{} kg/yr * ({})", sane_number(rng), dimless_expr(rng, n, 1)),
     }
 }
 
@@ -668,6 +677,7 @@ pub fn generate_scenario(rng: &mut Rng) -> String {
     }
     let mut n = GenNames {
         reservoirs: Vec::new(),
+        capped: Vec::new(),
         dimless: Vec::new(),
         temps: Vec::new(),
         durations: Vec::new(),
@@ -688,7 +698,7 @@ pub fn generate_scenario(rng: &mut Rng) -> String {
     }
     if rng.one_in(2) {
         out.push_str(&format!(
-            "state T = {} K, rate = -{} K / {}\n",
+            "state T = {} K, rate = -{} K / 1 {}\n",
             1200 + rng.below(800),
             1 + rng.below(300),
             rng.pick(&["Gyr", "Myr"])
@@ -703,9 +713,10 @@ pub fn generate_scenario(rng: &mut Rng) -> String {
             1 + rng.below(9),
             15 + rng.below(8)
         );
-        if rng.one_in(3) {
+        let capped = rng.one_in(2);
+        if capped {
             line.push_str(&format!(
-                ", capacity = {}e{} kg * {}",
+                ", capacity = {}e{} kg * ({})",
                 1 + rng.below(9),
                 18 + rng.below(5),
                 dimless_expr(rng, &n, 1)
@@ -713,6 +724,9 @@ pub fn generate_scenario(rng: &mut Rng) -> String {
         }
         out.push_str(&line);
         out.push('\n');
+        if capped {
+            n.capped.push(name.clone());
+        }
         n.reservoirs.push(name);
     }
     for i in 0..rng.below(3) {
@@ -723,7 +737,10 @@ pub fn generate_scenario(rng: &mut Rng) -> String {
     }
     for i in 0..rng.below(6) {
         let a = rng.below(reservoirs + 1);
-        let b = rng.below(reservoirs + 1);
+        let mut b = rng.below(reservoirs + 1);
+        if b == a {
+            b = (a + 1) % (reservoirs + 1);
+        }
         let from = if a == reservoirs {
             "outside".to_owned()
         } else {
@@ -1025,7 +1042,12 @@ fn mutate_text(rng: &mut Rng, text: &mut String, corpus: &Corpus) {
         }
         // A long line: a token repeated many times.
         24 => {
-            let times = *rng.pick(&[100usize, 1000, 10_000, 100_000]);
+            // Megabyte lines are slow to parse (about 2 MB/s); keep them rare.
+            let times = if rng.one_in(64) {
+                100_000
+            } else {
+                *rng.pick(&[100usize, 1000, 10_000])
+            };
             let line = match rng.below(5) {
                 0 => format!("let long = min({})\n", vec!["1"; times].join(", ")),
                 1 => format!("let {} = 1\n", "x".repeat(times)),
@@ -1042,7 +1064,11 @@ fn mutate_text(rng: &mut Rng, text: &mut String, corpus: &Corpus) {
         }
         // Many lines: a block repeated, or many definitions with errors.
         25 => {
-            let times = *rng.pick(&[10usize, 100, 1000, 5000]);
+            let times = if rng.one_in(16) {
+                5000
+            } else {
+                *rng.pick(&[10usize, 100, 1000])
+            };
             match rng.below(7) {
                 0 if !lines.is_empty() => {
                     let a = rng.below(lines.len());
@@ -1246,6 +1272,7 @@ fn mutation_count(rng: &mut Rng) -> usize {
 /// Case `index` of campaign `seed`.
 pub fn make_case(corpus: &Corpus, seed: u64, index: u64) -> Case {
     let mut rng = Rng::for_case(seed, index);
+    let mut generated = false;
     let mut text = match rng.below(10) {
         0..=5 => {
             // The demos are the first files of the corpus; favour them.
@@ -1256,7 +1283,12 @@ pub fn make_case(corpus: &Corpus, seed: u64, index: u64) -> Case {
                 rng.pick(&corpus.scenarios).clone()
             }
         }
-        6..=8 => generate_scenario(&mut rng),
+        6..=8 => {
+            // A fresh scenario is new input already: often leave it intact,
+            // so that many reach the solver.
+            generated = true;
+            generate_scenario(&mut rng)
+        }
         _ => rng.pick(&corpus.libraries).clone(),
     };
     let mut include = rng.pick(&corpus.libraries).clone();
@@ -1298,7 +1330,12 @@ pub fn make_case(corpus: &Corpus, seed: u64, index: u64) -> Case {
         }
         text = lines.concat();
     }
-    for _ in 0..mutation_count(&mut rng) {
+    let mutations = if generated && rng.one_in(2) {
+        0
+    } else {
+        mutation_count(&mut rng)
+    };
+    for _ in 0..mutations {
         mutate_text(&mut rng, &mut text, corpus);
     }
     let mut scenario = text.into_bytes();
@@ -1606,8 +1643,12 @@ pub struct Settings {
     pub seed: u64,
     pub start: u64,
     pub count: u64,
-    /// A case running longer than this is a hang.
+    /// A case running longer than this is a hang...
     pub hang_after: Duration,
+    /// ...plus this much per megabyte of input: parsing is linear but
+    /// slow (0.5 to 3 MB/s depending on the construct), and a case parses
+    /// its scenario several times, twice for every syntax error.
+    pub hang_per_mb: Duration,
     /// Stack of the thread a case runs on.
     pub stack_bytes: usize,
     pub solve: bool,
@@ -1615,6 +1656,9 @@ pub struct Settings {
     pub save_dir: Option<PathBuf>,
     /// Stop after this many failures.
     pub max_failures: usize,
+    /// Skip cases with more input than this (bytes): unoptimized builds
+    /// parse slowly, and the long campaigns cover large inputs.
+    pub max_input_bytes: usize,
 }
 
 impl Default for Settings {
@@ -1624,10 +1668,12 @@ impl Default for Settings {
             start: 0,
             count: 1000,
             hang_after: Duration::from_secs(2),
+            hang_per_mb: Duration::from_secs(20),
             stack_bytes: 2 << 20,
             solve: true,
             save_dir: None,
             max_failures: 10,
+            max_input_bytes: usize::MAX,
         }
     }
 }
@@ -1639,6 +1685,8 @@ pub struct Report {
     pub checked: u64,
     pub solved: u64,
     pub solve_failed: u64,
+    /// Cases over `max_input_bytes`, not run.
+    pub skipped: u64,
     pub failures: Vec<Failure>,
     pub slowest: Duration,
     pub slowest_index: u64,
@@ -1648,13 +1696,14 @@ pub struct Report {
 impl Report {
     pub fn summary(&self) -> String {
         format!(
-            "{} cases in {:.1} s: {} parsed, {} checked, {} solved, {} solve errors; slowest case {} took {:.0} ms; {} failures",
+            "{} cases in {:.1} s: {} parsed, {} checked, {} solved, {} solve errors, {} skipped as too large; slowest case {} took {:.0} ms; {} failures",
             self.cases,
             self.elapsed.as_secs_f64(),
             self.parsed,
             self.checked,
             self.solved,
             self.solve_failed,
+            self.skipped,
             self.slowest_index,
             self.slowest.as_secs_f64() * 1e3,
             self.failures.len()
@@ -1714,6 +1763,11 @@ pub fn run_campaign(
     let end = settings.start + settings.count;
     while i < end {
         let case = Arc::new(make_case(corpus, settings.seed, i));
+        if case.scenario.len() + case.include.len() + case.table.len() > settings.max_input_bytes {
+            report.skipped += 1;
+            i += stride;
+            continue;
+        }
         let (tx, rx) = mpsc::channel();
         let (ws2, case2, solve) = (Arc::clone(&ws), Arc::clone(&case), settings.solve);
         let t0 = Instant::now();
@@ -1733,14 +1787,17 @@ pub fn run_campaign(
                 let _ = tx.send(r);
             })
             .expect("spawn a case thread");
-        let result = match rx.recv_timeout(settings.hang_after) {
+        let size = case.scenario.len() + case.include.len() + case.table.len();
+        let limit = settings.hang_after + settings.hang_per_mb.mul_f64(size as f64 / 1e6);
+        let result = match rx.recv_timeout(limit) {
             Ok(r) => {
                 let _ = handle.join();
                 r
             }
             Err(_) => Err(format!(
-                "hang: still running after {:.1} s",
-                settings.hang_after.as_secs_f64()
+                "hang: still running after {:.1} s ({} bytes of input)",
+                limit.as_secs_f64(),
+                size
             )),
         };
         let took = t0.elapsed();
@@ -1818,6 +1875,7 @@ pub fn run_parallel(
         total.checked += r.checked;
         total.solved += r.solved;
         total.solve_failed += r.solve_failed;
+        total.skipped += r.skipped;
         total.failures.extend(r.failures);
         if r.slowest > total.slowest {
             total.slowest = r.slowest;
