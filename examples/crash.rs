@@ -12,7 +12,9 @@
 //! scenario or one of ten variants (`--set delivery_efold=...`, which
 //! changes the first stage and so every stage after it), mostly with the
 //! shared cache, sometimes with `--no-cache`, and kills it after a random
-//! delay between zero and 1.3 times a cold run. After every trial:
+//! delay between zero and 1.2 times the run's expected length (a cold run,
+//! or a warm one once that variant has completed with the shared cache), so
+//! most trials are killed mid-run. After every trial:
 //!
 //! - every cache entry verifies (`Store::verify`, as `hadal cache verify`);
 //! - if the output directory has a `manifest.json`, it parses and every
@@ -24,19 +26,24 @@
 //! output directory (it removes those of killed runs); `hadal cache verify`
 //! passes; `hadal cache gc` removes the cache's temporary files; the outputs
 //! are byte-identical to a clean run with a fresh cache (the manifest's
-//! `compared` part equal) and `hadal verify` accepts them. Then, when run as
-//! root, a full disk (a 64 KiB and a 220 KiB tmpfs): a clear error, exit 2,
-//! and the previous complete outputs left intact.
+//! `compared` part equal) and `hadal verify` accepts them.
+//!
+//! Then concurrency: eight processes at once on one fresh cache and one
+//! output root (four variants, so they compute and store the same stages at
+//! the same moment), and four at once into one directory; every output
+//! equals the serial run of its variant. Then, when run as root, a full
+//! disk (a 64 KiB and a 220 KiB tmpfs): a clear error, exit 2, and the
+//! previous complete outputs left intact.
 //!
 //! Ensemble trials (`hadal ensemble`) are a separate section, off by
 //! default: `--ensemble` runs them too (see `ensemble_trials`).
 //!
-//! Options: `--trials N` (50), `--seed S` (1), `--hadal PATH` (default
+//! Options: `--trials N` (100), `--seed S` (1), `--hadal PATH` (default
 //! `target/release/hadal`), `--keep` (keep the work directory), `--ensemble`,
 //! `--ensemble-trials N` (20). Exit status 0 when every check passed.
 
+// Only its random number generator is used here.
 #[path = "../tests/support/fuzzer.rs"]
-#[allow(dead_code)]
 mod fuzzer;
 
 use std::collections::BTreeMap;
@@ -75,7 +82,7 @@ impl Findings {
 fn main() {
     let root = PathBuf::from(env!("CARGO_MANIFEST_DIR"));
     let mut o = Options {
-        trials: 50,
+        trials: 100,
         seed: 1,
         hadal: root.join("target/release/hadal"),
         keep: false,
@@ -91,7 +98,7 @@ fn main() {
             })
         };
         match a.as_str() {
-            "--trials" => o.trials = value().parse().unwrap_or(50),
+            "--trials" => o.trials = value().parse().unwrap_or(100),
             "--seed" => o.seed = value().parse().unwrap_or(1),
             "--hadal" => o.hadal = PathBuf::from(value()),
             "--keep" => o.keep = true,
@@ -110,6 +117,8 @@ fn main() {
         );
         std::process::exit(2);
     }
+    // Children run in the project directory: use an absolute path.
+    o.hadal = std::fs::canonicalize(&o.hadal).unwrap_or(o.hadal);
     let work = tempfile::Builder::new()
         .prefix("hadal-crash-")
         .tempdir()
@@ -118,7 +127,8 @@ fn main() {
     println!("crash: work directory {}", w.display());
     let mut f = Findings::default();
     let project = make_project(&root, &w);
-    run_trials(&o, &w, &project, &mut f);
+    let reference = run_trials(&o, &w, &project, &mut f);
+    concurrent(&o, &w, &project, &reference, &mut f);
     disk_full(&o, &w, &project, &mut f);
     if o.ensemble {
         ensemble_trials(&o, &w, &project, &mut f);
@@ -239,8 +249,10 @@ fn files_of(dir: &Path) -> BTreeMap<String, Vec<u8>> {
     out
 }
 
+/// A temporary file: `fsutil`'s `.NAME.tmp-HOST-PID-N`, or any other
+/// hidden `.NAME.tmp-...` a writer may use.
 fn is_temp(name: &str) -> bool {
-    hadal::fsutil::temp_owner(name).is_some()
+    hadal::fsutil::temp_owner(name).is_some() || (name.starts_with('.') && name.contains(".tmp-"))
 }
 
 /// Temporary files anywhere below `dir`.
@@ -306,7 +318,13 @@ fn check_cache(cache: &Path, f: &mut Findings, when: &str) -> u64 {
 
 // ---- run trials ---------------------------------------------------------------
 
-fn run_trials(o: &Options, w: &Path, project: &Path, f: &mut Findings) {
+/// The trials; returns the clean outputs of every variant.
+fn run_trials(
+    o: &Options,
+    w: &Path,
+    project: &Path,
+    f: &mut Findings,
+) -> Vec<BTreeMap<String, Vec<u8>>> {
     // Clean runs of every variant, each with a fresh cache: the reference
     // bytes, and how long a cold run takes.
     let mut reference: Vec<BTreeMap<String, Vec<u8>>> = Vec::new();
@@ -324,7 +342,7 @@ fn run_trials(o: &Options, w: &Path, project: &Path, f: &mut Findings) {
                 "clean run of variant {v} failed: {}",
                 String::from_utf8_lossy(&r.stderr)
             ));
-            return;
+            return reference;
         }
         reference.push(files_of(&out));
     }
@@ -334,14 +352,33 @@ fn run_trials(o: &Options, w: &Path, project: &Path, f: &mut Findings) {
         cold.as_secs_f64() * 1e3,
         VARIANTS
     );
+    // A run whose stages are all cached is much quicker: time one.
+    let t = Instant::now();
+    let r = hadal_run(
+        o,
+        project,
+        &w.join("clean-cache/0"),
+        &w.join("warm"),
+        &[],
+        false,
+    )
+    .output()
+    .expect("run hadal");
+    let warm = t.elapsed();
+    f.check(r.status.success(), "a warm run failed");
+    println!("  warm run {:.0} ms", warm.as_secs_f64() * 1e3);
     let cache = w.join("cache");
     let out = w.join("out");
     let mut rng = Rng::new(o.seed);
+    // Variants that have completed once with the shared cache: their runs
+    // are warm from then on, and are killed within a warm run's time.
+    let mut cached = [false; VARIANTS];
     let (mut killed, mut finished, mut temps_seen) = (0, 0, 0);
     for trial in 0..o.trials {
         let v = rng.below(VARIANTS);
         let no_cache = rng.one_in(10);
-        let delay = cold.mul_f64(1.3 * rng.below(1000) as f64 / 1000.0);
+        let expected = if cached[v] && !no_cache { warm } else { cold };
+        let delay = expected.mul_f64(1.2 * rng.below(1000) as f64 / 1000.0);
         let mut child = hadal_run(o, project, &cache, &out, &variant_sets(v), no_cache)
             .spawn()
             .expect("spawn hadal");
@@ -352,6 +389,7 @@ fn run_trials(o: &Options, w: &Path, project: &Path, f: &mut Findings) {
         let status = child.wait().expect("wait for hadal");
         if done_before {
             finished += 1;
+            cached[v] |= !no_cache;
             if !status.success() {
                 f.fail(format!("trial {trial}: an unkilled run failed ({status})"));
             }
@@ -463,6 +501,83 @@ fn run_trials(o: &Options, w: &Path, project: &Path, f: &mut Findings) {
         ),
     );
     println!("  final run: outputs identical to a clean run, `hadal verify` accepts them");
+    reference
+}
+
+/// Outputs equal to a clean run's (the manifest's compared part).
+fn same_outputs(got: &BTreeMap<String, Vec<u8>>, want: &BTreeMap<String, Vec<u8>>) -> bool {
+    got.len() == want.len()
+        && want.iter().all(|(name, bytes)| {
+            if name == "manifest.json" {
+                got.get(name).and_then(|b| compared(b)) == compared(bytes)
+            } else {
+                got.get(name) == Some(bytes)
+            }
+        })
+}
+
+// ---- concurrency ------------------------------------------------------------------
+
+/// Eight processes at once on one fresh cache and one output root, four
+/// variants between them (so they compute and store the same stages at the
+/// same time); then four at once into the very same directory. Every
+/// output must equal the serial clean run of its variant.
+fn concurrent(
+    o: &Options,
+    w: &Path,
+    project: &Path,
+    reference: &[BTreeMap<String, Vec<u8>>],
+    f: &mut Findings,
+) {
+    if reference.len() < VARIANTS {
+        return;
+    }
+    let cache = w.join("concurrent-cache");
+    let root = w.join("concurrent");
+    let spawn = |v: usize, out: &Path| {
+        hadal_run(o, project, &cache, out, &variant_sets(v), false)
+            .spawn()
+            .expect("spawn hadal")
+    };
+    let children: Vec<_> = (0..8)
+        .map(|k| (k % 4, spawn(k % 4, &root.join(format!("p{k}")))))
+        .collect();
+    for (k, (v, child)) in children.into_iter().enumerate() {
+        let r = child.wait_with_output().expect("wait for hadal");
+        f.check(
+            r.status.success(),
+            format!(
+                "concurrent run {k} failed: {}",
+                String::from_utf8_lossy(&r.stderr)
+            ),
+        );
+        f.check(
+            same_outputs(&files_of(&root.join(format!("p{k}"))), &reference[v]),
+            format!("concurrent run {k} (variant {v}) differs from its serial run"),
+        );
+    }
+    let same = root.join("same");
+    let children: Vec<_> = (0..4).map(|_| spawn(0, &same)).collect();
+    for child in children {
+        let r = child.wait_with_output().expect("wait for hadal");
+        f.check(
+            r.status.success(),
+            format!(
+                "a run sharing its output directory failed: {}",
+                String::from_utf8_lossy(&r.stderr)
+            ),
+        );
+    }
+    f.check(
+        same_outputs(&files_of(&same), &reference[0]),
+        "four runs into one directory left outputs that differ from a serial run",
+    );
+    f.check(
+        temps_below(&root).is_empty(),
+        "concurrent runs left temporary files",
+    );
+    check_cache(&cache, f, "after the concurrent runs");
+    println!("concurrency: 8 processes on one cache (4 variants) and 4 into one directory: outputs identical to serial runs");
 }
 
 // ---- disk full ----------------------------------------------------------------
@@ -654,8 +769,14 @@ fn ensemble_trials(o: &Options, w: &Path, project: &Path, f: &mut Findings) {
             );
         }
     }
+    let seen = temps_below(&out).len();
     let r = ensemble(&cache, &out).output().expect("run hadal");
     f.check(r.status.success(), "the final ensemble run failed");
+    let left = temps_below(&out);
+    f.check(
+        left.is_empty(),
+        format!("{} temporary files left in the ensemble output after a full run ({seen} before it): {left:?}", left.len()),
+    );
     let got = files_of(&out);
     for (name, bytes) in &reference {
         if name == "manifest.json" {

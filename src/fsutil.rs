@@ -74,8 +74,10 @@ fn host_name() -> Option<String> {
     std::env::var("COMPUTERNAME").ok()
 }
 
-/// The temporary file for `path`.
-fn temp_path(path: &Path) -> PathBuf {
+/// A new temporary file name for `path`, in its directory, that
+/// [`remove_stale_temps`] recognizes: for writers that stream a file and
+/// rename it themselves.
+pub fn temp_path(path: &Path) -> PathBuf {
     let dir = parent(path);
     let name = path
         .file_name()
@@ -310,5 +312,27 @@ mod tests {
         assert!(names.iter().all(|n| !n.contains(".tmp-")), "{names:?}");
         // The old marker is gone: the set is known to be incomplete.
         assert!(!d.join("m.json").exists());
+    }
+
+    #[test]
+    fn a_group_that_cannot_be_written_leaves_the_old_set_intact() {
+        let dir = tempfile::tempdir().unwrap();
+        let d = dir.path();
+        write_group(d, &[("a.csv", b"a1"), ("m.json", b"1")], "m.json").unwrap();
+        // The second file cannot even be created (as on a full disk): the
+        // first one's temporary file is removed and nothing is renamed.
+        let err = write_group(
+            d,
+            &[("a.csv", b"a2"), ("b\0.csv", b"b2"), ("m.json", b"2")],
+            "m.json",
+        );
+        assert!(err.is_err());
+        assert_eq!(std::fs::read(d.join("a.csv")).unwrap(), b"a1");
+        assert_eq!(std::fs::read(d.join("m.json")).unwrap(), b"1");
+        let names: Vec<String> = std::fs::read_dir(d)
+            .unwrap()
+            .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+            .collect();
+        assert_eq!(names.len(), 2, "{names:?}");
     }
 }

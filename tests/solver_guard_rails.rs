@@ -127,3 +127,110 @@ fn a_negative_capacity_in_a_fill_makes_a_diagnostic_not_a_panic() {
     let p = r.expect_err("must fail");
     assert!(p.code.starts_with("H06"), "{}: {}", p.code, p.message);
 }
+
+/// The check's first error for a scenario.
+fn check_err(text: &str) -> Problem {
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("s.hadal");
+    std::fs::write(&path, text).unwrap();
+    match check_text("s.hadal", &path, text, dir.path(), &CheckOptions::default()) {
+        Ok(_) => panic!("expected a check error"),
+        Err(hadal::check::CheckError::Invalid { problems, .. }) => {
+            problems.into_iter().next().unwrap()
+        }
+        Err(hadal::check::CheckError::Io { message, .. }) => panic!("I/O: {message}"),
+    }
+}
+
+#[test]
+fn a_non_finite_start_is_a_check_error_not_a_failed_first_step() {
+    let p = check_err(&format!(
+        "{HEAD}reservoir a = 1e308 kg * 10\nreservoir b = 0 kg\nflux f: a -> b = 1 kg/yr\nstage all from 2 Ga to 0 Ga\n"
+    ));
+    assert_eq!(
+        (p.code, p.message.as_str()),
+        ("H0303", "the initial value of reservoir `a` is infinite")
+    );
+    let p = check_err(&format!(
+        "{HEAD}reservoir b = 1 kg\nstate T = 0 K / 0, rate = 0 K/yr\nstage all from 2 Ga to 0 Ga\n"
+    ));
+    assert_eq!(
+        (p.code, p.message.as_str()),
+        (
+            "H0303",
+            "the initial value of state variable `T` is not a number (NaN)"
+        )
+    );
+    // A stage's `set` that overflows, too.
+    let p = check_err(&format!(
+        "{HEAD}param k = 1 kg/yr\nreservoir a = 1 kg\nreservoir b = 1 kg\nflux f: a -> b = k\n\
+         stage one from 2 Ga to 1 Ga {{\n  set k = 1e308 kg/yr * 10\n}}\nstage two from 1 Ga to 0 Ga\n"
+    ));
+    assert_eq!(
+        (p.code, p.message.as_str()),
+        ("H0303", "the value of `k` in stage `one` is not finite")
+    );
+}
+
+#[test]
+fn the_square_root_of_a_negative_at_some_age_names_stage_age_and_expression() {
+    let (p, span) = solve_err(&format!(
+        "{HEAD}reservoir a = 1e21 kg\nreservoir b = 1e20 kg\n\
+         flux leak: a -> b = 1e9 kg/yr * sqrt((age - 0.7 Ga) / 1 Gyr)\n\
+         stage early from 2 Ga to 1 Ga\nstage late from 1 Ga to 0 Ga\n"
+    ));
+    assert_eq!(p.code, "H0601", "{}", p.message);
+    assert!(
+        p.message.contains("`leak`") && p.message.contains("stage `late`"),
+        "{}",
+        p.message
+    );
+    assert!(p.message.contains("0.7"), "{}", p.message);
+    assert_eq!(span, "1e9 kg/yr * sqrt((age - 0.7 Ga) / 1 Gyr)");
+}
+
+#[test]
+fn expectations_that_cannot_be_evaluated_fail_without_a_nan_in_any_csv() {
+    let dir = tempfile::tempdir().unwrap();
+    let m = model_in(
+        dir.path(),
+        &format!(
+            "{HEAD}reservoir a = 1e21 kg\nreservoir b = 0 kg\nlet r = ln(b / a)\n\
+             event never = a < 0 kg\nstage all from 2 Ga to 0 Ga\n\
+             expect r at 1 Ga > 0\nexpect a / b at 0 Ga in 0 to 1\nexpect b / b at 0 Ga = 1 +- 0.1\n\
+             expect never before 1 Ga\n"
+        ),
+    );
+    let outcome = hadal::pipeline::execute(&m, None).expect("the run itself succeeds");
+    let results = hadal::report::expectations(&m, &outcome.run);
+    assert_eq!(results.len(), 4);
+    assert!(results.iter().all(|r| !r.pass), "none of them can pass");
+    let csvs = [
+        outcome.series_csv.clone(),
+        hadal::report::stages_csv(&m, &outcome.run),
+        hadal::report::events_csv(&m, &outcome.run),
+        hadal::report::expectations_csv(&results),
+    ];
+    for bytes in &csvs {
+        let text = String::from_utf8(bytes.clone()).unwrap();
+        assert!(!text.to_lowercase().contains("nan"), "{text}");
+    }
+}
+
+#[test]
+fn an_expectation_with_no_uncertainty_fails_without_a_nan() {
+    // `+- 1e-999 kg` is zero: the misfit of an exact hit would be 0 / 0.
+    let dir = tempfile::tempdir().unwrap();
+    let m = model_in(
+        dir.path(),
+        &format!(
+            "{HEAD}reservoir a = 1e21 kg\nstage all from 2 Ga to 0 Ga\n\
+             expect a at 0 Ga = 1e21 kg +- 1e-999 kg\nexpect a at 1 Ga = 2e21 kg +- 0 kg\n"
+        ),
+    );
+    let outcome = hadal::pipeline::execute(&m, None).expect("runs");
+    let results = hadal::report::expectations(&m, &outcome.run);
+    assert!(results.iter().all(|r| !r.pass && r.misfit == f64::INFINITY));
+    let csv = String::from_utf8(hadal::report::expectations_csv(&results)).unwrap();
+    assert!(!csv.contains("NaN"), "{csv}");
+}

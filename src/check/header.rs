@@ -422,6 +422,21 @@ impl Checker {
         let what = format!("the value of `{}`", p.text);
         if self.expect_dim(&t, want, value.span, &what) {
             self.expect_constant(&t, value.span, &what);
+            if t.constant {
+                // As for constants: a value that overflows is an error here,
+                // not a failed step in the stage.
+                let v = super::expr::eval_const_in(&self.defs, &self.tables, &x);
+                if v.is_some_and(|v| !v.is_finite()) {
+                    self.error(
+                        Problem::error(
+                            "H0303",
+                            format!("{what} in stage `{}` is not finite", stage.name),
+                        )
+                        .label(value.span, "not finite")
+                        .help("look for a division by zero or a result too large for a number"),
+                    );
+                }
+            }
         }
         if stage.sets.iter().any(|(d, _)| *d == id) {
             self.error(

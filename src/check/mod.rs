@@ -1048,7 +1048,10 @@ impl Checker {
         // One evaluator for all: each definition is folded once.
         let mut folder = expr::ConstEval::new(&model);
         for (id, def) in model.defs.iter().enumerate() {
-            if def.prelude || !matches!(def.kind, DefKind::Const | DefKind::Param) {
+            // Initial inventories and states too: the solver could only
+            // report a non-finite start as a failed first step.
+            let initial = matches!(def.kind, DefKind::Reservoir { .. } | DefKind::State { .. });
+            if def.prelude || !(initial || matches!(def.kind, DefKind::Const | DefKind::Param)) {
                 continue;
             }
             if matches!(self.slots[id], Slot::Done(t) if t.ty == expr::Ty::Error) {
@@ -1061,10 +1064,15 @@ impl Checker {
                     } else {
                         "infinite"
                     };
+                    let of = if initial {
+                        "the initial value of"
+                    } else {
+                        "the value of"
+                    };
                     self.error(
                         Problem::error(
                             "H0303",
-                            format!("the value of {} `{}` is {what}", def.kind.word(), def.name),
+                            format!("{of} {} `{}` is {what}", def.kind.word(), def.name),
                         )
                         .label(def.expr.span, "not finite")
                         .help("look for a division by zero or a result too large for a number"),

@@ -372,8 +372,13 @@ pub fn expectations_with(
                 (x, miss, pass)
             }
         };
+        // A value that cannot be evaluated, or a misfit that cannot (an
+        // uncertainty of zero, perhaps drawn by an ensemble), fails with an
+        // infinite misfit: never a NaN in expectations.csv.
         let (value, misfit) = if value.is_nan() {
             (f64::INFINITY, f64::INFINITY)
+        } else if misfit.is_nan() {
+            (value, f64::INFINITY)
         } else {
             (value, misfit)
         };

@@ -511,7 +511,10 @@ fn random_unit(rng: &mut Rng) -> String {
         if k > 0 {
             s.push_str(if rng.one_in(2) { "/" } else { "." });
         }
-        s.push_str(rng.pick(UNITS));
+        {
+            let u: &str = rng.pick::<&str>(UNITS);
+            s.push_str(u);
+        }
         if rng.one_in(3) {
             s.push('^');
             let p: &[&str] = &[
@@ -530,7 +533,10 @@ fn random_unit(rng: &mut Rng) -> String {
                 "-",
                 "",
             ];
-            s.push_str(rng.pick(p));
+            {
+                let q: &str = rng.pick::<&str>(p);
+                s.push_str(q);
+            }
         }
     }
     s
@@ -1580,7 +1586,12 @@ pub fn run_case(ws: &Workspace, case: &Case, solve: bool) -> Result<Reached, Str
         }
     }
 
-    // 4. Solve, with the span's row count and the step budget capped.
+    // 4. The dependency graph, as `hadal graph` and `hadal params` use it.
+    let graph = hadal::graph::DepGraph::build(&checked.model);
+    let _ = graph.to_dot(&checked.model);
+    let _ = hadal::graph::param_stages(&checked.model, &graph);
+
+    // 5. Solve, with the span's row count and the step budget capped.
     let mut model = checked.model;
     if !solve
         || model.is_library()
@@ -1602,18 +1613,22 @@ pub fn run_case(ws: &Workspace, case: &Case, solve: bool) -> Result<Reached, Str
             reached.solved = true;
             let stages = hadal::report::stages_csv(&model, &outcome.run);
             let events = hadal::report::events_csv(&model, &outcome.run);
+            let expectations =
+                hadal::report::expectations_csv(&hadal::report::expectations(&model, &outcome.run));
             for (name, bytes) in [
                 ("series.csv", &outcome.series_csv),
                 ("stages.csv", &stages),
                 ("events.csv", &events),
+                ("expectations.csv", &expectations),
             ] {
                 let s = String::from_utf8_lossy(bytes);
                 for cell in s.split([',', '\n']) {
                     let c = cell.trim();
-                    if c.eq_ignore_ascii_case("nan")
-                        || c.eq_ignore_ascii_case("inf")
-                        || c.eq_ignore_ascii_case("-inf")
-                    {
+                    // expectations.csv writes `inf` for a value or misfit
+                    // that cannot be evaluated (an event that never
+                    // happened); a NaN is never written anywhere.
+                    let infinite = c.eq_ignore_ascii_case("inf") || c.eq_ignore_ascii_case("-inf");
+                    if c.eq_ignore_ascii_case("nan") || (infinite && name != "expectations.csv") {
                         return Err(format!("{name} holds a non-finite cell `{c}`"));
                     }
                 }
@@ -1711,6 +1726,23 @@ impl Report {
     }
 }
 
+/// CPU time used by the calling thread so far.
+#[cfg(unix)]
+fn thread_cpu_time() -> Option<Duration> {
+    let mut ts = libc::timespec {
+        tv_sec: 0,
+        tv_nsec: 0,
+    };
+    // SAFETY: `ts` is a valid timespec to write into.
+    let rc = unsafe { libc::clock_gettime(libc::CLOCK_THREAD_CPUTIME_ID, &mut ts) };
+    (rc == 0).then(|| Duration::new(ts.tv_sec as u64, ts.tv_nsec as u32))
+}
+
+#[cfg(not(unix))]
+fn thread_cpu_time() -> Option<Duration> {
+    None
+}
+
 thread_local! {
     static PANIC_MESSAGE: RefCell<Option<String>> = const { RefCell::new(None) };
 }
@@ -1775,6 +1807,7 @@ pub fn run_campaign(
             .name(format!("fuzz case {i}"))
             .stack_size(settings.stack_bytes)
             .spawn(move || {
+                let cpu0 = thread_cpu_time();
                 let r = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
                     run_case(&ws2, &case2, solve)
                 }));
@@ -1784,19 +1817,35 @@ pub fn run_campaign(
                         .with(|m| m.borrow_mut().take())
                         .unwrap_or_else(|| "panic".into())),
                 };
-                let _ = tx.send(r);
+                let cpu = thread_cpu_time()
+                    .zip(cpu0)
+                    .map(|(b, a)| b.saturating_sub(a));
+                let _ = tx.send((r, cpu));
             })
             .expect("spawn a case thread");
         let size = case.scenario.len() + case.include.len() + case.table.len();
         let limit = settings.hang_after + settings.hang_per_mb.mul_f64(size as f64 / 1e6);
-        let result = match rx.recv_timeout(limit) {
-            Ok(r) => {
+        // The limit is on the case's own CPU time, so a busy machine (other
+        // builds, `nice`) does not make slow cases; wall time is a backstop
+        // for a case that never returns.
+        let wall_limit = limit * 10 + Duration::from_secs(10);
+        let result = match rx.recv_timeout(wall_limit) {
+            Ok((r, cpu)) => {
                 let _ = handle.join();
-                r
+                let used = cpu.unwrap_or_else(|| t0.elapsed());
+                match r {
+                    Ok(_) if used > limit => Err(format!(
+                        "hang: took {:.1} s of CPU, more than {:.1} s ({} bytes of input)",
+                        used.as_secs_f64(),
+                        limit.as_secs_f64(),
+                        size
+                    )),
+                    r => r,
+                }
             }
             Err(_) => Err(format!(
                 "hang: still running after {:.1} s ({} bytes of input)",
-                limit.as_secs_f64(),
+                wall_limit.as_secs_f64(),
                 size
             )),
         };
@@ -1818,7 +1867,7 @@ pub fn run_campaign(
                     let dir = d.join(format!("case-{}-{i}", settings.seed));
                     case.save(&dir).ok().map(|_| dir)
                 });
-                let hang = what.starts_with("hang");
+                let hang = what.starts_with("hang: still running");
                 report.failures.push(Failure {
                     index: i,
                     what,
