@@ -381,3 +381,31 @@ fn constants_that_double_each_other_fold_in_linear_time() {
         Some(1.0)
     );
 }
+
+#[cfg(unix)]
+#[test]
+fn a_pipe_as_an_include_or_a_table_is_refused_not_waited_on() {
+    // Opening a pipe with no writer would block forever.
+    let dir = tempfile::tempdir().unwrap();
+    for name in ["p.hadal", "p.csv"] {
+        let ok = std::process::Command::new("mkfifo")
+            .arg(dir.path().join(name))
+            .status()
+            .expect("mkfifo")
+            .success();
+        assert!(ok, "mkfifo failed");
+    }
+    let t = Instant::now();
+    let (p, _, line) = first_error(dir.path(), &format!("{HEAD}include \"p.hadal\"\n{TAIL}"));
+    assert_eq!((p.code, line), ("H0501", 4));
+    assert_eq!(
+        p.message,
+        "cannot read included file `p.hadal`: is not a regular file (a pipe or a device)"
+    );
+    let (p, _, _) = first_error(
+        dir.path(),
+        &format!("{HEAD}table t = \"p.csv\" (Ma, K)\n{TAIL}"),
+    );
+    assert_eq!(p.code, "H0503");
+    assert!(t.elapsed() < Duration::from_secs(30));
+}

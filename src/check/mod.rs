@@ -175,6 +175,17 @@ pub(crate) fn read_limited(path: &Path) -> Result<String, String> {
     Ok(text)
 }
 
+/// Read an included file or a table: as [`read_limited`], and only a
+/// regular file. A pipe or a device would block or never end; the
+/// scenario named on the command line may still be one (`<(...)`).
+pub(crate) fn read_project_file(path: &Path) -> Result<String, String> {
+    let meta = std::fs::metadata(path).map_err(|e| io_words(&e))?;
+    if !meta.is_file() && !meta.is_dir() {
+        return Err("is not a regular file (a pipe or a device)".into());
+    }
+    read_limited(path)
+}
+
 pub(crate) fn io_words(e: &std::io::Error) -> String {
     match e.kind() {
         std::io::ErrorKind::NotFound => "no such file".into(),
@@ -665,7 +676,8 @@ impl Checker {
             );
             return;
         }
-        let text = match read_limited(&path).and_then(|t| self.take_bytes(t.len()).map(|_| t)) {
+        let text = match read_project_file(&path).and_then(|t| self.take_bytes(t.len()).map(|_| t))
+        {
             Ok(t) => t,
             Err(why) => {
                 self.error(

@@ -125,7 +125,7 @@ fn nesting_problem(text: &str, file: u32) -> Option<Problem> {
     let mut escaped = false;
     let bytes = text.as_bytes();
     for (i, c) in text.char_indices() {
-        if c == '\n' {
+        if c == '\n' || c == '\r' {
             (depth, ifs, in_string, in_comment, escaped) = (0, 0, false, false, false);
             continue;
         }
