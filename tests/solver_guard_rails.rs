@@ -234,3 +234,32 @@ fn an_expectation_with_no_uncertainty_fails_without_a_nan() {
     let csv = String::from_utf8(hadal::report::expectations_csv(&results)).unwrap();
     assert!(!csv.contains("NaN"), "{csv}");
 }
+
+#[test]
+fn a_stage_without_any_state_that_cannot_step_names_the_stage() {
+    // No reservoir and no state: the step collapse has no term to blame.
+    let (p, span) = solve_err(&format!(
+        "{HEAD}stage all from 2 Ga to 0 Ga {{\n  solver max_step = 1e-150 yr\n}}\n"
+    ));
+    assert_eq!(p.code, "H0603", "{}", p.message);
+    assert!(p.message.contains("stage `all`"), "{}", p.message);
+    assert!(span.starts_with("stage all from 2 Ga to 0 Ga"), "{span}");
+}
+
+#[test]
+fn inventories_near_the_largest_number_close_their_budget_without_overflow() {
+    // The sum of the inventories overflows although each is finite.
+    let dir = tempfile::tempdir().unwrap();
+    let m = model_in(
+        dir.path(),
+        &format!(
+            "{HEAD}reservoir a = 1.7976931348623157e308 kg\nreservoir b = 1.7e308 kg\n\
+             flux f: a -> b = 1e290 kg/yr\nstage all from 2 Ga to 0 Ga\n"
+        ),
+    );
+    let run = hadal::solve::solve(&m).expect("solves");
+    let closure = run.stages[0].closure_error;
+    assert!(closure.is_finite() && closure < 1e-12, "{closure}");
+    let csv = String::from_utf8(hadal::report::stages_csv(&m, &run)).unwrap();
+    assert!(!csv.contains("inf") && !csv.contains("NaN"), "{csv}");
+}
