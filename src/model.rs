@@ -469,7 +469,13 @@ impl Model {
     /// enter it.
     pub fn canonical_def(&self, id: DefId) -> String {
         let d = &self.defs[id];
-        let mut out = format!("{} {} [{:?}] = ", d.kind.word(), d.name, d.dim);
+        let mut out = String::with_capacity(128);
+        out.push_str(d.kind.word());
+        out.push(' ');
+        out.push_str(&d.name);
+        out.push_str(" [");
+        d.dim.push_debug(&mut out);
+        out.push_str("] = ");
         out.push_str(&self.canonical_expr(&d.expr));
         match &d.kind {
             DefKind::Reservoir { capacity: Some(c) } => {

@@ -19,7 +19,17 @@ const LAYOUT: &str = "v1";
 pub type Key = [u8; 32];
 
 pub fn key_hex(k: &Key) -> String {
-    k.iter().map(|b| format!("{b:02x}")).collect()
+    let mut out = Vec::with_capacity(64);
+    push_hex(&mut out, k);
+    String::from_utf8(out).unwrap_or_default()
+}
+
+/// Lower-case hex of `bytes`, appended to `out`.
+pub fn push_hex(out: &mut Vec<u8>, bytes: &[u8]) {
+    const DIGITS: &[u8; 16] = b"0123456789abcdef";
+    for b in bytes {
+        out.extend_from_slice(&[DIGITS[usize::from(b >> 4)], DIGITS[usize::from(b & 15)]]);
+    }
 }
 
 #[derive(Debug, Clone)]
@@ -69,26 +79,53 @@ impl Store {
     /// present but corrupt (the entry is then removed, so the caller
     /// recomputes and writes it afresh).
     pub fn get(&self, key: &Key) -> Result<Option<Vec<u8>>, Corrupt> {
+        let mut out = Vec::new();
+        Ok(self.get_into(key, &mut out)?.then_some(out))
+    }
+
+    /// Like [`Store::get`], appending the payload to `out` (read in place,
+    /// without an intermediate buffer); `Ok(false)` when absent. On any
+    /// error `out` is left as it was.
+    pub fn get_into(&self, key: &Key, out: &mut Vec<u8>) -> Result<bool, Corrupt> {
+        use std::io::Read;
         let path = self.path(key);
-        let bytes = match std::fs::read(&path) {
-            Ok(b) => b,
-            Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(None),
-            Err(e) => {
-                return Err(Corrupt {
-                    path,
-                    why: e.to_string(),
-                })
-            }
+        let corrupt = |e: std::io::Error, path: PathBuf| Corrupt {
+            path,
+            why: e.to_string(),
         };
-        match decode(&bytes, Some(key)) {
-            Ok(payload) => {
-                // Mark as recently used, for `gc --max-size`.
-                if let Ok(f) = std::fs::File::options().write(true).open(&path) {
-                    let _ = f.set_modified(SystemTime::now());
+        let mut file = match std::fs::File::open(&path) {
+            Ok(f) => f,
+            Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(false),
+            Err(e) => return Err(corrupt(e, path)),
+        };
+        let meta = file.metadata().ok();
+        let base = out.len();
+        out.reserve(meta.as_ref().map_or(0, |m| m.len() as usize));
+        if let Err(e) = file.read_to_end(out) {
+            out.truncate(base);
+            return Err(corrupt(e, path));
+        }
+        match decode(&out[base..], Some(key)).map(|p| p.len()) {
+            Ok(len) => {
+                // Mark as recently used, for `gc --max-size`, through the
+                // open file (it fails harmlessly where we are not the
+                // owner); at most once a minute per entry.
+                let now = SystemTime::now();
+                let stale = meta
+                    .and_then(|m| m.modified().ok())
+                    .and_then(|t| now.duration_since(t).ok())
+                    .is_none_or(|age| age > Duration::from_secs(60));
+                if stale {
+                    let _ = file.set_modified(now);
                 }
-                Ok(Some(payload.to_vec()))
+                let start = base + HEADER;
+                out.copy_within(start..start + len, base);
+                out.truncate(base + len);
+                Ok(true)
             }
             Err(why) => {
+                out.truncate(base);
+                drop(file);
                 let _ = std::fs::remove_file(&path);
                 Err(Corrupt { path, why })
             }
@@ -106,11 +143,8 @@ impl Store {
         bytes.extend_from_slice(key);
         bytes.extend_from_slice(&(payload.len() as u64).to_le_bytes());
         bytes.extend_from_slice(payload);
-        let mut h = blake3::Hasher::new();
-        h.update(key);
-        h.update(payload);
-        bytes.extend_from_slice(h.finalize().as_bytes());
-        crate::fsutil::write_atomic(&path, &bytes)
+        bytes.extend_from_slice(entry_hash(key, payload).as_bytes());
+        crate::fsutil::write_atomic_entry(&path, &bytes)
     }
 
     fn entries(&self) -> Vec<PathBuf> {
@@ -252,8 +286,19 @@ fn parse_hex(s: &str) -> Option<Key> {
     Some(k)
 }
 
+/// The checksum of an entry: blake3 of key and payload.
+fn entry_hash(key: &[u8], payload: &[u8]) -> blake3::Hash {
+    let mut h = blake3::Hasher::new();
+    h.update(key);
+    h.update(payload);
+    h.finalize()
+}
+
+/// Magic, key and payload length.
+const HEADER: usize = MAGIC.len() + 32 + 8;
+
 fn decode<'a>(bytes: &'a [u8], key: Option<&Key>) -> Result<&'a [u8], String> {
-    let header = MAGIC.len() + 32 + 8;
+    let header = HEADER;
     if bytes.len() < header + 32 {
         return Err(format!("truncated ({} bytes)", bytes.len()));
     }
@@ -277,10 +322,7 @@ fn decode<'a>(bytes: &'a [u8], key: Option<&Key>) -> Result<&'a [u8], String> {
         ));
     }
     let payload = &bytes[header..header + len];
-    let mut h = blake3::Hasher::new();
-    h.update(stored_key);
-    h.update(payload);
-    if h.finalize().as_bytes() != &bytes[header + len..] {
+    if entry_hash(stored_key, payload).as_bytes() != &bytes[header + len..] {
         return Err("checksum mismatch (the entry was altered)".into());
     }
     Ok(payload)

@@ -213,7 +213,10 @@ pub fn canonical_node(model: &Model, n: Node) -> String {
                 // The current value of a state component: its place in the
                 // (name-ordered) state vector is what the solve reads.
                 DefKind::Reservoir { .. } | DefKind::State { .. } => {
-                    format!("{} {} [{:?}]", def.kind.word(), def.name, def.dim)
+                    let mut out = format!("{} {} [", def.kind.word(), def.name);
+                    def.dim.push_debug(&mut out);
+                    out.push(']');
+                    out
                 }
                 _ => model.canonical_def(d),
             }

@@ -16,6 +16,7 @@
 
 use std::collections::BTreeMap;
 use std::path::PathBuf;
+use std::rc::Rc;
 
 use crate::cache::{key_hex, Key, Store};
 use crate::compile;
@@ -52,6 +53,8 @@ pub struct StageReport {
 
 #[derive(Debug, Clone)]
 pub struct Outcome {
+    /// The solved stages. Their `rows` are left empty: the series holds
+    /// them, and a rerun from the cache need not decode them.
     pub run: Run,
     pub stages: Vec<StageReport>,
     /// The series CSV bytes, and its row count.
@@ -62,10 +65,13 @@ pub struct Outcome {
 }
 
 /// Labelled parts of a fingerprint, sorted by label.
-type Parts = BTreeMap<String, String>;
+/// (Shared strings: the same definition texts recur in every stage.)
+type Parts = BTreeMap<Rc<str>, Rc<str>>;
 
 fn bits(v: f64) -> String {
-    format!("{:016x}", v.to_bits())
+    let mut out = Vec::with_capacity(16);
+    crate::cache::push_hex(&mut out, &v.to_bits().to_be_bytes());
+    String::from_utf8(out).unwrap_or_default()
 }
 
 fn hash_parts(kind: &str, parts: &Parts) -> Key {
@@ -81,62 +87,131 @@ fn hash_parts(kind: &str, parts: &Parts) -> Key {
     *h.finalize().as_bytes()
 }
 
+/// Labels and canonical texts of graph nodes, each built once per run:
+/// stages and series parts share most of their definitions.
+#[derive(Default)]
+struct Canon(std::collections::HashMap<Node, (Rc<str>, Rc<str>)>);
+
+impl Canon {
+    fn get(&mut self, model: &Model, n: Node) -> &(Rc<str>, Rc<str>) {
+        self.0.entry(n).or_insert_with(|| {
+            let label = format!("def {}", graph::node_name(model, n));
+            (label.into(), graph::canonical_node(model, n).into())
+        })
+    }
+}
+
 /// The canonical parts of the nodes in `closure`, with parameters at their
 /// effective values in `stage`.
 fn closure_parts(
     model: &Model,
     closure: &std::collections::BTreeSet<Node>,
     params: &[Option<f64>],
+    canon: &mut Canon,
     parts: &mut Parts,
 ) {
     for &n in closure {
-        let label = format!("def {}", graph::node_name(model, n));
+        let (label, text) = canon.get(model, n);
         let text = match n {
-            Node::Def(d) if matches!(model.defs[d].kind, DefKind::Param) => {
-                format!(
-                    "param {} = {}",
-                    model.defs[d].name,
-                    params[d].map_or("?".into(), bits)
-                )
-            }
-            _ => graph::canonical_node(model, n),
+            Node::Def(d) if matches!(model.defs[d].kind, DefKind::Param) => format!(
+                "param {} = {}",
+                model.defs[d].name,
+                params[d].map_or("?".into(), bits)
+            )
+            .into(),
+            _ => text.clone(),
         };
-        parts.insert(label, text);
+        parts.insert(label.clone(), text);
+    }
+}
+
+/// What every stage's fingerprint reads from the model as a whole.
+struct RunWide {
+    report_ages: Vec<f64>,
+    probe_ages: Vec<f64>,
+    layout: Rc<str>,
+    canon: Canon,
+    params: Vec<Option<Rc<Vec<Option<f64>>>>>,
+}
+
+impl RunWide {
+    fn new(model: &Model) -> RunWide {
+        let layout: Vec<&str> = compile::state_order(model)
+            .iter()
+            .map(|&d| model.defs[d].name.as_str())
+            .collect();
+        RunWide {
+            report_ages: solve::report_ages(model),
+            probe_ages: solve::probe_ages(model),
+            layout: layout.join(",").into(),
+            canon: Canon::default(),
+            params: vec![None; model.stages.len()],
+        }
+    }
+
+    /// Parameter values in effect in stage `s`.
+    fn params(&mut self, model: &Model, s: usize) -> Rc<Vec<Option<f64>>> {
+        self.params[s]
+            .get_or_insert_with(|| Rc::new(compile::stage_params(model, Some(s))))
+            .clone()
     }
 }
 
 /// Everything a stage's result depends on, except the start state.
 pub fn stage_parts(model: &Model, g: &DepGraph, s: usize, events_done: &[bool]) -> Parts {
+    stage_parts_with(model, g, s, events_done, &mut RunWide::new(model))
+}
+
+fn stage_parts_with(
+    model: &Model,
+    g: &DepGraph,
+    s: usize,
+    events_done: &[bool],
+    wide: &mut RunWide,
+) -> Parts {
     let st = &model.stages[s];
     let mut parts = Parts::new();
     let closure = g.stage_closure(model, s);
-    let params = compile::stage_params(model, Some(s));
-    closure_parts(model, &closure, &params, &mut parts);
+    let params = wide.params(model, s);
+    closure_parts(model, &closure, &params, &mut wide.canon, &mut parts);
     parts.insert(
         "span".into(),
-        format!("{} {}", bits(st.start_age), bits(st.end_age)),
+        format!("{} {}", bits(st.start_age), bits(st.end_age)).into(),
     );
-    let ages = solve::report_ages(model);
-    let rows: Vec<String> = ages
-        .iter()
-        .filter(|&&a| a <= st.start_age && a >= st.end_age && (s == 0 || a < st.start_age))
-        .map(|&a| bits(a))
-        .collect();
-    parts.insert("report ages".into(), rows.join(","));
-    let probes: Vec<String> = solve::stage_rows(model, s, &solve::probe_ages(model))
-        .iter()
-        .map(|&a| bits(a))
-        .collect();
-    parts.insert("expectation ages".into(), probes.join(","));
-    parts.insert("solver settings".into(), format!("{:?}", st.solver));
-    parts.insert("span start".into(), bits(model.start_age));
-    let layout: Vec<&str> = compile::state_order(model)
-        .iter()
-        .map(|&d| model.defs[d].name.as_str())
-        .collect();
-    parts.insert("state layout".into(), layout.join(","));
-    parts.insert("events already seen".into(), format!("{events_done:?}"));
+    parts.insert(
+        "report ages".into(),
+        joined_bits(
+            wide.report_ages
+                .iter()
+                .copied()
+                .filter(|&a| a <= st.start_age && a >= st.end_age && (s == 0 || a < st.start_age)),
+        )
+        .into(),
+    );
+    parts.insert(
+        "expectation ages".into(),
+        joined_bits(solve::stage_rows(model, s, &wide.probe_ages).into_iter()).into(),
+    );
+    parts.insert("solver settings".into(), format!("{:?}", st.solver).into());
+    parts.insert("span start".into(), bits(model.start_age).into());
+    parts.insert("state layout".into(), wide.layout.clone());
+    parts.insert(
+        "events already seen".into(),
+        format!("{events_done:?}").into(),
+    );
     parts
+}
+
+/// Ages as comma-separated 16-digit hex bit patterns.
+fn joined_bits(ages: impl Iterator<Item = f64>) -> String {
+    let mut out = Vec::new();
+    for (k, a) in ages.enumerate() {
+        if k > 0 {
+            out.push(b',');
+        }
+        crate::cache::push_hex(&mut out, &a.to_bits().to_be_bytes());
+    }
+    String::from_utf8(out).unwrap_or_default()
 }
 
 // ---- payload encoding ----------------------------------------------------
@@ -251,12 +326,27 @@ pub fn encode_stage(r: &StageRun) -> Vec<u8> {
 }
 
 pub fn decode_stage(stage: usize, bytes: &[u8]) -> Option<StageRun> {
+    decode_stage_with(stage, bytes, true).map(|(r, _)| r)
+}
+
+/// Decode a stage payload; with `rows` false the report rows are checked
+/// for length and skipped, leaving `rows` empty (most reruns need only the
+/// end state, probes and statistics). Also gives the number of rows.
+fn decode_stage_with(stage: usize, bytes: &[u8], rows: bool) -> Option<(StageRun, usize)> {
     let mut r = R(bytes);
     if r.u64()? != PAYLOAD_VERSION {
         return None;
     }
     let n = r.len(1 << 24)?;
-    let rows = read_rows(&mut r, n, bytes.len())?;
+    let (rows, row_count) = if rows {
+        let rows = read_rows(&mut r, n, bytes.len())?;
+        let count = rows.len();
+        (rows, count)
+    } else {
+        let count = r.len(1 << 28)?;
+        r.take(count.checked_mul(n + 1)?.checked_mul(8)?)?;
+        (Vec::new(), count)
+    };
     let probes = read_rows(&mut r, n, bytes.len())?;
     let mut end = Vec::with_capacity(n);
     for _ in 0..n {
@@ -284,27 +374,88 @@ pub fn decode_stage(stage: usize, bytes: &[u8]) -> Option<StageRun> {
     if !r.0.is_empty() {
         return None;
     }
-    Some(StageRun {
-        stage,
-        rows,
-        probes,
-        end: State(end),
-        stats,
-        method,
-        closure_error,
-        events,
-        wall: std::time::Duration::ZERO,
-    })
+    Some((
+        StageRun {
+            stage,
+            rows,
+            probes,
+            end: State(end),
+            stats,
+            method,
+            closure_error,
+            events,
+            wall: std::time::Duration::ZERO,
+        },
+        row_count,
+    ))
 }
 
 // ---- why a stage was recomputed ------------------------------------------
 
 /// Hashes of each part of each stage's fingerprint at the last run of a
 /// scenario, kept beside the store to explain what changed. A hint only: it
-/// never decides reuse.
-#[derive(Debug, Default, serde::Serialize, serde::Deserialize)]
+/// never decides reuse. Text, a block per stage:
+///
+/// ```text
+/// stage<TAB>NAME<TAB>FINGERPRINT
+/// <TAB>LABEL<TAB>HASH        (one line per part of the fingerprint)
+/// ```
+///
+/// Parts are a function of the fingerprint, so a rerun whose fingerprints
+/// all match reads only the stage lines and leaves the file alone.
+#[derive(Default)]
 struct Trace {
-    stages: BTreeMap<String, BTreeMap<String, String>>,
+    text: String,
+}
+
+impl Trace {
+    fn read(path: &std::path::Path) -> Trace {
+        Trace {
+            text: std::fs::read_to_string(path).unwrap_or_default(),
+        }
+    }
+
+    /// The fingerprint and the part lines of stage `name`.
+    fn block(&self, name: &str) -> Option<(&str, &str)> {
+        let mut rest = self.text.as_str();
+        while let Some(i) = rest.find("stage\t") {
+            rest = &rest[i + "stage\t".len()..];
+            let line_end = rest.find('\n').unwrap_or(rest.len());
+            let (head, tail) = rest.split_at(line_end);
+            let tail = tail.strip_prefix('\n').unwrap_or(tail);
+            let parts_end = tail.find("stage\t").unwrap_or(tail.len());
+            if let Some((n, fp)) = head.split_once('\t') {
+                if n == name {
+                    return Some((fp, &tail[..parts_end]));
+                }
+            }
+            rest = tail;
+        }
+        None
+    }
+
+    fn parts(&self, name: &str) -> Option<BTreeMap<String, String>> {
+        let (_, lines) = self.block(name)?;
+        Some(
+            lines
+                .lines()
+                .filter_map(|l| l.strip_prefix('\t')?.split_once('\t'))
+                .map(|(k, v)| (k.to_owned(), v.to_owned()))
+                .collect(),
+        )
+    }
+}
+
+fn part_lines(hashes: &BTreeMap<String, String>) -> String {
+    let mut out = String::new();
+    for (k, v) in hashes {
+        out.push('\t');
+        out.push_str(k);
+        out.push('\t');
+        out.push_str(v);
+        out.push('\n');
+    }
+    out
 }
 
 fn trace_path(store: &Store, model: &Model) -> PathBuf {
@@ -319,7 +470,7 @@ fn trace_path(store: &Store, model: &Model) -> PathBuf {
             }
         })
         .collect();
-    store.root().join("traces").join(format!("{safe}.json"))
+    store.root().join("traces").join(format!("{safe}.txt"))
 }
 
 fn part_hashes(parts: &Parts) -> BTreeMap<String, String> {
@@ -327,7 +478,7 @@ fn part_hashes(parts: &Parts) -> BTreeMap<String, String> {
         .iter()
         .map(|(k, v)| {
             (
-                k.clone(),
+                k.to_string(),
                 blake3::hash(v.as_bytes()).to_hex()[..16].to_string(),
             )
         })
@@ -385,7 +536,7 @@ pub fn stage_key(
     let mut parts = stage_parts(model, g, s, events_done);
     parts.insert(
         "start state".into(),
-        blake3::hash(&state.to_bytes()).to_hex().to_string(),
+        blake3::hash(&state.to_bytes()).to_hex().as_str().into(),
     );
     hash_parts("hadal stage", &parts)
 }
@@ -393,55 +544,56 @@ pub fn stage_key(
 /// Run every stage, reusing cached ones where the fingerprint matches.
 pub fn execute(model: &Model, store: Option<&Store>) -> Result<Outcome, Problem> {
     let g = DepGraph::build(model);
+    let mut wide = RunWide::new(model);
     let mut warnings = Vec::new();
-    let previous: Trace = store
-        .and_then(|s| std::fs::read(trace_path(s, model)).ok())
-        .and_then(|b| serde_json::from_slice(&b).ok())
-        .unwrap_or_default();
-    let mut trace = Trace::default();
+    let previous = store.map_or_else(Trace::default, |s| Trace::read(&trace_path(s, model)));
+    let mut trace = String::new();
     let event_ids = solve::event_defs(model);
     let mut events: Vec<Option<f64>> = vec![None; event_ids.len()];
     let mut state = solve::initial_state(model);
     let mut runs = Vec::new();
     let mut reports = Vec::new();
-    let mut solved_hash = blake3::Hasher::new();
+    let mut keys = Vec::new();
+    // Payloads of reused stages, whose rows are decoded only if a part of
+    // the series must be derived again.
+    let mut payloads: Vec<Option<(usize, Vec<u8>)>> = Vec::new();
     for s in 0..model.stages.len() {
         let done: Vec<bool> = events.iter().map(Option::is_some).collect();
-        let mut parts = stage_parts(model, &g, s, &done);
+        let mut parts = stage_parts_with(model, &g, s, &done, &mut wide);
         parts.insert(
             "start state".into(),
-            blake3::hash(&state.to_bytes()).to_hex().to_string(),
+            blake3::hash(&state.to_bytes()).to_hex().as_str().into(),
         );
         let key = hash_parts("hadal stage", &parts);
-        let hashes = part_hashes(&parts);
         let stage_name = model.stages[s].name.clone();
+        let fingerprint = key_hex(&key);
+        // The same fingerprint has the same parts: hash them only when new.
+        let hashes = match previous.block(&stage_name) {
+            Some((fp, lines)) if fp == fingerprint => Err(lines.to_owned()),
+            _ => Ok(part_hashes(&parts)),
+        };
         let mut cached = None;
         if let Some(store) = store {
             match store.get(&key) {
-                Ok(Some(bytes)) => match decode_stage(s, &bytes) {
-                    Some(r) if r.end.0.len() == state.0.len() => cached = Some((r, bytes)),
+                Ok(Some(bytes)) => match decode_stage_with(s, &bytes, false) {
+                    Some((r, count)) if r.end.0.len() == state.0.len() => {
+                        cached = Some((r, count, bytes))
+                    }
                     _ => warnings.push(
                         Problem::warning("H0701", format!("cache entry for stage `{stage_name}` could not be decoded; recomputed"))
                             .help("run `hadal cache verify`; the entry was written by another engine version or damaged"),
                     ),
                 },
                 Ok(None) => {}
-                Err(c) => warnings.push(
-                    Problem::warning(
-                        "H0701",
-                        format!("cache entry {} for stage `{stage_name}` is corrupt ({}); it was discarded and the stage recomputed", c.path.display(), c.why),
-                    )
-                    .help("nothing corrupt is ever used; run `hadal cache verify` to check the rest of the cache"),
-                ),
+                Err(c) => warnings.push(corrupt_warning(&c, &format!("stage `{stage_name}`"))),
             }
         }
-        let (run, status, why) = match cached {
-            Some((r, _)) => (r, Status::Reused, String::new()),
+        let (run, status, why, payload) = match cached {
+            Some((r, count, bytes)) => (r, Status::Reused, String::new(), Some((count, bytes))),
             None => {
                 let r = solve::solve_stage(model, s, &state, &done)?;
-                let bytes = encode_stage(&r);
                 if let Some(store) = store {
-                    if let Err(e) = store.put(&key, &bytes) {
+                    if let Err(e) = store.put(&key, &encode_stage(&r)) {
                         warnings.push(Problem::warning(
                             "H0702",
                             format!(
@@ -452,17 +604,22 @@ pub fn execute(model: &Model, store: Option<&Store>) -> Result<Outcome, Problem>
                     }
                 }
                 let why = if store.is_some() {
-                    reason(previous.stages.get(&stage_name), &hashes)
+                    match &hashes {
+                        Ok(now) => reason(previous.parts(&stage_name).as_ref(), now),
+                        Err(_) => "not in the cache".into(),
+                    }
                 } else {
                     "the cache is off".into()
                 };
-                (r, Status::Computed, why)
+                (r, Status::Computed, why, None)
             }
         };
-        // A stage's fingerprint determines its payload (the engine is
-        // deterministic), so the fingerprints stand for the solved rows.
-        solved_hash.update(&key);
-        trace.stages.insert(stage_name, hashes);
+        payloads.push(payload);
+        trace.push_str(&format!("stage\t{stage_name}\t{fingerprint}\n"));
+        match &hashes {
+            Ok(h) => trace.push_str(&part_lines(h)),
+            Err(lines) => trace.push_str(lines),
+        }
         for (k, e) in run.events.iter().enumerate() {
             if events[k].is_none() {
                 events[k] = *e;
@@ -473,17 +630,21 @@ pub fn execute(model: &Model, store: Option<&Store>) -> Result<Outcome, Problem>
             stage: s,
             status,
             reason: why,
-            fingerprint: key_hex(&key),
+            fingerprint,
         });
+        keys.push(key);
         runs.push(run);
     }
-    let run = Run {
+    let mut run = Run {
         stages: runs,
         event_defs: event_ids,
         events,
     };
 
-    // Derived outputs: keyed by their own definitions and the solved rows.
+    // Derived outputs, per stage: keyed by their own definitions and the
+    // stage's fingerprint (the engine is deterministic, so the fingerprint
+    // stands for the solved rows). An edit of one stage re-derives only
+    // that stage's part of the series.
     let columns = report::columns(model);
     let targets: Vec<Node> = columns
         .iter()
@@ -491,67 +652,60 @@ pub fn execute(model: &Model, store: Option<&Store>) -> Result<Outcome, Problem>
         .map(Node::Def)
         .collect();
     let closure = g.closure(&targets);
-    let mut parts = Parts::new();
-    for s in 0..model.stages.len() {
-        let params = compile::stage_params(model, Some(s));
-        let mut p = Parts::new();
-        closure_parts(model, &closure, &params, &mut p);
-        for (k, v) in p {
-            parts.insert(format!("stage {s} {k}"), v);
-        }
-    }
     let cols: Vec<String> = columns
         .iter()
         .map(|c| format!("{} [{}]", c.name, c.unit))
         .collect();
-    parts.insert("columns".into(), cols.join(","));
-    parts.insert(
-        "solved rows".into(),
-        solved_hash.finalize().to_hex().to_string(),
-    );
-    let key = hash_parts("hadal series", &parts);
-    let mut series_reused = false;
-    let mut series_csv = None;
-    if let Some(store) = store {
-        match store.get(&key) {
-            Ok(Some(b)) => {
-                series_csv = Some(b);
-                series_reused = true;
+    let cols: Rc<str> = cols.join(",").into();
+    let mut series_csv = report::header_csv(&columns);
+    let mut series_reused = true;
+    let mut rows = 0;
+    for (s, sr) in run.stages.iter_mut().enumerate() {
+        let mut parts = Parts::new();
+        let params = wide.params(model, s);
+        closure_parts(model, &closure, &params, &mut wide.canon, &mut parts);
+        parts.insert("columns".into(), cols.clone());
+        parts.insert("stage".into(), key_hex(&keys[s]).into());
+        let key = hash_parts("hadal series rows", &parts);
+        let mut found = false;
+        if let Some(store) = store {
+            match store.get_into(&key, &mut series_csv) {
+                Ok(f) => found = f,
+                Err(c) => warnings.push(corrupt_warning(
+                    &c,
+                    &format!("the series of stage `{}`", model.stages[s].name),
+                )),
             }
-            Ok(None) => {}
-            Err(c) => warnings.push(Problem::warning(
-                "H0701",
-                format!(
-                    "cache entry {} for the series is corrupt ({}); recomputed",
-                    c.path.display(),
-                    c.why
-                ),
-            )),
         }
-    }
-    let series_csv = match series_csv {
-        Some(b) => b,
-        None => {
-            let s = report::series(model, &run)?;
-            let b = s.to_csv();
+        let payload = payloads[s].take();
+        if found {
+            rows += payload.map_or(sr.rows.len(), |(count, _)| count);
+        } else {
+            if let Some((_, bytes)) = payload {
+                // Its header decoded above, so the rows decode too.
+                if let Some(full) = decode_stage(s, &bytes) {
+                    sr.rows = full.rows;
+                }
+            }
+            series_reused = false;
+            rows += sr.rows.len();
+            let c = report::stage_series_csv(model, &columns, sr)?;
             if let Some(store) = store {
-                let _ = store.put(&key, &b);
+                let _ = store.put(&key, &c);
             }
-            b
+            series_csv.extend_from_slice(&c);
         }
-    };
-    let rows = series_csv
-        .iter()
-        .filter(|&&c| c == b'\n')
-        .count()
-        .saturating_sub(1);
+        // The series holds the rows from here on.
+        sr.rows = Vec::new();
+    }
     if let Some(store) = store {
-        let path = trace_path(store, model);
-        if let Some(dir) = path.parent() {
-            let _ = std::fs::create_dir_all(dir);
-        }
-        if let Ok(b) = serde_json::to_vec_pretty(&trace) {
-            let _ = crate::fsutil::write_atomic_unsynced(&path, &b);
+        // A hint file: rewritten only when it changed.
+        if trace != previous.text {
+            let path = trace_path(store, model);
+            if let Some(dir) = path.parent() {
+                let _ = std::fs::create_dir_all(dir);
+            }
+            let _ = crate::fsutil::write_atomic_unsynced(&path, trace.as_bytes());
         }
     }
     Ok(Outcome {
@@ -562,6 +716,18 @@ pub fn execute(model: &Model, store: Option<&Store>) -> Result<Outcome, Problem>
         series_reused,
         warnings,
     })
+}
+
+fn corrupt_warning(c: &crate::cache::Corrupt, what: &str) -> Problem {
+    Problem::warning(
+        "H0701",
+        format!(
+            "cache entry {} for {what} is corrupt ({}); it was discarded and recomputed",
+            c.path.display(),
+            c.why
+        ),
+    )
+    .help("nothing corrupt is ever used; run `hadal cache verify` to check the rest of the cache")
 }
 
 #[cfg(test)]

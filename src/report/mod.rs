@@ -122,16 +122,7 @@ pub fn report_programs(model: &Model, symbolic: &[DefId]) -> ReportPrograms {
     let mut out = Vec::new();
     let mut exp = Vec::new();
     for s in 0..model.stages.len() {
-        out.push(compile::compile_with(
-            model,
-            Some(s),
-            &Wants {
-                rhs: false,
-                defs: outputs.clone(),
-                exprs: Vec::new(),
-            },
-            symbolic,
-        ));
+        out.push(compile_outputs(model, s, &outputs, symbolic));
         exp.push(compile::compile_with(
             model,
             Some(s),
@@ -150,6 +141,24 @@ pub fn report_programs(model: &Model, symbolic: &[DefId]) -> ReportPrograms {
     }
 }
 
+fn compile_outputs(
+    model: &Model,
+    s: usize,
+    outputs: &[DefId],
+    symbolic: &[DefId],
+) -> compile::Program {
+    compile::compile_with(
+        model,
+        Some(s),
+        &Wants {
+            rhs: false,
+            defs: outputs.to_vec(),
+            exprs: Vec::new(),
+        },
+        symbolic,
+    )
+}
+
 /// Evaluate outputs on every reported row.
 pub fn series(model: &Model, run: &Run) -> Result<Series, Problem> {
     series_with(model, run, &report_programs(model, &[]), &[])
@@ -165,46 +174,116 @@ pub fn series_with(
     let columns = columns(model);
     let mut rows = Vec::new();
     for sr in &run.stages {
-        let prog = &programs.outputs[sr.stage];
-        let mut regs = prog.regs_with(params);
-        for (age, y) in &sr.rows {
-            prog.eval(&mut regs, y, model.start_age - age, *age);
-            let mut row = Vec::with_capacity(columns.len());
-            row.push(columns[0].display.from_internal(*age));
-            for (k, &(def, reg)) in prog.observed.iter().enumerate() {
-                let v = prog.value(&regs, reg);
-                if !v.is_finite() {
-                    let d = &model.defs[def];
-                    return Err(Problem::error(
-                        "H0605",
-                        format!(
-                            "`{}` is {} at {} Ga",
-                            d.name,
-                            if v.is_nan() { "not a number (NaN)" } else { "infinite" },
-                            age / 1e9
-                        ),
-                    )
-                    .label(d.expr.span, "evaluates to a non-finite number")
-                    .help("nothing non-finite is written to a CSV; guard the expression (e.g. `max(x, 1e-30 kg)` before dividing)"));
-                }
-                row.push(columns[k + 1].display.from_internal(v));
-            }
-            rows.push(row);
-        }
+        stage_rows(
+            model,
+            &columns,
+            &programs.outputs[sr.stage],
+            sr,
+            params,
+            &mut rows,
+        )?;
     }
     Ok(Series { columns, rows })
 }
 
-pub fn fmt_num(v: f64) -> String {
-    if v == 0.0 {
-        return "0".into();
+/// The series rows of one stage, in display units.
+fn stage_rows(
+    model: &Model,
+    columns: &[Column],
+    prog: &compile::Program,
+    sr: &crate::solve::StageRun,
+    params: &[(DefId, f64)],
+    rows: &mut Vec<Vec<f64>>,
+) -> Result<(), Problem> {
+    let mut regs = prog.regs_with(params);
+    for (age, y) in &sr.rows {
+        prog.eval(&mut regs, y, model.start_age - age, *age);
+        let mut row = Vec::with_capacity(columns.len());
+        row.push(columns[0].display.from_internal(*age));
+        for (k, &(def, reg)) in prog.observed.iter().enumerate() {
+            let v = prog.value(&regs, reg);
+            if !v.is_finite() {
+                let d = &model.defs[def];
+                return Err(Problem::error(
+                    "H0605",
+                    format!(
+                        "`{}` is {} at {} Ga",
+                        d.name,
+                        if v.is_nan() { "not a number (NaN)" } else { "infinite" },
+                        age / 1e9
+                    ),
+                )
+                .label(d.expr.span, "evaluates to a non-finite number")
+                .help("nothing non-finite is written to a CSV; guard the expression (e.g. `max(x, 1e-30 kg)` before dividing)"));
+            }
+            row.push(columns[k + 1].display.from_internal(v));
+        }
+        rows.push(row);
     }
-    if v.is_infinite() {
-        return if v > 0.0 { "inf".into() } else { "-inf".into() };
-    }
+    Ok(())
+}
+
+/// The series CSV lines of one stage's rows (no header): the stage's part
+/// of `series.csv`, which the stage cache keeps per stage.
+pub fn stage_series_csv(
+    model: &Model,
+    columns: &[Column],
+    sr: &crate::solve::StageRun,
+) -> Result<Vec<u8>, Problem> {
+    let outputs: Vec<DefId> = columns.iter().filter_map(|c| c.def).collect();
+    let prog = compile_outputs(model, sr.stage, &outputs, &[]);
+    let mut rows = Vec::with_capacity(sr.rows.len());
+    stage_rows(model, columns, &prog, sr, &[], &mut rows)?;
+    let mut out = Vec::with_capacity(rows.len() * columns.len() * 20);
+    rows_csv(&rows, &mut out);
+    Ok(out)
+}
+
+/// The header line of the series CSV: `name [unit]` per column.
+pub fn header_csv(columns: &[Column]) -> Vec<u8> {
+    let mut w = csv::WriterBuilder::new()
+        .terminator(csv::Terminator::Any(b'\n'))
+        .from_writer(Vec::new());
+    let header: Vec<String> = columns
+        .iter()
+        .map(|c| format!("{} [{}]", c.name, c.unit))
+        .collect();
+    let _ = w.write_record(&header);
+    w.into_inner().unwrap_or_default()
+}
+
+/// Rows of numbers as CSV lines. Numbers never need quoting, so they are
+/// written directly rather than through a CSV writer (several times
+/// faster, and the same bytes).
+pub fn rows_csv(rows: &[Vec<f64>], out: &mut Vec<u8>) {
     let mut b = ryu::Buffer::new();
-    let s = b.format(v);
-    s.strip_suffix(".0").unwrap_or(s).to_owned()
+    for row in rows {
+        for (k, v) in row.iter().enumerate() {
+            if k > 0 {
+                out.push(b',');
+            }
+            push_num(out, &mut b, *v);
+        }
+        out.push(b'\n');
+    }
+}
+
+fn push_num(out: &mut Vec<u8>, b: &mut ryu::Buffer, v: f64) {
+    if v == 0.0 {
+        out.push(b'0');
+    } else if v.is_infinite() {
+        out.extend_from_slice(if v > 0.0 { b"inf" } else { b"-inf" });
+    } else {
+        let s = b.format(v);
+        out.extend_from_slice(s.strip_suffix(".0").unwrap_or(s).as_bytes());
+    }
+}
+
+/// A number in shortest round-trip form, without a trailing `.0`.
+pub fn fmt_num(v: f64) -> String {
+    let mut out = Vec::with_capacity(24);
+    push_num(&mut out, &mut ryu::Buffer::new(), v);
+    String::from_utf8(out).unwrap_or_default()
 }
 
 /// A number for people: ten significant digits, then the shortest form, so
@@ -220,19 +299,10 @@ pub fn human_num(v: f64) -> String {
 impl Series {
     /// The CSV text: a header `name [unit]` per column, then one row per age.
     pub fn to_csv(&self) -> Vec<u8> {
-        let mut w = csv::WriterBuilder::new()
-            .terminator(csv::Terminator::Any(b'\n'))
-            .from_writer(Vec::new());
-        let header: Vec<String> = self
-            .columns
-            .iter()
-            .map(|c| format!("{} [{}]", c.name, c.unit))
-            .collect();
-        let _ = w.write_record(&header);
-        for row in &self.rows {
-            let _ = w.write_record(row.iter().map(|v| fmt_num(*v)));
-        }
-        w.into_inner().unwrap_or_default()
+        let mut out = header_csv(&self.columns);
+        out.reserve(self.rows.len() * self.columns.len() * 20);
+        rows_csv(&self.rows, &mut out);
+        out
     }
 
     pub fn column(&self, name: &str) -> Option<usize> {

@@ -28,6 +28,35 @@ pub struct Dim {
 
 impl Dim {
     pub const NONE: Dim = Dim::new(0, 0, 0, 0);
+
+    /// Append exactly what `{:?}` writes (the canonical text of a
+    /// definition carries it, so fingerprints depend on these bytes),
+    /// without the formatting machinery: fingerprints are built on every run.
+    pub fn push_debug(&self, out: &mut String) {
+        let num = |out: &mut String, label: &str, v: i8| {
+            out.push_str(label);
+            if v < 0 {
+                out.push('-');
+            }
+            let a = v.unsigned_abs();
+            if a >= 100 {
+                out.push(char::from(b'0' + a / 100));
+            }
+            if a >= 10 {
+                out.push(char::from(b'0' + a / 10 % 10));
+            }
+            out.push(char::from(b'0' + a % 10));
+        };
+        num(out, "Dim { mass: ", self.mass);
+        num(out, ", length: ", self.length);
+        num(out, ", time: ", self.time);
+        num(out, ", temp: ", self.temp);
+        out.push_str(if self.point {
+            ", point: true }"
+        } else {
+            ", point: false }"
+        });
+    }
     pub const MASS: Dim = Dim::new(1, 0, 0, 0);
     pub const LENGTH: Dim = Dim::new(0, 1, 0, 0);
     pub const AREA: Dim = Dim::new(0, 2, 0, 0);
@@ -482,6 +511,24 @@ pub fn udunits(text: &str) -> String {
 
 #[cfg(test)]
 mod tests {
+    #[test]
+    fn dim_push_debug_writes_what_debug_writes() {
+        for m in [-128i8, -100, -12, -1, 0, 1, 9, 10, 99, 100, 127] {
+            for point in [false, true] {
+                let d = Dim {
+                    mass: m,
+                    length: -m / 3,
+                    time: m / 7,
+                    temp: 1,
+                    point,
+                };
+                let mut s = String::new();
+                d.push_debug(&mut s);
+                assert_eq!(s, format!("{d:?}"));
+            }
+        }
+    }
+
     use super::*;
 
     #[test]
