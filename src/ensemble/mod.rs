@@ -335,6 +335,9 @@ pub fn run(model: &Model, opts: &Options, dir: &Path) -> Result<EnsembleState, S
     let from = (k - 1) * total / n;
     let to = k * total / n;
     std::fs::create_dir_all(dir).map_err(|e| format!("cannot create {}: {e}", dir.display()))?;
+    // Temporary files of an earlier run that was killed.
+    crate::fsutil::remove_stale_temps(dir);
+    crate::fsutil::remove_stale_temps(&dir.join("series"));
 
     // Stages before the first varying one are shared by every member.
     let first = first_varying_stage(model);
@@ -387,7 +390,7 @@ pub fn run(model: &Model, opts: &Options, dir: &Path) -> Result<EnsembleState, S
 
     // members.csv is streamed to a temporary file and renamed at the end.
     let members_path = dir.join("members.csv");
-    let tmp = dir.join(format!(".members.csv.tmp-{}", std::process::id()));
+    let tmp = crate::fsutil::temp_path(&members_path);
     let file =
         std::fs::File::create(&tmp).map_err(|e| format!("cannot write {}: {e}", tmp.display()))?;
     let mut out = std::io::BufWriter::new(file);
@@ -993,6 +996,8 @@ pub fn merge_dirs(dirs: &[PathBuf], out: &Path) -> Result<EnsembleState, String>
     }
     let merged = EnsembleState::merge(states.into_iter().map(|(s, _)| s).collect())?;
     std::fs::create_dir_all(out).map_err(|e| format!("cannot create {}: {e}", out.display()))?;
+    crate::fsutil::remove_stale_temps(out);
+    crate::fsutil::remove_stale_temps(&out.join("series"));
     crate::fsutil::write_atomic(&out.join("members.csv"), &members).map_err(|e| e.to_string())?;
     for dir in dirs {
         let series = dir.join("series");
