@@ -22,9 +22,12 @@ fn main() {
     let root = Path::new(env!("CARGO_MANIFEST_DIR"));
     let cases = [
         ("hot_start", "late_regassing_efficiency", "0.46"),
-        ("glacial_window", "", ""),
+        ("glacial_window", "melt_time", "9 kyr"),
     ];
-    println!("stage cache, medians of 9 in-process runs (check + all stages + outputs):");
+    println!(
+        "stage cache, medians of 9 in-process runs of the pipeline (fingerprints, every stage, the series), cache in {}:",
+        std::env::temp_dir().display()
+    );
     for (name, late_param, value) in cases {
         let path = root.join(format!("scenarios/{name}.hadal"));
         let model = check_file(&path, &CheckOptions::default())

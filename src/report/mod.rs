@@ -287,13 +287,20 @@ pub fn fmt_num(v: f64) -> String {
 }
 
 /// A number for people: ten significant digits, then the shortest form, so
-/// 0.9000000000000001 shows as 0.9.
+/// 0.9000000000000001 shows as 0.9; large and small magnitudes with an
+/// exponent.
 pub fn human_num(v: f64) -> String {
     if !v.is_finite() {
         return v.to_string();
     }
     let rounded: f64 = format!("{v:.9e}").parse().unwrap_or(v);
-    fmt_num(rounded)
+    let a = rounded.abs();
+    if a >= 1e7 || (a != 0.0 && a < 1e-4) {
+        // 1e15 rather than 1000000000000000.
+        format!("{rounded:e}")
+    } else {
+        fmt_num(rounded)
+    }
 }
 
 impl Series {
@@ -526,4 +533,42 @@ pub fn expectations_csv(results: &[ExpectResult]) -> Vec<u8> {
         ]);
     }
     w.into_inner().unwrap_or_default()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn numbers_for_people_round_and_use_exponents_at_the_extremes() {
+        assert_eq!(human_num(0.9000000000000001), "0.9");
+        assert_eq!(human_num(14.0), "14");
+        assert_eq!(human_num(-0.3), "-0.3");
+        assert_eq!(human_num(1e15), "1e15");
+        assert_eq!(human_num(3e11), "3e11");
+        assert_eq!(human_num(1.426e21), "1.426e21");
+        assert_eq!(human_num(2.5e-5), "2.5e-5");
+        assert_eq!(human_num(1234567.0), "1234567");
+        assert_eq!(human_num(0.0), "0");
+    }
+
+    #[test]
+    fn rows_are_written_as_the_csv_writer_would_write_them() {
+        let rows = vec![
+            vec![0.04, 1.426e21, 0.0, -3.5],
+            vec![1e-300, 2.0, 123456.789, 1e16],
+        ];
+        let mut fast = Vec::new();
+        rows_csv(&rows, &mut fast);
+        let mut w = csv::WriterBuilder::new()
+            .terminator(csv::Terminator::Any(b'\n'))
+            .from_writer(Vec::new());
+        for r in &rows {
+            w.write_record(r.iter().map(|v| fmt_num(*v))).unwrap();
+        }
+        assert_eq!(
+            String::from_utf8(fast).unwrap(),
+            String::from_utf8(w.into_inner().unwrap()).unwrap()
+        );
+    }
 }
