@@ -203,8 +203,9 @@ pub fn first_varying_stage(model: &Model) -> usize {
 /// The result of one member.
 struct MemberResult {
     values: Vec<f64>,
-    /// Series values, row-major (rows x variables), display units.
-    series: Vec<Vec<f64>>,
+    /// Series values, row-major (rows x columns, the age first), display
+    /// units.
+    series: Vec<f64>,
     series_csv: Option<Vec<u8>>,
     expectations: Vec<report::ExpectResult>,
     error: Option<String>,
@@ -261,7 +262,7 @@ fn programs(model: &Model, first: usize) -> Programs {
     }
 }
 
-type MemberOutput = (Vec<Vec<f64>>, Option<Vec<u8>>, Vec<report::ExpectResult>);
+type MemberOutput = (Vec<f64>, Option<Vec<u8>>, Vec<report::ExpectResult>);
 
 fn solve_member(
     model: &Model,
@@ -305,10 +306,15 @@ fn solve_member(
         event_defs: event_ids,
         events,
     };
-    let series = report::series_with(model, &run, &progs.report, params)?;
-    let csv = keep_series.then(|| series.to_csv());
+    let series = report::series_values_with(model, &run, &progs.report, params)?;
+    let csv = keep_series.then(|| {
+        let columns = report::columns(model);
+        let mut csv = report::header_csv(&columns);
+        report::rows_csv(series.chunks(columns.len().max(1)), &mut csv);
+        csv
+    });
     let exp = report::expectations_with(model, &run, &progs.report, params);
-    Ok((series.rows, csv, exp))
+    Ok((series, csv, exp))
 }
 
 /// Run the members of one shard and return its state, writing
@@ -428,11 +434,22 @@ pub fn run(model: &Model, opts: &Options, dir: &Path) -> Result<EnsembleState, S
     } else {
         indicatif::ProgressBar::hidden()
     };
-    let chunk = 64 * pool.current_num_threads().max(1) as u64;
+    // Members run in chunks, in two parallel phases: solve the chunk's
+    // members, then add their series to the sketches, each thread taking a
+    // block of report times (so no two threads touch one sketch, and each
+    // sketch takes the whole chunk's values while its counts are in cache).
+    // Counts do not depend on the order of addition, so neither the thread
+    // count nor the split changes a byte. A chunk's series are bounded to
+    // about 64 MiB.
+    let threads = pool.current_num_threads().max(1) as u64;
+    let nv = state.variables.len();
+    let member_bytes = (ages.len() * (nv + 1) * 8).max(1) as u64;
+    let chunk = ((64 << 20) / member_bytes).clamp(threads, 256 * threads);
+    let times_per_block = ages.len().div_ceil(4 * threads as usize).max(1);
     let mut start = from;
     while start < to {
         let end = (start + chunk).min(to);
-        let results: Vec<MemberResult> = pool.install(|| {
+        let mut results: Vec<MemberResult> = pool.install(|| {
             (start..end)
                 .into_par_iter()
                 .map(|i| {
@@ -449,7 +466,20 @@ pub fn run(model: &Model, opts: &Options, dir: &Path) -> Result<EnsembleState, S
                 })
                 .collect()
         });
-        fold_series(&mut state, &results);
+        if nv > 0 {
+            pool.install(|| {
+                state
+                    .sketches
+                    .par_chunks_mut(nv * times_per_block)
+                    .enumerate()
+                    .for_each(|(b, block)| {
+                        fold_series(block, b * times_per_block, nv, &results);
+                    });
+            });
+        }
+        for r in &mut results {
+            r.series = Vec::new();
+        }
         for (off, r) in results.into_iter().enumerate() {
             let i = start + off as u64;
             let shown: Vec<f64> = r
@@ -580,25 +610,27 @@ fn fold_member(st: &mut EnsembleState, r: &MemberResult, shown: &[f64]) {
     }
 }
 
-/// Add a chunk of members' series to the sketches, sketch by sketch, so
-/// that each sketch's counts stay in cache while the chunk's values go in.
-/// Counts do not depend on the order of addition.
-fn fold_series(st: &mut EnsembleState, chunk: &[MemberResult]) {
-    let nv = st.variables.len();
-    let accepted: Vec<bool> = chunk
+/// Add members' series to `sketches`, the (all members, accepted members)
+/// sketches of report times `t0..`, `nv` variables per time, one time at a
+/// time. Counts do not depend on the order of addition.
+fn fold_series(sketches: &mut [(Sketch, Sketch)], t0: usize, nv: usize, members: &[MemberResult]) {
+    let accepted: Vec<bool> = members
         .iter()
         .map(|r| r.error.is_none() && r.expectations.iter().all(|e| e.pass))
         .collect();
-    for (idx, s) in st.sketches.iter_mut().enumerate() {
-        let (t, j) = (idx / nv, idx % nv);
-        for (r, &acc) in chunk.iter().zip(&accepted) {
-            let Some(v) = r.series.get(t).and_then(|row| row.get(j + 1)) else {
+    let stride = nv + 1;
+    for (dt, at_t) in sketches.chunks_mut(nv).enumerate() {
+        let t = t0 + dt;
+        for (r, &acc) in members.iter().zip(&accepted) {
+            let Some(row) = r.series.get(t * stride + 1..(t + 1) * stride) else {
                 continue;
             };
-            let b = sketch::Bucket::of(*v);
-            s.0.add_bucket(b);
-            if acc {
-                s.1.add_bucket(b);
+            for (s, v) in at_t.iter_mut().zip(row) {
+                let b = sketch::Bucket::of(*v);
+                s.0.add_bucket(b);
+                if acc {
+                    s.1.add_bucket(b);
+                }
             }
         }
     }

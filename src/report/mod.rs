@@ -195,11 +195,26 @@ fn stage_rows(
     params: &[(DefId, f64)],
     rows: &mut Vec<Vec<f64>>,
 ) -> Result<(), Problem> {
+    let mut flat = Vec::with_capacity(sr.rows.len() * columns.len());
+    stage_values(model, columns, prog, sr, params, &mut flat)?;
+    rows.extend(flat.chunks(columns.len().max(1)).map(<[f64]>::to_vec));
+    Ok(())
+}
+
+/// The series rows of one stage, in display units, appended to `out` row
+/// after row (`columns.len()` values each).
+fn stage_values(
+    model: &Model,
+    columns: &[Column],
+    prog: &compile::Program,
+    sr: &crate::solve::StageRun,
+    params: &[(DefId, f64)],
+    out: &mut Vec<f64>,
+) -> Result<(), Problem> {
     let mut regs = prog.regs_with(params);
     for (age, y) in &sr.rows {
         prog.eval(&mut regs, y, model.start_age - age, *age);
-        let mut row = Vec::with_capacity(columns.len());
-        row.push(columns[0].display.from_internal(*age));
+        out.push(columns[0].display.from_internal(*age));
         for (k, &(def, reg)) in prog.observed.iter().enumerate() {
             let v = prog.value(&regs, reg);
             if !v.is_finite() {
@@ -216,11 +231,34 @@ fn stage_rows(
                 .label(d.expr.span, "evaluates to a non-finite number")
                 .help("nothing non-finite is written to a CSV; guard the expression (e.g. `max(x, 1e-30 kg)` before dividing)"));
             }
-            row.push(columns[k + 1].display.from_internal(v));
+            out.push(columns[k + 1].display.from_internal(v));
         }
-        rows.push(row);
     }
     Ok(())
+}
+
+/// The whole series as one row-major array (`columns(model).len()` values
+/// per row): what an ensemble member keeps, without a vector per row.
+pub fn series_values_with(
+    model: &Model,
+    run: &Run,
+    programs: &ReportPrograms,
+    params: &[(DefId, f64)],
+) -> Result<Vec<f64>, Problem> {
+    let columns = columns(model);
+    let rows: usize = run.stages.iter().map(|sr| sr.rows.len()).sum();
+    let mut out = Vec::with_capacity(rows * columns.len());
+    for sr in &run.stages {
+        stage_values(
+            model,
+            &columns,
+            &programs.outputs[sr.stage],
+            sr,
+            params,
+            &mut out,
+        )?;
+    }
+    Ok(out)
 }
 
 /// The series CSV lines of one stage's rows (no header): the stage's part
@@ -235,7 +273,7 @@ pub fn stage_series_csv(
     let mut rows = Vec::with_capacity(sr.rows.len());
     stage_rows(model, columns, &prog, sr, &[], &mut rows)?;
     let mut out = Vec::with_capacity(rows.len() * columns.len() * 20);
-    rows_csv(&rows, &mut out);
+    rows_csv(rows.iter().map(Vec::as_slice), &mut out);
     Ok(out)
 }
 
@@ -255,7 +293,7 @@ pub fn header_csv(columns: &[Column]) -> Vec<u8> {
 /// Rows of numbers as CSV lines. Numbers never need quoting, so they are
 /// written directly rather than through a CSV writer (several times
 /// faster, and the same bytes).
-pub fn rows_csv(rows: &[Vec<f64>], out: &mut Vec<u8>) {
+pub fn rows_csv<'a>(rows: impl IntoIterator<Item = &'a [f64]>, out: &mut Vec<u8>) {
     let mut b = ryu::Buffer::new();
     for row in rows {
         for (k, v) in row.iter().enumerate() {
@@ -308,7 +346,7 @@ impl Series {
     pub fn to_csv(&self) -> Vec<u8> {
         let mut out = header_csv(&self.columns);
         out.reserve(self.rows.len() * self.columns.len() * 20);
-        rows_csv(&self.rows, &mut out);
+        rows_csv(self.rows.iter().map(Vec::as_slice), &mut out);
         out
     }
 
@@ -559,7 +597,7 @@ mod tests {
             vec![1e-300, 2.0, 123456.789, 1e16],
         ];
         let mut fast = Vec::new();
-        rows_csv(&rows, &mut fast);
+        rows_csv(rows.iter().map(Vec::as_slice), &mut fast);
         let mut w = csv::WriterBuilder::new()
             .terminator(csv::Terminator::Any(b'\n'))
             .from_writer(Vec::new());
