@@ -8,7 +8,8 @@ use std::time::{Duration, Instant};
 
 use hadal::check::{
     check_file, check_text, CheckError, CheckOptions, Checked, MAX_DEPTH, MAX_ERRORS,
-    MAX_FILE_BYTES, MAX_INCLUDE_DEPTH, MAX_REPORT_ROWS, MAX_TABLE_ROWS, MAX_TOTAL_BYTES,
+    MAX_FILE_BYTES, MAX_INCLUDE_DEPTH, MAX_REPORT_ROWS, MAX_SOURCE_BYTES, MAX_TABLE_ROWS,
+    MAX_TOTAL_BYTES,
 };
 use hadal::diagnostic::Problem;
 use hadal::span::Sources;
@@ -190,32 +191,61 @@ fn include_depth() {
 fn file_size_of_the_scenario_an_include_and_a_table() {
     let dir = tempfile::tempdir().unwrap();
     // Sparse files: the length is refused before a byte is read.
-    let big = |name: &str| {
+    let big = |name: &str, len: u64| {
         let f = std::fs::File::create(dir.path().join(name)).unwrap();
-        f.set_len(MAX_FILE_BYTES + 1).unwrap();
+        f.set_len(len).unwrap();
     };
-    big("big.hadal");
-    big("big.csv");
-    let want = format!(
+    big("big.hadal", MAX_SOURCE_BYTES + 1);
+    big("big.csv", MAX_FILE_BYTES + 1);
+    let source = format!(
+        "is {} bytes, more than the limit of {MAX_SOURCE_BYTES} bytes",
+        MAX_SOURCE_BYTES + 1
+    );
+    let table = format!(
         "is {} bytes, more than the limit of {MAX_FILE_BYTES} bytes",
         MAX_FILE_BYTES + 1
     );
     match check_file(&dir.path().join("big.hadal"), &CheckOptions::default()) {
-        Err(CheckError::Io { message, .. }) => assert_eq!(message, want),
+        Err(CheckError::Io { message, .. }) => assert_eq!(message, source),
         _ => panic!("a scenario over the limit must be an I/O error"),
     }
     let (p, _, line) = first_error(dir.path(), &format!("{HEAD}include \"big.hadal\"\n{TAIL}"));
     assert_eq!((p.code, line), ("H0501", 4));
     assert_eq!(
         p.message,
-        format!("cannot read included file `big.hadal`: {want}")
+        format!("cannot read included file `big.hadal`: {source}")
     );
     let (p, _, line) = first_error(
         dir.path(),
         &format!("{HEAD}table t = \"big.csv\" (Ma, K)\n{TAIL}"),
     );
     assert_eq!((p.code, line), ("H0503", 4));
-    assert_eq!(p.message, format!("cannot read table `big.csv`: {want}"));
+    assert_eq!(p.message, format!("cannot read table `big.csv`: {table}"));
+    // A table may be larger than a scenario.
+    big("mid.csv", MAX_SOURCE_BYTES + 1);
+    let (p, _, _) = first_error(
+        dir.path(),
+        &format!("{HEAD}table t = \"mid.csv\" (Ma, K)\n{TAIL}"),
+    );
+    assert_ne!(p.code, "H0503", "{}", p.message);
+}
+
+#[test]
+fn text_parsed_directly_is_limited_too() {
+    // A caller that parses text itself (not through the loader) gets a
+    // diagnostic, not gigabytes of parse tree.
+    let text = "let a = 1\n".repeat(MAX_SOURCE_BYTES as usize / 10 + 1);
+    let t = Instant::now();
+    let problems = hadal::syntax::parse(&text, 0).expect_err("refused");
+    assert_eq!(problems[0].code, "H0102");
+    assert_eq!(
+        problems[0].message,
+        format!(
+            "the text is {} bytes; at most {MAX_SOURCE_BYTES} bytes are parsed",
+            text.len()
+        )
+    );
+    assert!(t.elapsed() < Duration::from_secs(5));
 }
 
 #[cfg(unix)]
@@ -227,7 +257,7 @@ fn an_endless_device_is_refused_after_the_limit() {
         Err(CheckError::Io { message, .. }) => {
             assert_eq!(
                 message,
-                format!("is more than the limit of {MAX_FILE_BYTES} bytes")
+                format!("is more than the limit of {MAX_SOURCE_BYTES} bytes")
             )
         }
         _ => panic!("/dev/zero must be refused"),

@@ -22,8 +22,12 @@ pub use tables::MAX_TABLE_ROWS;
 
 /// Deepest chain of includes accepted.
 pub const MAX_INCLUDE_DEPTH: usize = 16;
-/// Largest scenario or table file read, bytes.
+/// Largest table file read, bytes.
 pub const MAX_FILE_BYTES: u64 = 16 * 1024 * 1024;
+/// Largest scenario or included file read, bytes: the parser needs about a
+/// hundred bytes of memory per byte of source, and a real scenario is tens
+/// of kilobytes.
+pub const MAX_SOURCE_BYTES: u64 = syntax::MAX_SOURCE_BYTES as u64;
 /// Most bytes read for one scenario: the file, its includes and its tables
 /// together (a file included or a table read many times counts each time).
 pub const MAX_TOTAL_BYTES: u64 = 64 * 1024 * 1024;
@@ -68,7 +72,7 @@ pub struct Checked {
 
 /// Read, parse and check the scenario at `path` and everything it includes.
 pub fn check_file(path: &Path, options: &CheckOptions) -> Result<Checked, CheckError> {
-    let text = read_limited(path).map_err(|message| CheckError::Io {
+    let text = read_limited(path, MAX_SOURCE_BYTES).map_err(|message| CheckError::Io {
         path: path.to_owned(),
         message,
     })?;
@@ -139,28 +143,28 @@ fn display_name(path: &Path) -> String {
 
 /// Read a scenario file: size-limited, UTF-8, byte-order mark removed.
 pub fn read_text(path: &Path) -> Result<String, String> {
-    read_limited(path)
+    read_limited(path, MAX_SOURCE_BYTES)
 }
 
-pub(crate) fn read_limited(path: &Path) -> Result<String, String> {
+pub(crate) fn read_limited(path: &Path, limit: u64) -> Result<String, String> {
     use std::io::Read;
     let meta = std::fs::metadata(path).map_err(|e| io_words(&e))?;
     if meta.is_dir() {
         return Err("is a directory, not a file".into());
     }
-    let too_big = |n: u64| format!("is {n} bytes, more than the limit of {MAX_FILE_BYTES} bytes");
-    if meta.len() > MAX_FILE_BYTES {
+    let too_big = |n: u64| format!("is {n} bytes, more than the limit of {limit} bytes");
+    if meta.len() > limit {
         return Err(too_big(meta.len()));
     }
     // Devices and pipes report no length: read at most one byte past the
     // limit, so an endless stream is refused rather than read forever.
     let file = std::fs::File::open(path).map_err(|e| io_words(&e))?;
     let mut bytes = Vec::with_capacity(meta.len() as usize);
-    file.take(MAX_FILE_BYTES + 1)
+    file.take(limit + 1)
         .read_to_end(&mut bytes)
         .map_err(|e| io_words(&e))?;
-    if bytes.len() as u64 > MAX_FILE_BYTES {
-        return Err(format!("is more than the limit of {MAX_FILE_BYTES} bytes"));
+    if bytes.len() as u64 > limit {
+        return Err(format!("is more than the limit of {limit} bytes"));
     }
     let mut text = String::from_utf8(bytes).map_err(|e| {
         format!(
@@ -178,12 +182,12 @@ pub(crate) fn read_limited(path: &Path) -> Result<String, String> {
 /// Read an included file or a table: as [`read_limited`], and only a
 /// regular file. A pipe or a device would block or never end; the
 /// scenario named on the command line may still be one (`<(...)`).
-pub(crate) fn read_project_file(path: &Path) -> Result<String, String> {
+pub(crate) fn read_project_file(path: &Path, limit: u64) -> Result<String, String> {
     let meta = std::fs::metadata(path).map_err(|e| io_words(&e))?;
     if !meta.is_file() && !meta.is_dir() {
         return Err("is not a regular file (a pipe or a device)".into());
     }
-    read_limited(path)
+    read_limited(path, limit)
 }
 
 pub(crate) fn io_words(e: &std::io::Error) -> String {
@@ -676,7 +680,8 @@ impl Checker {
             );
             return;
         }
-        let text = match read_project_file(&path).and_then(|t| self.take_bytes(t.len()).map(|_| t))
+        let text = match read_project_file(&path, MAX_SOURCE_BYTES)
+            .and_then(|t| self.take_bytes(t.len()).map(|_| t))
         {
             Ok(t) => t,
             Err(why) => {

@@ -9,4 +9,4 @@ mod parse;
 
 pub use ast::*;
 pub use format::{format_expr, format_file, format_stmt};
-pub use parse::{parse, MAX_NESTING, MAX_OPERATORS};
+pub use parse::{parse, MAX_NESTING, MAX_OPERATORS, MAX_SOURCE_BYTES};

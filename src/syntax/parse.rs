@@ -21,6 +21,11 @@ const MAX_SYNTAX_ERRORS: usize = 25;
 /// length (small files get their 25 errors; a huge one stops sooner).
 const MAX_RECOVERY_BYTES: usize = 1 << 20;
 
+/// Largest text parsed, bytes. The parser holds about a hundred bytes per
+/// byte of input; the loader refuses larger files before reading them, and
+/// this guards callers that parse text themselves.
+pub const MAX_SOURCE_BYTES: usize = 4 * 1024 * 1024;
+
 /// Deepest expression nesting accepted; deeper input is a diagnostic, not a
 /// stack overflow.
 pub const MAX_NESTING: usize = 64;
@@ -34,6 +39,17 @@ pub const MAX_OPERATORS: usize = 128;
 /// after an error the offending line is blanked out and parsing restarts,
 /// which works because statements are line-oriented.
 pub fn parse(text: &str, file: u32) -> Result<SyntaxFile, Vec<Problem>> {
+    if text.len() > MAX_SOURCE_BYTES {
+        return Err(vec![Problem::error(
+            "H0102",
+            format!(
+                "the text is {} bytes; at most {MAX_SOURCE_BYTES} bytes are parsed",
+                text.len()
+            ),
+        )
+        .label(Span::new(file, 0, 0), "this file")
+        .help("split the scenario into included files")]);
+    }
     if let Some(problem) = nesting_problem(text, file) {
         return Err(vec![problem]);
     }

@@ -1275,6 +1275,10 @@ fn mutation_count(rng: &mut Rng) -> usize {
     }
 }
 
+/// Largest scenario a case holds: twice what the parser accepts, so that
+/// inputs over the limit are still made.
+const MAX_GENERATED_BYTES: usize = 2 * hadal::syntax::MAX_SOURCE_BYTES;
+
 /// Case `index` of campaign `seed`.
 pub fn make_case(corpus: &Corpus, seed: u64, index: u64) -> Case {
     let mut rng = Rng::for_case(seed, index);
@@ -1343,6 +1347,13 @@ pub fn make_case(corpus: &Corpus, seed: u64, index: u64) -> Case {
     };
     for _ in 0..mutations {
         mutate_text(&mut rng, &mut text, corpus);
+        // Repeated duplication can grow a case to hundreds of megabytes,
+        // which costs the generator minutes and gigabytes; past the
+        // parser's limit more bytes test nothing new.
+        if text.len() > MAX_GENERATED_BYTES {
+            let cut = char_floor(&text, MAX_GENERATED_BYTES);
+            text.truncate(cut);
+        }
     }
     let mut scenario = text.into_bytes();
     let mut from_disk = rng.one_in(8);
