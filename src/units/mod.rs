@@ -517,7 +517,7 @@ mod tests {
             for point in [false, true] {
                 let d = Dim {
                     mass: m,
-                    length: -m / 3,
+                    length: -(m / 3),
                     time: m / 7,
                     temp: 1,
                     point,
