@@ -1839,8 +1839,7 @@ pub fn run_campaign(
         // The limit is on the case's own CPU time, so a busy machine (other
         // builds, `nice`) does not make slow cases; wall time is a backstop
         // for a case that never returns. It is generous: a campaign at
-        // `nice 19` beside a build gets almost no CPU for minutes at a time
-        // (a 60 ms case was once flagged after 30 s of waiting).
+        // `nice 19` beside a build can get almost no CPU for minutes.
         let wall_limit = (limit * 10 + Duration::from_secs(10)).max(Duration::from_secs(300));
         let result = match rx.recv_timeout(wall_limit) {
             Ok((r, cpu)) => {
