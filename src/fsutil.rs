@@ -23,7 +23,7 @@ pub const FOREIGN_TEMP_AGE: Duration = Duration::from_secs(3600);
 /// flushed to disk, then renamed over the target. On error the temporary
 /// file is removed and the target is untouched.
 pub fn write_atomic(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
-    write_renamed(path, bytes, true)
+    write_renamed(path, bytes, true, true)
 }
 
 /// Like [`write_atomic`], flushing the file but not its directory: after a
@@ -31,18 +31,13 @@ pub fn write_atomic(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
 /// content-addressed cache entries, whose loss costs only a recomputation;
 /// it saves one of the two disk flushes per entry.
 pub fn write_atomic_entry(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
-    let tmp = write_temp(path, bytes, true)?;
-    if let Err(e) = std::fs::rename(&tmp, path) {
-        let _ = std::fs::remove_file(&tmp);
-        return Err(e);
-    }
-    Ok(())
+    write_renamed(path, bytes, true, false)
 }
 
 /// Like [`write_atomic`] without flushing to disk: a reader still sees a
 /// whole file or none, but a power cut may lose it. For hint files only.
 pub fn write_atomic_unsynced(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
-    write_renamed(path, bytes, false)
+    write_renamed(path, bytes, false, false)
 }
 
 /// This machine's name as it appears in temporary file names (no `-`).
@@ -139,13 +134,13 @@ fn sync_dir(dir: &Path) {
     }
 }
 
-fn write_renamed(path: &Path, bytes: &[u8], sync: bool) -> std::io::Result<()> {
+fn write_renamed(path: &Path, bytes: &[u8], sync: bool, sync_parent: bool) -> std::io::Result<()> {
     let tmp = write_temp(path, bytes, sync)?;
     if let Err(e) = std::fs::rename(&tmp, path) {
         let _ = std::fs::remove_file(&tmp);
         return Err(e);
     }
-    if sync {
+    if sync_parent {
         sync_dir(parent(path));
     }
     Ok(())

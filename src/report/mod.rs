@@ -171,34 +171,13 @@ pub fn series_with(
     programs: &ReportPrograms,
     params: &[(DefId, f64)],
 ) -> Result<Series, Problem> {
+    let values = series_values_with(model, run, programs, params)?;
     let columns = columns(model);
-    let mut rows = Vec::new();
-    for sr in &run.stages {
-        stage_rows(
-            model,
-            &columns,
-            &programs.outputs[sr.stage],
-            sr,
-            params,
-            &mut rows,
-        )?;
-    }
+    let rows = values
+        .chunks(columns.len().max(1))
+        .map(<[f64]>::to_vec)
+        .collect();
     Ok(Series { columns, rows })
-}
-
-/// The series rows of one stage, in display units.
-fn stage_rows(
-    model: &Model,
-    columns: &[Column],
-    prog: &compile::Program,
-    sr: &crate::solve::StageRun,
-    params: &[(DefId, f64)],
-    rows: &mut Vec<Vec<f64>>,
-) -> Result<(), Problem> {
-    let mut flat = Vec::with_capacity(sr.rows.len() * columns.len());
-    stage_values(model, columns, prog, sr, params, &mut flat)?;
-    rows.extend(flat.chunks(columns.len().max(1)).map(<[f64]>::to_vec));
-    Ok(())
 }
 
 /// The series rows of one stage, in display units, appended to `out` row
@@ -270,10 +249,10 @@ pub fn stage_series_csv(
 ) -> Result<Vec<u8>, Problem> {
     let outputs: Vec<DefId> = columns.iter().filter_map(|c| c.def).collect();
     let prog = compile_outputs(model, sr.stage, &outputs, &[]);
-    let mut rows = Vec::with_capacity(sr.rows.len());
-    stage_rows(model, columns, &prog, sr, &[], &mut rows)?;
-    let mut out = Vec::with_capacity(rows.len() * columns.len() * 20);
-    rows_csv(rows.iter().map(Vec::as_slice), &mut out);
+    let mut values = Vec::with_capacity(sr.rows.len() * columns.len());
+    stage_values(model, columns, &prog, sr, &[], &mut values)?;
+    let mut out = Vec::with_capacity(values.len() * 20);
+    rows_csv(values.chunks(columns.len().max(1)), &mut out);
     Ok(out)
 }
 
