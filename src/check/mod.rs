@@ -9,6 +9,7 @@ mod tables;
 
 use std::collections::HashMap;
 use std::path::{Path, PathBuf};
+use std::rc::Rc;
 
 use crate::diagnostic::{nearest, Problem};
 use crate::model::*;
@@ -207,7 +208,8 @@ enum Origin {
 
 /// A definition statement waiting to be checked.
 struct Item {
-    stmt: syntax::Stmt,
+    /// Shared, so that later passes hold it without copying the tree.
+    stmt: Rc<syntax::Stmt>,
     doc: Option<String>,
     origin: Origin,
     /// Index of the enclosing stage statement, for stage-local fluxes.
@@ -234,7 +236,7 @@ pub(crate) struct Checker {
     /// Name to definition; user definitions shadow the prelude.
     pub(crate) symbols: HashMap<String, DefId>,
     /// Syntax of each definition's main expression, by id.
-    def_syntax: Vec<Option<syntax::Expr>>,
+    def_syntax: Vec<Option<Rc<syntax::Expr>>>,
     slots: Vec<Slot>,
     /// Definitions being checked, innermost last (for cycle reports).
     pub(crate) stack: Vec<DefId>,
@@ -597,7 +599,7 @@ impl Checker {
                             if let EntryKind::Stmt(s) = &e.kind {
                                 if let StmtKind::Flux { .. } = s.kind {
                                     self.items.push(Item {
-                                        stmt: (**s).clone(),
+                                        stmt: Rc::new((**s).clone()),
                                         doc: None,
                                         origin,
                                         stage: Some(stage_index),
@@ -626,7 +628,7 @@ impl Checker {
                     );
                 }
                 _ => self.items.push(Item {
-                    stmt,
+                    stmt: Rc::new(stmt),
                     doc: doc_text,
                     origin,
                     stage: None,
@@ -802,20 +804,23 @@ impl Checker {
                 span,
             };
             let (kind, syntax_expr) = match &item.stmt.kind {
-                StmtKind::Const { value, .. } => (DefKind::Const, Some(value.clone())),
-                StmtKind::Param { value, .. } => (DefKind::Param, Some(value.clone())),
-                StmtKind::Let { value, .. } => (DefKind::Let, Some(value.clone())),
-                StmtKind::Output { value, .. } => (DefKind::Output, Some(value.clone())),
-                StmtKind::Event { condition, .. } => (DefKind::Event, Some(condition.clone())),
-                StmtKind::Table { .. } => (DefKind::Table(usize::MAX), None),
-                StmtKind::Reservoir { initial, .. } => {
-                    (DefKind::Reservoir { capacity: None }, Some(initial.clone()))
+                StmtKind::Const { value, .. } => (DefKind::Const, Some(Rc::new(value.clone()))),
+                StmtKind::Param { value, .. } => (DefKind::Param, Some(Rc::new(value.clone()))),
+                StmtKind::Let { value, .. } => (DefKind::Let, Some(Rc::new(value.clone()))),
+                StmtKind::Output { value, .. } => (DefKind::Output, Some(Rc::new(value.clone()))),
+                StmtKind::Event { condition, .. } => {
+                    (DefKind::Event, Some(Rc::new(condition.clone())))
                 }
+                StmtKind::Table { .. } => (DefKind::Table(usize::MAX), None),
+                StmtKind::Reservoir { initial, .. } => (
+                    DefKind::Reservoir { capacity: None },
+                    Some(Rc::new(initial.clone())),
+                ),
                 StmtKind::State { initial, .. } => (
                     DefKind::State {
                         rate: placeholder.clone(),
                     },
-                    Some(initial.clone()),
+                    Some(Rc::new(initial.clone())),
                 ),
                 StmtKind::Flux { rate, .. } => (
                     DefKind::Flux {
@@ -823,7 +828,7 @@ impl Checker {
                         to: Endpoint::Outside,
                         stage: item.stage,
                     },
-                    Some(rate.clone()),
+                    Some(Rc::new(rate.clone())),
                 ),
                 _ => continue,
             };
@@ -893,7 +898,7 @@ impl Checker {
                     // every use of the parameter would report a mismatch in
                     // the file, far from the option that caused it.
                     let declared = self.def_type(id);
-                    let declared_syntax = self.def_syntax[id].replace(value.clone());
+                    let declared_syntax = self.def_syntax[id].replace(Rc::new(value.clone()));
                     let declared_unit = self.defs[id].display_unit.take();
                     self.slots[id] = Slot::Todo;
                     let given = self.def_type(id);
@@ -1180,7 +1185,7 @@ impl Checker {
     fn check_def_extras(&mut self) {
         for id in 0..self.defs.len() {
             let item_index = self.def_item[id];
-            let stmt = self.items[item_index].stmt.clone();
+            let stmt = Rc::clone(&self.items[item_index].stmt);
             match &stmt.kind {
                 StmtKind::Reservoir { clauses, .. } => {
                     let mut capacity = None;

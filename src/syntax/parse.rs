@@ -53,6 +53,11 @@ pub fn parse(text: &str, file: u32) -> Result<SyntaxFile, Vec<Problem>> {
     if let Some(problem) = nesting_problem(text, file) {
         return Err(vec![problem]);
     }
+    parse_in_pieces(text, file).unwrap_or_else(|| parse_whole(text, file))
+}
+
+/// Parse the whole text at once, with error recovery.
+fn parse_whole(text: &str, file: u32) -> Result<SyntaxFile, Vec<Problem>> {
     let mut errors = Vec::new();
     let mut work = text.to_owned();
     // Each recovery parses the whole file again (twice: plain, then with
@@ -66,11 +71,18 @@ pub fn parse(text: &str, file: u32) -> Result<SyntaxFile, Vec<Problem>> {
             Ok(mut pairs) => {
                 if errors.is_empty() {
                     let root = pairs.next().expect("file rule yields one pair");
-                    let too_long = operator_problems(root.clone(), file);
+                    let too_long = operator_problems(root.clone(), file, 0);
                     if !too_long.is_empty() {
                         return Err(too_long);
                     }
-                    return Ok(build_file(root, file));
+                    let b = Builder {
+                        file,
+                        offset: 0,
+                        first_line: 0,
+                    };
+                    return Ok(SyntaxFile {
+                        entries: b.entries(root.into_inner()),
+                    });
                 }
                 return Err(errors);
             }
@@ -111,6 +123,83 @@ pub fn parse(text: &str, file: u32) -> Result<SyntaxFile, Vec<Problem>> {
             }
         }
     }
+}
+
+/// Bytes of text per piece parsed on its own (see [`parse_in_pieces`]).
+const PIECE_BYTES: usize = 32 * 1024;
+
+/// Parse a text that parses without error in pieces of about
+/// [`PIECE_BYTES`], cut at the starts of lines outside any `{ ... }` block.
+/// A file is a sequence of entries and no entry reaches past its line
+/// except through a block, so the pieces' entries, put together, are the
+/// whole file's; but pest's token list for a piece stays in the processor's
+/// cache and its memory is reused by the next piece, which makes a large
+/// file parse about twice as fast. `None` when a piece fails, so that the
+/// caller parses the whole text and reports its errors as always.
+fn parse_in_pieces(text: &str, file: u32) -> Option<Result<SyntaxFile, Vec<Problem>>> {
+    let mut entries = Vec::new();
+    let mut too_long = Vec::new();
+    let (mut start, mut line) = (0usize, 0usize);
+    for end in piece_ends(text) {
+        let piece = &text[start..end];
+        let root = HadalParser::parse(Rule::file, piece).ok()?.next()?;
+        too_long.extend(operator_problems(root.clone(), file, start));
+        if too_long.is_empty() {
+            let b = Builder {
+                file,
+                offset: start,
+                first_line: line,
+            };
+            entries.extend(b.entries(root.into_inner()));
+        }
+        line += piece.bytes().filter(|&b| b == b'\n').count();
+        start = end;
+    }
+    Some(if too_long.is_empty() {
+        Ok(SyntaxFile { entries })
+    } else {
+        Err(too_long)
+    })
+}
+
+/// Ends of the pieces of [`parse_in_pieces`]: just after a line feed, at
+/// least [`PIECE_BYTES`] after the previous end, with no block open (braces
+/// counted outside strings and comments); the last is the end of the text.
+fn piece_ends(text: &str) -> Vec<usize> {
+    let mut ends = Vec::new();
+    let (mut depth, mut in_string, mut in_comment, mut escaped) = (0i64, false, false, false);
+    let mut last = 0usize;
+    for (i, b) in text.bytes().enumerate() {
+        if b == b'\n' {
+            (in_string, in_comment, escaped) = (false, false, false);
+            if depth == 0 && i + 1 - last >= PIECE_BYTES && i + 1 < text.len() {
+                ends.push(i + 1);
+                last = i + 1;
+            }
+            continue;
+        }
+        if in_comment {
+            continue;
+        }
+        if in_string {
+            match b {
+                _ if escaped => escaped = false,
+                b'\\' => escaped = true,
+                b'"' => in_string = false,
+                _ => {}
+            }
+            continue;
+        }
+        match b {
+            b'#' => in_comment = true,
+            b'"' => in_string = true,
+            b'{' => depth += 1,
+            b'}' => depth -= 1,
+            _ => {}
+        }
+    }
+    ends.push(text.len());
+    ends
 }
 
 /// Parse a text known to fail again, tracking literal tokens too (`=`,
@@ -216,10 +305,10 @@ fn punctuation_words(token: &str) -> Option<&'static str> {
     })
 }
 
-/// The problem for one parse failure, and the position it points at.
-/// Statements with more than [`MAX_OPERATORS`] operators. The pest tree of
-/// an operator chain is flat, so this walk is shallow whatever the input.
-fn operator_problems(root: Pair<Rule>, file: u32) -> Vec<Problem> {
+/// Statements with more than [`MAX_OPERATORS`] operators, for a tree of
+/// text that starts `offset` bytes into the file. The pest tree of an
+/// operator chain is flat, so this walk is shallow whatever the input.
+fn operator_problems(root: Pair<Rule>, file: u32, offset: usize) -> Vec<Problem> {
     let is_operator = |r: Rule| {
         matches!(
             r,
@@ -241,29 +330,7 @@ fn operator_problems(root: Pair<Rule>, file: u32) -> Vec<Problem> {
         )
     };
     let mut problems = Vec::new();
-    let mut statements: Vec<Pair<Rule>> = root.into_inner().collect();
-    while let Some(stmt) = statements.pop() {
-        if stmt.as_rule() == Rule::stage_stmt {
-            // Body lines count on their own; the header line is counted below
-            // without them.
-            for part in stmt.clone().into_inner() {
-                if part.as_rule() == Rule::stage_body {
-                    statements.extend(part.into_inner());
-                }
-            }
-        }
-        let mut count = 0usize;
-        let mut stack: Vec<Pair<Rule>> = stmt
-            .clone()
-            .into_inner()
-            .filter(|p| p.as_rule() != Rule::stage_body)
-            .collect();
-        while let Some(p) = stack.pop() {
-            if is_operator(p.as_rule()) {
-                count += 1;
-            }
-            stack.extend(p.into_inner());
-        }
+    let mut report = |stmt: &Pair<Rule>, count: usize| {
         if count > MAX_OPERATORS {
             let span = stmt.as_span();
             let end = stmt
@@ -277,10 +344,37 @@ fn operator_problems(root: Pair<Rule>, file: u32) -> Vec<Problem> {
                         "this statement has {count} operators; at most {MAX_OPERATORS} are allowed"
                     ),
                 )
-                .label(Span::new(file, span.start(), end), "too long")
+                .label(
+                    Span::new(file, offset + span.start(), offset + end),
+                    "too long",
+                )
                 .help("split the expression into `let` definitions"),
             );
         }
+    };
+    // One pass over the flat token sequence (pre-order): an operator counts
+    // for the innermost statement around it, so the lines of a stage or
+    // ensemble body count on their own and their header line without them.
+    let mut open: Vec<(Pair<Rule>, usize)> = Vec::new();
+    for p in root.into_inner().flatten() {
+        let start = p.as_span().start();
+        while open.last().is_some_and(|(s, _)| s.as_span().end() <= start) {
+            let (s, count) = open.pop().expect("checked above");
+            report(&s, count);
+        }
+        let rule = p.as_rule();
+        if is_top_statement(rule)
+            || matches!(rule, Rule::set_stmt | Rule::vary_stmt | Rule::option_stmt)
+        {
+            open.push((p, 0));
+        } else if is_operator(rule) {
+            if let Some((_, count)) = open.last_mut() {
+                *count += 1;
+            }
+        }
+    }
+    while let Some((s, count)) = open.pop() {
+        report(&s, count);
     }
     problems.sort_by_key(|p| p.primary().map(|s| s.start));
     problems
@@ -461,6 +555,30 @@ fn join_words(words: &[&str]) -> String {
     }
 }
 
+/// Statements that may stand on a line of their own outside any block.
+fn is_top_statement(rule: Rule) -> bool {
+    matches!(
+        rule,
+        Rule::scenario_stmt
+            | Rule::span_stmt
+            | Rule::report_stmt
+            | Rule::solver_stmt
+            | Rule::include_stmt
+            | Rule::const_stmt
+            | Rule::param_stmt
+            | Rule::table_stmt
+            | Rule::reservoir_stmt
+            | Rule::state_stmt
+            | Rule::let_stmt
+            | Rule::output_stmt
+            | Rule::flux_stmt
+            | Rule::event_stmt
+            | Rule::expect_stmt
+            | Rule::stage_stmt
+            | Rule::ensemble_stmt
+    )
+}
+
 /// Grammar rule names in plain words; `None` hides a rule from messages.
 fn rule_words(rule: Rule) -> Option<&'static str> {
     Some(match rule {
@@ -486,7 +604,8 @@ fn rule_words(rule: Rule) -> Option<&'static str> {
         | Rule::sub
         | Rule::mul
         | Rule::div
-        | Rule::pow => "an operator",
+        | Rule::pow
+        | Rule::op_start => "an operator",
         Rule::clause => "`, capacity = ...` or `, rate = ...`",
         Rule::cmp_op => "a comparison",
         Rule::expect_target => "`= VALUE +- SIGMA`",
@@ -498,23 +617,7 @@ fn rule_words(rule: Rule) -> Option<&'static str> {
             "a `vary` line or a setting such as `members = 1000`"
         }
         Rule::stage_close => "`}`",
-        Rule::scenario_stmt
-        | Rule::span_stmt
-        | Rule::report_stmt
-        | Rule::solver_stmt
-        | Rule::include_stmt
-        | Rule::const_stmt
-        | Rule::param_stmt
-        | Rule::table_stmt
-        | Rule::reservoir_stmt
-        | Rule::state_stmt
-        | Rule::let_stmt
-        | Rule::output_stmt
-        | Rule::flux_stmt
-        | Rule::event_stmt
-        | Rule::expect_stmt
-        | Rule::stage_stmt
-        | Rule::ensemble_stmt => "a statement",
+        r if is_top_statement(r) => "a statement",
         Rule::set_stmt => "a `set`, `flux` or `solver` line",
         Rule::kw_scenario
         | Rule::kw_span
@@ -568,28 +671,30 @@ fn pratt() -> &'static PrattParser<Rule> {
     })
 }
 
+/// Builds the syntax tree of a piece of a file that starts `offset` bytes
+/// and `first_line` lines into it.
 struct Builder {
     file: u32,
-}
-
-fn build_file(root: Pair<Rule>, file: u32) -> SyntaxFile {
-    let b = Builder { file };
-    SyntaxFile {
-        entries: b.entries(root.into_inner()),
-    }
+    offset: usize,
+    first_line: usize,
 }
 
 impl Builder {
     fn span(&self, pair: &Pair<Rule>) -> Span {
         let s = pair.as_span();
-        Span::new(self.file, s.start(), s.end())
+        Span::new(self.file, self.offset + s.start(), self.offset + s.end())
+    }
+
+    /// 0-based line of the file where `pair` starts.
+    fn line(&self, pair: &Pair<Rule>) -> usize {
+        self.first_line + pair.line_col().0 - 1
     }
 
     fn entries<'i>(&self, pairs: impl IntoIterator<Item = Pair<'i, Rule>>) -> Vec<Entry> {
         let mut out: Vec<Entry> = Vec::new();
         let mut last_stmt_line: Option<usize> = None;
         for pair in pairs {
-            let line = pair.line_col().0 - 1;
+            let line = self.line(&pair);
             match pair.as_rule() {
                 Rule::comment => {
                     let text = pair.as_str().trim_end().to_owned();
@@ -883,17 +988,17 @@ impl Builder {
     /// A block body: entries up to the closing brace.
     fn body(&self, b: Pair<Rule>) -> StageBody {
         let mut open_comment = None;
-        let mut close_line = b.line_col().0 - 1;
+        let mut close_line = self.line(&b);
         let open_line = close_line;
         let mut inner: Vec<Pair<Rule>> = b.into_inner().collect();
         if let Some(first) = inner.first() {
-            if first.as_rule() == Rule::comment && first.line_col().0 - 1 == open_line {
+            if first.as_rule() == Rule::comment && self.line(first) == open_line {
                 open_comment = Some(first.as_str().trim_end().to_owned());
                 inner.remove(0);
             }
         }
         if let Some(close) = inner.iter().find(|p| p.as_rule() == Rule::stage_close) {
-            close_line = close.line_col().0 - 1;
+            close_line = self.line(close);
         }
         StageBody {
             open_comment,
@@ -1037,4 +1142,165 @@ fn is_keyword(rule: Rule) -> bool {
             | Rule::kw_then
             | Rule::kw_else
     )
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    const KEYWORDS: &str = "scenario span report every solver include const param table \
+        reservoir state let output flux event expect stage ensemble vary from to at in set if \
+        then else and or not before after";
+
+    /// The value of the first `let` in `text`, with names as plain text.
+    fn let_value(text: &str) -> Option<String> {
+        let file = parse(text, 0).ok()?;
+        file.entries.into_iter().find_map(|e| match e.kind {
+            EntryKind::Stmt(stmt) => match stmt.kind {
+                StmtKind::Let { value, .. } => Some(match value.kind {
+                    ExprKind::Name(id) => format!("name {}", id.text),
+                    ExprKind::Call { func, args } => format!("call {}/{}", func.text, args.len()),
+                    other => format!("{other:?}"),
+                }),
+                _ => None,
+            },
+            EntryKind::Comment(_) => None,
+        })
+    }
+
+    #[test]
+    fn no_keyword_is_a_name_but_every_longer_or_shorter_word_is() {
+        let keywords: Vec<&str> = KEYWORDS.split_whitespace().collect();
+        assert_eq!(keywords.len(), 32);
+        for &kw in &keywords {
+            assert!(
+                parse(&format!("const {kw} = 1\n"), 0).is_err(),
+                "`{kw}` was taken as a name"
+            );
+            // Words that start like a keyword, extend one, or stop short of
+            // one (the grammar tests keywords by first letter).
+            let short = &kw[..kw.len() - 1];
+            for word in [
+                format!("{kw}x"),
+                format!("{kw}_"),
+                format!("{kw}9"),
+                format!("x{kw}"),
+            ] {
+                assert_eq!(
+                    let_value(&format!("let a = {word}\n")),
+                    Some(format!("name {word}")),
+                    "`{word}` is a name"
+                );
+            }
+            if !short.is_empty() && !keywords.contains(&short) {
+                assert_eq!(
+                    let_value(&format!("let a = {short}\n")),
+                    Some(format!("name {short}")),
+                    "`{short}` is a name"
+                );
+            }
+        }
+    }
+
+    #[test]
+    fn a_call_may_have_space_before_its_parenthesis_and_a_name_is_not_a_call() {
+        assert_eq!(let_value("let a = max (1, b)\n"), Some("call max/2".into()));
+        assert_eq!(let_value("let a = max(1)\n"), Some("call max/1".into()));
+        assert_eq!(let_value("let a = max\n"), Some("name max".into()));
+    }
+
+    #[test]
+    fn operators_count_per_line_also_inside_a_stage_body() {
+        let sum = |n: usize| format!("1{}", " + 1".repeat(n));
+        let max = MAX_OPERATORS;
+        // Header and body lines at the limit each, far beyond it together.
+        let ok = format!(
+            "stage s from {} Ga to 0 Ga {{\n  set a = {}\n  set b = {}\n}}\n",
+            sum(max),
+            sum(max),
+            sum(max)
+        );
+        assert!(parse(&ok, 0).is_ok());
+        let long_body = format!(
+            "stage s from 1 Ga to 0 Ga {{\n  set a = 1\n  set b = {}\n}}\n",
+            sum(max + 1)
+        );
+        let problems = parse(&long_body, 0).unwrap_err();
+        assert_eq!(problems.len(), 1);
+        assert_eq!(
+            problems[0].message,
+            format!(
+                "this statement has {} operators; at most {max} are allowed",
+                max + 1
+            )
+        );
+        // The label is the body line, not the stage header.
+        let at = problems[0].primary().expect("a label").start as usize;
+        assert_eq!(&long_body[at..at + 9], "set b = 1");
+        let long_header = format!(
+            "stage s from {} Ga to 0 Ga {{\n  set a = 1\n}}\n",
+            sum(max + 1)
+        );
+        let problems = parse(&long_header, 0).unwrap_err();
+        assert_eq!(problems.len(), 1);
+        assert_eq!(problems[0].primary().expect("a label").start, 0);
+    }
+
+    /// Texts of many pieces, with blocks, comments and strings holding
+    /// braces near where pieces are cut.
+    fn large_texts() -> Vec<String> {
+        let demos = [
+            include_str!("../../scenarios/hot_start.hadal"),
+            include_str!("../../scenarios/glacial_window.hadal"),
+        ];
+        let mut texts = Vec::new();
+        for demo in demos {
+            let mut t = String::new();
+            while t.len() < 6 * PIECE_BYTES {
+                t.push_str(demo);
+                t.push_str("let odd = 1 # a comment with { a brace\n");
+                t.push_str("scenario s \"a title with { and # inside\"\n\n");
+            }
+            texts.push(t.replace('\n', "\r\n"));
+            texts.push(t);
+        }
+        texts
+    }
+
+    #[test]
+    fn parsing_in_pieces_gives_the_whole_files_tree() {
+        for text in large_texts() {
+            assert!(piece_ends(&text).len() >= 4, "several pieces");
+            let pieces = parse_in_pieces(&text, 3).expect("every piece parses");
+            assert_eq!(
+                format!("{pieces:?}"),
+                format!("{:?}", parse_whole(&text, 3))
+            );
+            assert!(pieces.is_ok());
+        }
+    }
+
+    #[test]
+    fn a_file_with_problems_in_a_later_piece_reports_as_a_whole() {
+        for text in large_texts() {
+            let at = text.len() - 100;
+            let line_start = text[..at].rfind('\n').unwrap() + 1;
+            // An operator chain that is too long, then a broken line.
+            let long = format!("let long = 1{}\n", " + 1".repeat(MAX_OPERATORS + 1));
+            let with_long = format!("{}{long}{}", &text[..line_start], &text[line_start..]);
+            let got = parse(&with_long, 0);
+            assert_eq!(
+                format!("{got:?}"),
+                format!("{:?}", parse_whole(&with_long, 0))
+            );
+            assert_eq!(
+                got.unwrap_err()[0].primary().unwrap().start as usize,
+                line_start
+            );
+            let broken = format!("{}const = 1\n{}", &text[..line_start], &text[line_start..]);
+            let got = parse(&broken, 0);
+            assert_eq!(format!("{got:?}"), format!("{:?}", parse_whole(&broken, 0)));
+            assert_eq!(got.unwrap_err().len(), 1);
+        }
+    }
 }
