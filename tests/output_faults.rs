@@ -124,7 +124,7 @@ fn temporary_files_of_killed_runs_are_cleared_by_the_next_run() {
     assert!(!left.contains(&dead_tmp), "{left:?}");
     assert!(left.contains(&live_tmp), "{left:?}");
     // The same for the cache, by `hadal cache gc`.
-    let fan = env.path("cache/v1/ab");
+    let fan = env.path("cache/v2/ab");
     std::fs::create_dir_all(&fan).unwrap();
     std::fs::write(fan.join(format!(".abcd.tmp-{host}-{dead}-1")), b"half").unwrap();
     let o = env.run(&["cache", "verify"]);

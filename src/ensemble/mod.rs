@@ -648,17 +648,18 @@ fn solve_shared(
     for s in 0..first {
         let done: Vec<bool> = events.iter().map(Option::is_some).collect();
         let key = pipeline::stage_key(model, &g, s, &state, &done);
-        let cached = store
-            .and_then(|st| st.get(&key).ok().flatten())
-            .and_then(|b| pipeline::decode_stage(s, &b))
-            .filter(|r| r.end.0.len() == state.0.len());
+        let cached = store.and_then(|st| {
+            pipeline::get_stage(st, &key, s, state.0.len(), true)
+                .ok()
+                .flatten()
+        });
         let r = match cached {
-            Some(r) => r,
+            Some((r, _)) => r,
             None => {
                 let r = solve::solve_stage(model, s, &state, &done)
                     .map_err(|p| format!("{}: {}", p.code, p.message))?;
                 if let Some(st) = store {
-                    let _ = st.put(&key, &pipeline::encode_stage(&r));
+                    let _ = pipeline::put_stage(st, &key, &r);
                 }
                 r
             }

@@ -70,21 +70,25 @@ type Parts = BTreeMap<Rc<str>, Rc<str>>;
 
 fn bits(v: f64) -> String {
     let mut out = Vec::with_capacity(16);
-    crate::cache::push_hex(&mut out, &v.to_bits().to_be_bytes());
+    crate::cache::push_hex_u64(&mut out, v.to_bits());
     String::from_utf8(out).unwrap_or_default()
 }
 
 fn hash_parts(kind: &str, parts: &Parts) -> Key {
-    let mut h = blake3::Hasher::new();
-    h.update(kind.as_bytes());
-    h.update(&ENGINE_VERSION.to_le_bytes());
+    // One buffer, hashed at once: blake3 hashes whole chunks of a long input
+    // side by side (SIMD), but a stream of small updates one block at a time,
+    // several times slower. The bytes are the same either way.
+    let len: usize = parts.iter().map(|(k, v)| 16 + k.len() + v.len()).sum();
+    let mut buf = Vec::with_capacity(kind.len() + 8 + len);
+    buf.extend_from_slice(kind.as_bytes());
+    buf.extend_from_slice(&ENGINE_VERSION.to_le_bytes());
     for (k, v) in parts {
-        h.update(&(k.len() as u64).to_le_bytes());
-        h.update(k.as_bytes());
-        h.update(&(v.len() as u64).to_le_bytes());
-        h.update(v.as_bytes());
+        buf.extend_from_slice(&(k.len() as u64).to_le_bytes());
+        buf.extend_from_slice(k.as_bytes());
+        buf.extend_from_slice(&(v.len() as u64).to_le_bytes());
+        buf.extend_from_slice(v.as_bytes());
     }
-    *h.finalize().as_bytes()
+    *blake3::hash(&buf).as_bytes()
 }
 
 /// Labels and canonical texts of graph nodes, each built once per run:
@@ -204,12 +208,12 @@ fn stage_parts_with(
 
 /// Ages as comma-separated 16-digit hex bit patterns.
 fn joined_bits(ages: impl Iterator<Item = f64>) -> String {
-    let mut out = Vec::new();
+    let mut out = Vec::with_capacity(17 * ages.size_hint().0);
     for (k, a) in ages.enumerate() {
         if k > 0 {
             out.push(b',');
         }
-        crate::cache::push_hex(&mut out, &a.to_bits().to_be_bytes());
+        crate::cache::push_hex_u64(&mut out, a.to_bits());
     }
     String::from_utf8(out).unwrap_or_default()
 }
@@ -256,7 +260,9 @@ impl R<'_> {
     }
 }
 
-const PAYLOAD_VERSION: u64 = 2;
+/// Version of the stage payloads. 3: the report rows in an entry of their
+/// own (see [`rows_key`]), so a reused stage reads only its small head.
+const PAYLOAD_VERSION: u64 = 3;
 
 fn write_rows(w: &mut W, rows: &[(f64, Vec<f64>)]) {
     w.u64(rows.len() as u64);
@@ -282,12 +288,27 @@ fn read_rows(r: &mut R, n: usize, limit: usize) -> Option<Vec<(f64, Vec<f64>)>> 
     Some(rows)
 }
 
-pub fn encode_stage(r: &StageRun) -> Vec<u8> {
+/// The key of a stage's report rows, stored apart from the rest of its
+/// result (the head, under the stage key): an unchanged rerun needs the
+/// head of every stage but the rows of none.
+pub fn rows_key(stage_key: &Key) -> Key {
+    let mut buf = b"hadal stage rows\n".to_vec();
+    buf.extend_from_slice(stage_key);
+    *blake3::hash(&buf).as_bytes()
+}
+
+/// A stage's result as two payloads: the head (row count, probes, end
+/// state, statistics, events) and the report rows.
+pub fn encode_stage(r: &StageRun) -> (Vec<u8>, Vec<u8>) {
+    let n = r.end.0.len();
+    let mut rows = W(Vec::with_capacity(16 + r.rows.len() * (n + 1) * 8));
+    rows.u64(PAYLOAD_VERSION);
+    rows.u64(n as u64);
+    write_rows(&mut rows, &r.rows);
     let mut w = W(Vec::new());
     w.u64(PAYLOAD_VERSION);
-    let n = r.end.0.len();
     w.u64(n as u64);
-    write_rows(&mut w, &r.rows);
+    w.u64(r.rows.len() as u64);
     write_rows(&mut w, &r.probes);
     for v in &r.end.0 {
         w.f64(*v);
@@ -322,31 +343,75 @@ pub fn encode_stage(r: &StageRun) -> Vec<u8> {
             None => w.u64(0),
         }
     }
-    w.0
+    (w.0, rows.0)
 }
 
-pub fn decode_stage(stage: usize, bytes: &[u8]) -> Option<StageRun> {
-    decode_stage_with(stage, bytes, true).map(|(r, _)| r)
+/// Store a stage result: its rows first, then its head, so that a head
+/// found is (but for a power cut) a stage whose rows can be read.
+pub fn put_stage(store: &Store, key: &Key, r: &StageRun) -> std::io::Result<()> {
+    let (head, rows) = encode_stage(r);
+    store.put(&rows_key(key), &rows)?;
+    store.put(key, &head)
 }
 
-/// Decode a stage payload; with `rows` false the report rows are checked
-/// for length and skipped, leaving `rows` empty (most reruns need only the
-/// end state, probes and statistics). Also gives the number of rows.
-fn decode_stage_with(stage: usize, bytes: &[u8], rows: bool) -> Option<(StageRun, usize)> {
+/// A stored stage result: with `rows` false its head only (and its row
+/// count). `Ok(None)` when absent; `Err` when damaged or not a result of a
+/// stage of `n` components from this engine version (the caller
+/// recomputes, and its write replaces the entry).
+pub fn get_stage(
+    store: &Store,
+    key: &Key,
+    stage: usize,
+    n: usize,
+    rows: bool,
+) -> Result<Option<(StageRun, usize)>, crate::cache::Corrupt> {
+    let foreign = |k: &Key| crate::cache::Corrupt {
+        path: store.path(k),
+        why: "not a stage result of this engine version".into(),
+    };
+    let Some(head) = store.get(key)? else {
+        return Ok(None);
+    };
+    let Some((mut r, count)) = decode_stage_head(stage, &head).filter(|(r, _)| r.end.0.len() == n)
+    else {
+        return Err(foreign(key));
+    };
+    if rows {
+        let rkey = rows_key(key);
+        let Some(bytes) = store.get(&rkey)? else {
+            return Ok(None);
+        };
+        r.rows = decode_rows(&bytes, n, count).ok_or_else(|| foreign(&rkey))?;
+    }
+    Ok(Some((r, count)))
+}
+
+/// A whole stage result from its two payloads.
+pub fn decode_stage(stage: usize, head: &[u8], rows: &[u8]) -> Option<StageRun> {
+    let (mut r, count) = decode_stage_head(stage, head)?;
+    r.rows = decode_rows(rows, r.end.0.len(), count)?;
+    Some(r)
+}
+
+/// The report rows of a stage with `n` state components and `count` rows.
+fn decode_rows(bytes: &[u8], n: usize, count: usize) -> Option<Vec<(f64, Vec<f64>)>> {
+    let mut r = R(bytes);
+    if r.u64()? != PAYLOAD_VERSION || r.len(1 << 24)? != n {
+        return None;
+    }
+    let rows = read_rows(&mut r, n, bytes.len())?;
+    (rows.len() == count && r.0.is_empty()).then_some(rows)
+}
+
+/// The head of a stage result (`rows` left empty), and its number of rows.
+fn decode_stage_head(stage: usize, bytes: &[u8]) -> Option<(StageRun, usize)> {
     let mut r = R(bytes);
     if r.u64()? != PAYLOAD_VERSION {
         return None;
     }
     let n = r.len(1 << 24)?;
-    let (rows, row_count) = if rows {
-        let rows = read_rows(&mut r, n, bytes.len())?;
-        let count = rows.len();
-        (rows, count)
-    } else {
-        let count = r.len(1 << 28)?;
-        r.take(count.checked_mul(n + 1)?.checked_mul(8)?)?;
-        (Vec::new(), count)
-    };
+    let row_count = r.len(1 << 28)?;
+    let rows = Vec::new();
     let probes = read_rows(&mut r, n, bytes.len())?;
     let mut end = Vec::with_capacity(n);
     for _ in 0..n {
@@ -554,9 +619,10 @@ pub fn execute(model: &Model, store: Option<&Store>) -> Result<Outcome, Problem>
     let mut runs = Vec::new();
     let mut reports = Vec::new();
     let mut keys = Vec::new();
-    // Payloads of reused stages, whose rows are decoded only if a part of
-    // the series must be derived again.
-    let mut payloads: Vec<Option<(usize, Vec<u8>)>> = Vec::new();
+    // Row counts of reused stages, whose rows are read only if a part of
+    // the series must be derived again; and where each stage started.
+    let mut payloads: Vec<Option<usize>> = Vec::new();
+    let mut starts: Vec<(State, Vec<bool>)> = Vec::new();
     for s in 0..model.stages.len() {
         let done: Vec<bool> = events.iter().map(Option::is_some).collect();
         let mut parts = stage_parts_with(model, &g, s, &done, &mut wide);
@@ -574,26 +640,17 @@ pub fn execute(model: &Model, store: Option<&Store>) -> Result<Outcome, Problem>
         };
         let mut cached = None;
         if let Some(store) = store {
-            match store.get(&key) {
-                Ok(Some(bytes)) => match decode_stage_with(s, &bytes, false) {
-                    Some((r, count)) if r.end.0.len() == state.0.len() => {
-                        cached = Some((r, count, bytes))
-                    }
-                    _ => warnings.push(
-                        Problem::warning("H0701", format!("cache entry for stage `{stage_name}` could not be decoded; recomputed"))
-                            .help("run `hadal cache verify`; the entry was written by another engine version or damaged"),
-                    ),
-                },
-                Ok(None) => {}
+            match get_stage(store, &key, s, state.0.len(), false) {
+                Ok(found) => cached = found,
                 Err(c) => warnings.push(corrupt_warning(&c, &format!("stage `{stage_name}`"))),
             }
         }
         let (run, status, why, payload) = match cached {
-            Some((r, count, bytes)) => (r, Status::Reused, String::new(), Some((count, bytes))),
+            Some((r, count)) => (r, Status::Reused, String::new(), Some(count)),
             None => {
                 let r = solve::solve_stage(model, s, &state, &done)?;
                 if let Some(store) = store {
-                    if let Err(e) = store.put(&key, &encode_stage(&r)) {
+                    if let Err(e) = put_stage(store, &key, &r) {
                         warnings.push(Problem::warning(
                             "H0702",
                             format!(
@@ -615,6 +672,7 @@ pub fn execute(model: &Model, store: Option<&Store>) -> Result<Outcome, Problem>
             }
         };
         payloads.push(payload);
+        starts.push((state.clone(), done));
         trace.push_str(&format!("stage\t{stage_name}\t{fingerprint}\n"));
         match &hashes {
             Ok(h) => trace.push_str(&part_lines(h)),
@@ -679,13 +737,33 @@ pub fn execute(model: &Model, store: Option<&Store>) -> Result<Outcome, Problem>
         }
         let payload = payloads[s].take();
         if found {
-            rows += payload.map_or(sr.rows.len(), |(count, _)| count);
+            rows += payload.unwrap_or(sr.rows.len());
         } else {
-            if let Some((_, bytes)) = payload {
-                // Its header decoded above, so the rows decode too.
-                if let Some(full) = decode_stage(s, &bytes) {
-                    sr.rows = full.rows;
-                }
+            if payload.is_some() {
+                // A reused stage: its rows from the store, or (if they are
+                // gone or damaged) from solving it again, which gives the
+                // same bits.
+                let n = sr.end.0.len();
+                let stored = match store.map(|st| get_stage(st, &keys[s], s, n, true)) {
+                    Some(Ok(Some((full, _)))) => Some(full.rows),
+                    Some(Err(c)) => {
+                        let what = format!("the rows of stage `{}`", model.stages[s].name);
+                        warnings.push(corrupt_warning(&c, &what));
+                        None
+                    }
+                    _ => None,
+                };
+                sr.rows = match stored {
+                    Some(r) => r,
+                    None => {
+                        let (start, done) = &starts[s];
+                        let again = solve::solve_stage(model, s, start, done)?;
+                        if let Some(st) = store {
+                            let _ = put_stage(st, &keys[s], &again);
+                        }
+                        again.rows
+                    }
+                };
             }
             series_reused = false;
             rows += sr.rows.len();
@@ -758,12 +836,17 @@ mod tests {
             events: vec![None, Some(2.5e9)],
             wall: std::time::Duration::ZERO,
         };
-        let b = encode_stage(&r);
-        let d = decode_stage(2, &b).unwrap();
-        assert_eq!(encode_stage(&d), b);
+        let (head, rows) = encode_stage(&r);
+        let d = decode_stage(2, &head, &rows).unwrap();
+        assert_eq!(encode_stage(&d), (head.clone(), rows.clone()));
         assert_eq!(d.rows[0].1[2].to_bits(), (-0.0f64).to_bits());
         assert_eq!(d.stats, r.stats);
         // Truncated payloads are refused, not misread.
-        assert!(decode_stage(2, &b[..b.len() - 1]).is_none());
+        assert!(decode_stage(2, &head[..head.len() - 1], &rows).is_none());
+        assert!(decode_stage(2, &head, &rows[..rows.len() - 1]).is_none());
+        // Rows of another stage result (another count) are refused too.
+        let mut fewer = r.clone();
+        fewer.rows.pop();
+        assert!(decode_stage(2, &head, &encode_stage(&fewer).1).is_none());
     }
 }
