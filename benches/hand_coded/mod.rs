@@ -260,21 +260,24 @@ impl System for HandCoded {
             radiogenic += q * libm::exp2(age / half_life);
         }
         let heat_loss =
-            c.q0 * libm::pow(
+            c.q0 * hadal::numeric::pow(
                 (temp - c.t_surface) / (c.t_ref - c.t_surface),
                 c.convection_exponent,
-            ) * libm::exp(c.viscosity_sensitivity * (temp - c.t_ref));
+            ) * hadal::numeric::exp(c.viscosity_sensitivity * (temp - c.t_ref));
         let d_temp = (radiogenic - heat_loss) / c.heat_capacity;
 
         // Capacities.
-        let cap_um = c.cap_um_ref * libm::exp(-c.k_cap_um * (temp - c.t_cap_ref)) * c.rock_mass_um;
-        let cap_tz = c.cap_tz_ref * libm::exp(-c.k_cap_tz * (temp - c.t_cap_ref)) * c.rock_mass_tz;
+        let cap_um =
+            c.cap_um_ref * hadal::numeric::exp(-c.k_cap_um * (temp - c.t_cap_ref)) * c.rock_mass_um;
+        let cap_tz =
+            c.cap_tz_ref * hadal::numeric::exp(-c.k_cap_tz * (temp - c.t_cap_ref)) * c.rock_mass_tz;
 
         // Plates and melting.
-        let plate_speed = c.plate_speed_ref * libm::exp(c.plate_speed_slope * (temp - c.t_ref));
+        let plate_speed =
+            c.plate_speed_ref * hadal::numeric::exp(c.plate_speed_slope * (temp - c.t_ref));
         // clamp(x, 0, 1); the same value as the compiled `x.max(0).min(1)`.
         let regassing_efficiency = (p.regassing_efficiency_ref
-            * libm::exp(-c.regassing_slope * (temp - c.t_ref)))
+            * hadal::numeric::exp(-c.regassing_slope * (temp - c.t_ref)))
         .clamp(0.0, 1.0);
         let slab_hydration = 1.0f64.min(ocean / c.hydration_ocean);
         let melting_depth =
@@ -314,7 +317,7 @@ impl System for HandCoded {
         dy[o] += um_overflow;
         // delivery: outside -> ocean (early stage only)
         if p.delivery {
-            let delivery = c.delivery_rate0 * libm::exp(-t / c.delivery_efold);
+            let delivery = c.delivery_rate0 * hadal::numeric::exp(-t / c.delivery_efold);
             dy[DELIVERED] += delivery;
             dy[o] += delivery;
         }

@@ -1124,7 +1124,7 @@ impl<'m> ConstEval<'m> {
                 let v = vals?;
                 let tables = self.tables;
                 match f {
-                    Builtin::Exp => libm::exp(v[0]),
+                    Builtin::Exp => crate::numeric::exp(v[0]),
                     Builtin::Ln => libm::log(v[0]),
                     Builtin::Log10 => libm::log10(v[0]),
                     Builtin::Sqrt => libm::sqrt(v[0]),

@@ -440,7 +440,7 @@ unsafe fn exec(p: &Kernels, r: &mut [f64], ins: Ins) {
         Ins::Neg(d, a) => g!(d) = -g!(a),
         Ins::Not(d, a) => g!(d) = if g!(a) == 0.0 { 1.0 } else { 0.0 },
         Ins::Select(d, c, a, b) => g!(d) = if g!(c) != 0.0 { g!(a) } else { g!(b) },
-        Ins::Exp(d, a) => g!(d) = libm::exp(g!(a)),
+        Ins::Exp(d, a) => g!(d) = numeric::exp(g!(a)),
         Ins::Ln(d, a) => g!(d) = libm::log(g!(a)),
         Ins::Log10(d, a) => g!(d) = libm::log10(g!(a)),
         Ins::Sqrt(d, a) => g!(d) = libm::sqrt(g!(a)),
@@ -466,13 +466,13 @@ unsafe fn exec(p: &Kernels, r: &mut [f64], ins: Ins) {
         Ins::Fill(d, m, c) => g!(d) = g!(m) / g!(c),
         Ins::Excess(d, m, c) => g!(d) = (g!(m) - g!(c)).max(0.0),
         Ins::Mul3(d, a, b, c) => g!(d) = (g!(a) * g!(b)) * g!(c),
-        Ins::ExpMul(d, a, b) => g!(d) = libm::exp(g!(a) * g!(b)),
+        Ins::ExpMul(d, a, b) => g!(d) = numeric::exp(g!(a) * g!(b)),
         Ins::MulSub(d, a, b, c) => g!(d) = g!(a) * (g!(b) - g!(c)),
         Ins::SubDiv(d, a, b, c) => g!(d) = (g!(a) - g!(b)) / g!(c),
         Ins::DecayAdd(d, acc, q, h) => {
             g!(d) = g!(acc) + g!(q) * libm::exp2(r[p.age_reg as usize] / g!(h));
         }
-        Ins::MulExpMul(d, c, a, b) => g!(d) = g!(c) * libm::exp(g!(a) * g!(b)),
+        Ins::MulExpMul(d, c, a, b) => g!(d) = g!(c) * numeric::exp(g!(a) * g!(b)),
     }
 }
 

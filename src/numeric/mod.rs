@@ -1,6 +1,12 @@
 //! Numeric kernels shared by the constant folder and the compiled evaluator.
-//! Transcendental functions come from `libm`, so results are the same bits on
-//! every platform.
+//! Transcendental functions are pure Rust (`elementary` for `exp` and
+//! `pow`, `libm` for the rest), so results are the same bits on every
+//! platform.
+
+pub mod elementary;
+mod tables;
+
+pub use elementary::exp;
 
 use crate::syntax::BinOp;
 
@@ -35,7 +41,7 @@ pub fn pow(a: f64, b: f64) -> f64 {
     } else if b == 3.0 {
         a * a * a
     } else {
-        libm::pow(a, b)
+        elementary::pow(a, b)
     }
 }
 
