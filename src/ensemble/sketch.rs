@@ -75,7 +75,11 @@ fn bucket_index(a: f64) -> i32 {
     // ceil(t) by truncation (|t| < 2^18 here): `f64::ceil` is a call into
     // the C library on a baseline x86-64.
     let truncated = t as i32;
-    let k = if f64::from(truncated) < t { truncated + 1 } else { truncated };
+    let k = if f64::from(truncated) < t {
+        truncated + 1
+    } else {
+        truncated
+    };
     let above = f64::from(k) - t;
     if !(1e-4..=1.0 - 1e-4).contains(&above) {
         return exact_index(a);
