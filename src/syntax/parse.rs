@@ -167,19 +167,35 @@ fn parse_in_pieces(text: &str, file: u32) -> Option<Result<SyntaxFile, Vec<Probl
 /// counted outside strings and comments); the last is the end of the text.
 fn piece_ends(text: &str) -> Vec<usize> {
     let mut ends = Vec::new();
-    let (mut depth, mut in_string, mut in_comment, mut escaped) = (0i64, false, false, false);
-    let mut last = 0usize;
-    for (i, b) in text.bytes().enumerate() {
-        if b == b'\n' {
-            (in_string, in_comment, escaped) = (false, false, false);
-            if depth == 0 && i + 1 - last >= PIECE_BYTES && i + 1 < text.len() {
+    let (mut depth, mut last) = (0i64, 0usize);
+    for (i, b) in code_bytes(text) {
+        match b {
+            b'\n' if depth == 0 && i + 1 - last >= PIECE_BYTES && i + 1 < text.len() => {
                 ends.push(i + 1);
                 last = i + 1;
             }
-            continue;
+            b'{' => depth += 1,
+            b'}' => depth -= 1,
+            _ => {}
+        }
+    }
+    ends.push(text.len());
+    ends
+}
+
+/// The bytes of `text` outside strings and comments, with their offsets,
+/// and every line break (`\n` or `\r`, which also ends a string or a
+/// comment): what the pre-scans of [`nesting_problem`] and [`piece_ends`]
+/// look at.
+fn code_bytes(text: &str) -> impl Iterator<Item = (usize, u8)> + '_ {
+    let (mut in_string, mut in_comment, mut escaped) = (false, false, false);
+    text.bytes().enumerate().filter(move |&(_, b)| {
+        if b == b'\n' || b == b'\r' {
+            (in_string, in_comment, escaped) = (false, false, false);
+            return true;
         }
         if in_comment {
-            continue;
+            return false;
         }
         if in_string {
             match b {
@@ -188,18 +204,15 @@ fn piece_ends(text: &str) -> Vec<usize> {
                 b'"' => in_string = false,
                 _ => {}
             }
-            continue;
+            return false;
         }
         match b {
             b'#' => in_comment = true,
             b'"' => in_string = true,
-            b'{' => depth += 1,
-            b'}' => depth -= 1,
-            _ => {}
+            _ => return true,
         }
-    }
-    ends.push(text.len());
-    ends
+        false
+    })
 }
 
 /// Parse a text known to fail again, tracking literal tokens too (`=`,
@@ -223,33 +236,12 @@ fn detailed_error(text: &str, plain: pest::error::Error<Rule>) -> pest::error::E
 /// brackets may nest (each `if` nests its branches), before the
 /// recursive-descent parser sees them. Comments and strings are skipped.
 fn nesting_problem(text: &str, file: u32) -> Option<Problem> {
-    let mut depth = 0usize;
-    let mut ifs = 0usize;
-    let mut in_string = false;
-    let mut in_comment = false;
-    let mut escaped = false;
+    let (mut depth, mut ifs) = (0usize, 0usize);
     let bytes = text.as_bytes();
-    for (i, c) in text.char_indices() {
-        if c == '\n' || c == '\r' {
-            (depth, ifs, in_string, in_comment, escaped) = (0, 0, false, false, false);
-            continue;
-        }
-        if in_comment {
-            continue;
-        }
-        if in_string {
-            match c {
-                _ if escaped => escaped = false,
-                '\\' => escaped = true,
-                '"' => in_string = false,
-                _ => {}
-            }
-            continue;
-        }
-        match c {
-            '#' => in_comment = true,
-            '"' => in_string = true,
-            '(' => {
+    for (i, b) in code_bytes(text) {
+        match b {
+            b'\n' | b'\r' => (depth, ifs) = (0, 0),
+            b'(' => {
                 depth += 1;
                 if depth > MAX_NESTING {
                     return Some(
@@ -262,8 +254,8 @@ fn nesting_problem(text: &str, file: u32) -> Option<Problem> {
                     );
                 }
             }
-            ')' => depth = depth.saturating_sub(1),
-            'i' if text[i..].starts_with("if")
+            b')' => depth = depth.saturating_sub(1),
+            b'i' if bytes[i..].starts_with(b"if")
                 && (i == 0 || !is_word_byte(bytes[i - 1]))
                 && bytes.get(i + 2).is_none_or(|&b| !is_word_byte(b)) =>
             {
