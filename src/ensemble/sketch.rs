@@ -52,26 +52,17 @@ impl Bucket {
 
 /// The bucket of magnitude `a` (finite, at least [`TINY`]):
 /// `ceil(ln a / ln gamma)` exactly as [`exact_index`] computes it, but from
-/// a table logarithm good to about 1e-10, which decides the bucket unless
-/// `a` lies within a ten-thousandth of a bucket of an edge; only then is
-/// `libm::log` asked. Every member's every report value goes through here,
-/// so this is most of the fold; the buckets, and so every quantile, are
-/// the same bits either way (tested against `exact_index`).
+/// a table logarithm good to about 1e-10 (`numeric::elementary::ln_approx`),
+/// which decides the bucket unless `a` lies within a ten-thousandth of a
+/// bucket of an edge; only then is `libm::log` asked. Every member's every
+/// report value goes through here, so this is most of the fold; the
+/// buckets, and so every quantile, are the same bits either way (tested
+/// against `exact_index`).
 fn bucket_index(a: f64) -> i32 {
-    const LN_2: f64 = std::f64::consts::LN_2;
-    let bits = a.to_bits();
-    let biased = (bits >> 52) & 0x7ff;
-    if biased == 0 {
+    if a < f64::MIN_POSITIVE {
         return exact_index(a); // subnormal
     }
-    let table = log_table();
-    let i = ((bits >> (52 - LOG_TABLE_BITS)) & ((1 << LOG_TABLE_BITS) - 1)) as usize;
-    let m = f64::from_bits((bits & ((1 << 52) - 1)) | (1023 << 52)); // in [1, 2)
-    let (c, inv_c, ln_c) = table.0[i];
-    // ln m = ln c + ln(1 + u), |u| < 2^-9: three terms leave < 1e-11.
-    let u = (m - c) * inv_c;
-    let ln_m = ln_c + u * (1.0 - u * (0.5 - u * (1.0 / 3.0)));
-    let t = ((biased as i64 - 1023) as f64 * LN_2 + ln_m) * table.1;
+    let t = crate::numeric::elementary::ln_approx(a) * inv_gamma_ln();
     // ceil(t) by truncation (|t| < 2^18 here): `f64::ceil` is a call into
     // the C library on a baseline x86-64.
     let truncated = t as i32;
@@ -92,23 +83,9 @@ fn exact_index(a: f64) -> i32 {
     libm::ceil(libm::log(a) / gamma_ln()) as i32
 }
 
-const LOG_TABLE_BITS: u32 = 8;
-
-/// For each of the 256 equal parts of [1, 2): its midpoint c, 1 / c and
-/// ln c; and 1 / ln gamma.
-#[allow(clippy::type_complexity)]
-fn log_table() -> &'static (Vec<(f64, f64, f64)>, f64) {
-    static TABLE: std::sync::OnceLock<(Vec<(f64, f64, f64)>, f64)> = std::sync::OnceLock::new();
-    TABLE.get_or_init(|| {
-        let n = 1u32 << LOG_TABLE_BITS;
-        let parts = (0..n)
-            .map(|i| {
-                let c = 1.0 + (f64::from(i) + 0.5) / f64::from(n);
-                (c, 1.0 / c, libm::log(c))
-            })
-            .collect();
-        (parts, 1.0 / gamma_ln())
-    })
+fn inv_gamma_ln() -> f64 {
+    static INV: std::sync::OnceLock<f64> = std::sync::OnceLock::new();
+    *INV.get_or_init(|| 1.0 / gamma_ln())
 }
 
 /// Smallest magnitude kept apart from zero.
@@ -350,15 +327,7 @@ mod tests {
     #[test]
     fn table_buckets_are_the_defining_formulas_buckets() {
         use super::{bucket_index, exact_index, gamma_ln, TINY};
-        let mut state = 0x2545_f491_4f6c_dd1du64;
-        let mut next = move || {
-            // SplitMix64
-            state = state.wrapping_add(0x9e37_79b9_7f4a_7c15);
-            let mut z = state;
-            z = (z ^ (z >> 30)).wrapping_mul(0xbf58_476d_1ce4_e5b9);
-            z = (z ^ (z >> 27)).wrapping_mul(0x94d0_49bb_1331_11eb);
-            z ^ (z >> 31)
-        };
+        let mut rng = crate::ensemble::SplitMix(0x2545_f491_4f6c_dd1d);
         let mut checked = 0;
         let mut check = |a: f64| {
             if a.is_finite() && a >= TINY {
@@ -369,10 +338,8 @@ mod tests {
         // Magnitudes spread over the whole range, and all the bits of
         // mantissas.
         for _ in 0..1_000_000 {
-            let bits = next() >> 1;
-            check(f64::from_bits(bits));
-            let a = libm::exp((next() >> 11) as f64 / (1u64 << 53) as f64 * 1380.0 - 690.0);
-            check(a);
+            check(f64::from_bits(rng.next() >> 1));
+            check(libm::exp(rng.unit() * 1380.0 - 690.0));
         }
         // At and around the edges of buckets, where the table alone could
         // be wrong.
