@@ -35,7 +35,6 @@ pub fn key_hex(k: &Key) -> String {
 /// `out`: the same text as [`push_hex`] of `v.to_be_bytes()`, built in a
 /// register (fingerprints hold one of these for every report age).
 pub fn push_hex_u64(out: &mut Vec<u8>, v: u64) {
-    const DIGITS: &[u8; 16] = b"0123456789abcdef";
     let mut text = [0u8; 16];
     for (i, d) in text.iter_mut().enumerate() {
         *d = DIGITS[((v >> (60 - 4 * i)) & 15) as usize];
@@ -43,9 +42,10 @@ pub fn push_hex_u64(out: &mut Vec<u8>, v: u64) {
     out.extend_from_slice(&text);
 }
 
+const DIGITS: &[u8; 16] = b"0123456789abcdef";
+
 /// Lower-case hex of `bytes`, appended to `out`.
 pub fn push_hex(out: &mut Vec<u8>, bytes: &[u8]) {
-    const DIGITS: &[u8; 16] = b"0123456789abcdef";
     for b in bytes {
         out.extend_from_slice(&[DIGITS[usize::from(b >> 4)], DIGITS[usize::from(b & 15)]]);
     }
@@ -168,23 +168,14 @@ impl Store {
     }
 
     fn entries(&self) -> Vec<PathBuf> {
-        let mut out = Vec::new();
-        let base = self.root.join(LAYOUT);
-        let Ok(dirs) = std::fs::read_dir(&base) else {
-            return out;
-        };
-        for d in dirs.flatten() {
-            if let Ok(files) = std::fs::read_dir(d.path()) {
-                for f in files.flatten() {
-                    let name = f.file_name();
-                    let name = name.to_string_lossy();
-                    // Temporary files of writes in progress start with a dot.
-                    if !name.starts_with('.') {
-                        out.push(f.path());
-                    }
-                }
-            }
-        }
+        let mut out: Vec<PathBuf> = fanned_files(&self.root.join(LAYOUT))
+            .into_iter()
+            // Temporary files of writes in progress start with a dot.
+            .filter(|p| {
+                p.file_name()
+                    .is_some_and(|n| !n.to_string_lossy().starts_with('.'))
+            })
+            .collect();
         out.sort();
         out
     }
@@ -253,6 +244,38 @@ impl Store {
         removed
     }
 
+    /// Remove the folders of older layouts (`v1`, ...) and what they hold.
+    /// Returns (removed files, freed bytes).
+    fn remove_old_layouts(&self) -> (u64, u64) {
+        let (mut removed, mut freed) = (0, 0);
+        for d in std::fs::read_dir(&self.root)
+            .into_iter()
+            .flatten()
+            .flatten()
+        {
+            let name = d.file_name();
+            let name = name.to_string_lossy();
+            let is_layout = name.len() > 1
+                && name.starts_with('v')
+                && name[1..].bytes().all(|b| b.is_ascii_digit());
+            if !is_layout || name == LAYOUT || !d.file_type().is_ok_and(|t| t.is_dir()) {
+                continue;
+            }
+            for f in fanned_files(&d.path()) {
+                let len = f.metadata().map_or(0, |m| m.len());
+                if std::fs::remove_file(&f).is_ok() {
+                    removed += 1;
+                    freed += len;
+                }
+            }
+            for fan in std::fs::read_dir(d.path()).into_iter().flatten().flatten() {
+                let _ = std::fs::remove_dir(fan.path());
+            }
+            let _ = std::fs::remove_dir(d.path());
+        }
+        (removed, freed)
+    }
+
     /// Remove entries unused for longer than `older_than`, then the least
     /// recently used until the store is at most `max_size` bytes. Returns
     /// (removed entries, freed bytes).
@@ -297,42 +320,15 @@ impl Store {
     }
 }
 
-impl Store {
-    /// Remove the folders of older layouts (`v1`, ...) and what they hold.
-    /// Returns (removed files, freed bytes).
-    fn remove_old_layouts(&self) -> (u64, u64) {
-        let (mut removed, mut freed) = (0, 0);
-        let Ok(dirs) = std::fs::read_dir(&self.root) else {
-            return (0, 0);
-        };
-        for d in dirs.flatten() {
-            let name = d.file_name();
-            let name = name.to_string_lossy();
-            let is_layout = name.len() > 1
-                && name.starts_with('v')
-                && name[1..].bytes().all(|b| b.is_ascii_digit());
-            if !is_layout || name == LAYOUT || !d.file_type().is_ok_and(|t| t.is_dir()) {
-                continue;
-            }
-            let fans = std::fs::read_dir(d.path()).into_iter().flatten().flatten();
-            for fan in fans {
-                for f in std::fs::read_dir(fan.path())
-                    .into_iter()
-                    .flatten()
-                    .flatten()
-                {
-                    let len = f.metadata().map_or(0, |m| m.len());
-                    if std::fs::remove_file(f.path()).is_ok() {
-                        removed += 1;
-                        freed += len;
-                    }
-                }
-                let _ = std::fs::remove_dir(fan.path());
-            }
-            let _ = std::fs::remove_dir(d.path());
+/// Every file in the fan-out folders of `base` (`base/ab/...`), unsorted.
+fn fanned_files(base: &Path) -> Vec<PathBuf> {
+    let mut out = Vec::new();
+    for d in std::fs::read_dir(base).into_iter().flatten().flatten() {
+        for f in std::fs::read_dir(d.path()).into_iter().flatten().flatten() {
+            out.push(f.path());
         }
-        (removed, freed)
     }
+    out
 }
 
 fn parse_hex(s: &str) -> Option<Key> {

@@ -449,9 +449,7 @@ unsafe fn exec(p: &Kernels, r: &mut [f64], ins: Ins) {
         Ins::Max(d, a, b) => g!(d) = g!(a).max(g!(b)),
         Ins::Clamp(d, x, lo, hi) => g!(d) = g!(x).max(g!(lo)).min(g!(hi)),
         Ins::Smoothstep(d, x, e0, e1) => g!(d) = numeric::smoothstep(g!(x), g!(e0), g!(e1)),
-        Ins::Decay(d, q, h) => {
-            g!(d) = g!(q) * libm::exp2(r[p.age_reg as usize] / g!(h));
-        }
+        Ins::Decay(d, q, h) => g!(d) = decay(p, r, q, h),
         Ins::Interp(d, t, x) => {
             let (xs, ys) = p.tables.get_unchecked(t as usize);
             g!(d) = numeric::interp(xs, ys, g!(x));
@@ -469,11 +467,19 @@ unsafe fn exec(p: &Kernels, r: &mut [f64], ins: Ins) {
         Ins::ExpMul(d, a, b) => g!(d) = numeric::exp(g!(a) * g!(b)),
         Ins::MulSub(d, a, b, c) => g!(d) = g!(a) * (g!(b) - g!(c)),
         Ins::SubDiv(d, a, b, c) => g!(d) = (g!(a) - g!(b)) / g!(c),
-        Ins::DecayAdd(d, acc, q, h) => {
-            g!(d) = g!(acc) + g!(q) * libm::exp2(r[p.age_reg as usize] / g!(h));
-        }
+        Ins::DecayAdd(d, acc, q, h) => g!(d) = g!(acc) + decay(p, r, q, h),
         Ins::MulExpMul(d, c, a, b) => g!(d) = g!(c) * numeric::exp(g!(a) * g!(b)),
     }
+}
+
+/// q * 2^(age / half_life), of registers `q` and `h`.
+///
+/// # Safety
+/// As for [`exec`]: `q`, `h` and the age register are below `r.len()`.
+#[inline(always)]
+unsafe fn decay(p: &Kernels, r: &[f64], q: Reg, h: Reg) -> f64 {
+    let age = *r.get_unchecked(p.age_reg as usize);
+    *r.get_unchecked(q as usize) * libm::exp2(age / *r.get_unchecked(h as usize))
 }
 
 /// What to compile besides the right-hand side.

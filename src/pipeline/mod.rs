@@ -274,7 +274,10 @@ fn write_rows(w: &mut W, rows: &[(f64, Vec<f64>)]) {
     }
 }
 
-fn read_rows(r: &mut R, n: usize, limit: usize) -> Option<Vec<(f64, Vec<f64>)>> {
+/// Report rows: (age, state) pairs, as in `StageRun::rows`.
+type Rows = Vec<(f64, Vec<f64>)>;
+
+fn read_rows(r: &mut R, n: usize, limit: usize) -> Option<Rows> {
     let count = r.len(1 << 28)?;
     let mut rows = Vec::with_capacity(count.min(limit / 8));
     for _ in 0..count {
@@ -299,7 +302,7 @@ pub fn rows_key(stage_key: &Key) -> Key {
 
 /// A stage's result as two payloads: the head (row count, probes, end
 /// state, statistics, events) and the report rows.
-pub fn encode_stage(r: &StageRun) -> (Vec<u8>, Vec<u8>) {
+fn encode_stage(r: &StageRun) -> (Vec<u8>, Vec<u8>) {
     let n = r.end.0.len();
     let mut rows = W(Vec::with_capacity(16 + r.rows.len() * (n + 1) * 8));
     rows.u64(PAYLOAD_VERSION);
@@ -365,36 +368,48 @@ pub fn get_stage(
     n: usize,
     rows: bool,
 ) -> Result<Option<(StageRun, usize)>, crate::cache::Corrupt> {
-    let foreign = |k: &Key| crate::cache::Corrupt {
-        path: store.path(k),
-        why: "not a stage result of this engine version".into(),
-    };
     let Some(head) = store.get(key)? else {
         return Ok(None);
     };
     let Some((mut r, count)) = decode_stage_head(stage, &head).filter(|(r, _)| r.end.0.len() == n)
     else {
-        return Err(foreign(key));
+        return Err(crate::cache::Corrupt {
+            path: store.path(key),
+            why: "not a stage result of this engine version".into(),
+        });
     };
     if rows {
-        let rkey = rows_key(key);
-        let Some(bytes) = store.get(&rkey)? else {
-            return Ok(None);
-        };
-        r.rows = decode_rows(&bytes, n, count).ok_or_else(|| foreign(&rkey))?;
+        match get_rows(store, key, n, count)? {
+            Some(v) => r.rows = v,
+            None => return Ok(None),
+        }
     }
     Ok(Some((r, count)))
 }
 
-/// A whole stage result from its two payloads.
-pub fn decode_stage(stage: usize, head: &[u8], rows: &[u8]) -> Option<StageRun> {
-    let (mut r, count) = decode_stage_head(stage, head)?;
-    r.rows = decode_rows(rows, r.end.0.len(), count)?;
-    Some(r)
+/// The stored report rows of the stage under `key`, with `n` components
+/// and `count` rows (from its head). `Ok(None)` when absent.
+fn get_rows(
+    store: &Store,
+    key: &Key,
+    n: usize,
+    count: usize,
+) -> Result<Option<Rows>, crate::cache::Corrupt> {
+    let rkey = rows_key(key);
+    let Some(bytes) = store.get(&rkey)? else {
+        return Ok(None);
+    };
+    match decode_rows(&bytes, n, count) {
+        Some(v) => Ok(Some(v)),
+        None => Err(crate::cache::Corrupt {
+            path: store.path(&rkey),
+            why: "not the rows of a stage result of this engine version".into(),
+        }),
+    }
 }
 
 /// The report rows of a stage with `n` state components and `count` rows.
-fn decode_rows(bytes: &[u8], n: usize, count: usize) -> Option<Vec<(f64, Vec<f64>)>> {
+fn decode_rows(bytes: &[u8], n: usize, count: usize) -> Option<Rows> {
     let mut r = R(bytes);
     if r.u64()? != PAYLOAD_VERSION || r.len(1 << 24)? != n {
         return None;
@@ -621,7 +636,7 @@ pub fn execute(model: &Model, store: Option<&Store>) -> Result<Outcome, Problem>
     let mut keys = Vec::new();
     // Row counts of reused stages, whose rows are read only if a part of
     // the series must be derived again; and where each stage started.
-    let mut payloads: Vec<Option<usize>> = Vec::new();
+    let mut reused_rows: Vec<Option<usize>> = Vec::new();
     let mut starts: Vec<(State, Vec<bool>)> = Vec::new();
     for s in 0..model.stages.len() {
         let done: Vec<bool> = events.iter().map(Option::is_some).collect();
@@ -645,7 +660,7 @@ pub fn execute(model: &Model, store: Option<&Store>) -> Result<Outcome, Problem>
                 Err(c) => warnings.push(corrupt_warning(&c, &format!("stage `{stage_name}`"))),
             }
         }
-        let (run, status, why, payload) = match cached {
+        let (run, status, why, row_count) = match cached {
             Some((r, count)) => (r, Status::Reused, String::new(), Some(count)),
             None => {
                 let r = solve::solve_stage(model, s, &state, &done)?;
@@ -671,7 +686,7 @@ pub fn execute(model: &Model, store: Option<&Store>) -> Result<Outcome, Problem>
                 (r, Status::Computed, why, None)
             }
         };
-        payloads.push(payload);
+        reused_rows.push(row_count);
         starts.push((state.clone(), done));
         trace.push_str(&format!("stage\t{stage_name}\t{fingerprint}\n"));
         match &hashes {
@@ -735,17 +750,17 @@ pub fn execute(model: &Model, store: Option<&Store>) -> Result<Outcome, Problem>
                 )),
             }
         }
-        let payload = payloads[s].take();
+        let reused = reused_rows[s];
         if found {
-            rows += payload.unwrap_or(sr.rows.len());
+            rows += reused.unwrap_or(sr.rows.len());
         } else {
-            if payload.is_some() {
+            if let Some(count) = reused {
                 // A reused stage: its rows from the store, or (if they are
                 // gone or damaged) from solving it again, which gives the
                 // same bits.
                 let n = sr.end.0.len();
-                let stored = match store.map(|st| get_stage(st, &keys[s], s, n, true)) {
-                    Some(Ok(Some((full, _)))) => Some(full.rows),
+                let stored = match store.map(|st| get_rows(st, &keys[s], n, count)) {
+                    Some(Ok(Some(r))) => Some(r),
                     Some(Err(c)) => {
                         let what = format!("the rows of stage `{}`", model.stages[s].name);
                         warnings.push(corrupt_warning(&c, &what));
@@ -835,6 +850,12 @@ mod tests {
             closure_error: 3e-16,
             events: vec![None, Some(2.5e9)],
             wall: std::time::Duration::ZERO,
+        };
+        // A whole stage result from its two payloads.
+        let decode_stage = |stage: usize, head: &[u8], rows: &[u8]| {
+            let (mut r, count) = decode_stage_head(stage, head)?;
+            r.rows = decode_rows(rows, r.end.0.len(), count)?;
+            Some(r)
         };
         let (head, rows) = encode_stage(&r);
         let d = decode_stage(2, &head, &rows).unwrap();

@@ -325,7 +325,7 @@ pub fn integrate(
                 let fac = if err == 0.0 {
                     10.0
                 } else {
-                    (0.9 * crate::numeric::elementary::pow(err, -0.2)).clamp(0.2, 10.0)
+                    (0.9 * crate::numeric::pow(err, -0.2)).clamp(0.2, 10.0)
                 };
                 let fac = if last_rejected { fac.min(1.0) } else { fac };
                 last_rejected = false;
@@ -334,7 +334,7 @@ pub fn integrate(
                 stats.rejected += 1;
                 last_rejected = true;
                 let fac = if err.is_finite() {
-                    (0.9 * crate::numeric::elementary::pow(err, -0.2)).clamp(0.2, 1.0)
+                    (0.9 * crate::numeric::pow(err, -0.2)).clamp(0.2, 1.0)
                 } else {
                     0.25
                 };
@@ -383,7 +383,7 @@ pub fn integrate(
                     let fac = if err == 0.0 {
                         5.0
                     } else {
-                        (0.9 * crate::numeric::elementary::pow(err, -1.0 / 3.0)).clamp(0.2, 5.0)
+                        (0.9 * crate::numeric::pow(err, -1.0 / 3.0)).clamp(0.2, 5.0)
                     };
                     let fac = if last_rejected { fac.min(1.0) } else { fac };
                     last_rejected = false;
@@ -392,7 +392,7 @@ pub fn integrate(
                 StepOutcome::Rejected(err) => {
                     stats.rejected += 1;
                     last_rejected = true;
-                    h *= (0.9 * crate::numeric::elementary::pow(err, -1.0 / 3.0)).clamp(0.2, 1.0);
+                    h *= (0.9 * crate::numeric::pow(err, -1.0 / 3.0)).clamp(0.2, 1.0);
                 }
                 StepOutcome::NewtonFailed => {
                     stats.rejected += 1;
