@@ -236,7 +236,8 @@ pub(crate) struct Checker {
     /// Name to definition; user definitions shadow the prelude.
     pub(crate) symbols: HashMap<String, DefId>,
     /// Syntax of each definition's main expression, by id.
-    def_syntax: Vec<Option<Rc<syntax::Expr>>>,
+    /// (The statement itself, shared with `items`: see [`main_expr`].)
+    def_syntax: Vec<Option<Rc<syntax::Stmt>>>,
     slots: Vec<Slot>,
     /// Definitions being checked, innermost last (for cycle reports).
     pub(crate) stack: Vec<DefId>,
@@ -803,35 +804,25 @@ impl Checker {
                 kind: ExprKind::Num(0.0),
                 span,
             };
-            let (kind, syntax_expr) = match &item.stmt.kind {
-                StmtKind::Const { value, .. } => (DefKind::Const, Some(Rc::new(value.clone()))),
-                StmtKind::Param { value, .. } => (DefKind::Param, Some(Rc::new(value.clone()))),
-                StmtKind::Let { value, .. } => (DefKind::Let, Some(Rc::new(value.clone()))),
-                StmtKind::Output { value, .. } => (DefKind::Output, Some(Rc::new(value.clone()))),
-                StmtKind::Event { condition, .. } => {
-                    (DefKind::Event, Some(Rc::new(condition.clone())))
-                }
-                StmtKind::Table { .. } => (DefKind::Table(usize::MAX), None),
-                StmtKind::Reservoir { initial, .. } => (
-                    DefKind::Reservoir { capacity: None },
-                    Some(Rc::new(initial.clone())),
-                ),
-                StmtKind::State { initial, .. } => (
-                    DefKind::State {
-                        rate: placeholder.clone(),
-                    },
-                    Some(Rc::new(initial.clone())),
-                ),
-                StmtKind::Flux { rate, .. } => (
-                    DefKind::Flux {
-                        from: Endpoint::Outside,
-                        to: Endpoint::Outside,
-                        stage: item.stage,
-                    },
-                    Some(Rc::new(rate.clone())),
-                ),
+            let kind = match &item.stmt.kind {
+                StmtKind::Const { .. } => DefKind::Const,
+                StmtKind::Param { .. } => DefKind::Param,
+                StmtKind::Let { .. } => DefKind::Let,
+                StmtKind::Output { .. } => DefKind::Output,
+                StmtKind::Event { .. } => DefKind::Event,
+                StmtKind::Table { .. } => DefKind::Table(usize::MAX),
+                StmtKind::Reservoir { .. } => DefKind::Reservoir { capacity: None },
+                StmtKind::State { .. } => DefKind::State {
+                    rate: placeholder.clone(),
+                },
+                StmtKind::Flux { .. } => DefKind::Flux {
+                    from: Endpoint::Outside,
+                    to: Endpoint::Outside,
+                    stage: item.stage,
+                },
                 _ => continue,
             };
+            let syntax_expr = main_expr(&item.stmt).map(|_| Rc::clone(&item.stmt));
             let id = self.defs.len();
             self.symbols.insert(name.clone(), id);
             self.defs.push(Def {
@@ -889,7 +880,8 @@ impl Checker {
             else {
                 continue;
             };
-            let StmtKind::Param { name: ident, value } = stmt.kind else {
+            let stmt: Rc<syntax::Stmt> = Rc::new(*stmt);
+            let StmtKind::Param { name: ident, value } = &stmt.kind else {
                 continue;
             };
             match self.symbols.get(name).copied() {
@@ -898,7 +890,7 @@ impl Checker {
                     // every use of the parameter would report a mismatch in
                     // the file, far from the option that caused it.
                     let declared = self.def_type(id);
-                    let declared_syntax = self.def_syntax[id].replace(Rc::new(value.clone()));
+                    let declared_syntax = self.def_syntax[id].replace(Rc::clone(&stmt));
                     let declared_unit = self.defs[id].display_unit.take();
                     self.slots[id] = Slot::Todo;
                     let given = self.def_type(id);
@@ -968,14 +960,17 @@ impl Checker {
             // initial expression says (checked separately).
             self.slots[id] = Slot::Done(expr::Typed::num(Dim::MASS, false));
         }
-        let Some(syn) = self.def_syntax[id].clone() else {
+        let Some(stmt) = self.def_syntax[id].clone() else {
+            return expr::Typed::error();
+        };
+        let Some(syn) = main_expr(&stmt) else {
             return expr::Typed::error();
         };
         if !matches!(self.slots[id], Slot::Done(_)) {
             self.slots[id] = Slot::InProgress;
         }
         self.stack.push(id);
-        let (checked, typed) = self.check_expr(&syn);
+        let (checked, typed) = self.check_expr(syn);
         self.stack.pop();
         let kind = self.defs[id].kind.clone();
         let result = match kind {
@@ -1411,6 +1406,21 @@ fn expr_refs(defs: &[Def], e: &Expr, out: &mut Vec<DefId>) {
                 expr_refs(defs, a, out);
             }
         }
+    }
+}
+
+/// The expression that gives a definition statement its value (a
+/// reservoir's or state's initial value, a flux's rate).
+fn main_expr(stmt: &syntax::Stmt) -> Option<&syntax::Expr> {
+    match &stmt.kind {
+        StmtKind::Const { value, .. }
+        | StmtKind::Param { value, .. }
+        | StmtKind::Let { value, .. }
+        | StmtKind::Output { value, .. } => Some(value),
+        StmtKind::Event { condition, .. } => Some(condition),
+        StmtKind::Reservoir { initial, .. } | StmtKind::State { initial, .. } => Some(initial),
+        StmtKind::Flux { rate, .. } => Some(rate),
+        _ => None,
     }
 }
 
