@@ -8,23 +8,14 @@
 //! (with includes and tables), in seconds. `benches/scaling.sh` runs it on
 //! its generated 1,250- to 10,000-line scenarios.
 
+#[path = "timing.rs"]
+mod timing;
+
 use std::hint::black_box;
 use std::path::PathBuf;
-use std::time::{Duration, Instant};
+use std::time::Duration;
 
-/// Median wall time of `f` over at least 9 runs, more while within `budget`.
-fn median(budget: Duration, mut f: impl FnMut()) -> f64 {
-    f();
-    let mut samples = Vec::new();
-    let start = Instant::now();
-    while samples.len() < 9 || (start.elapsed() < budget && samples.len() < 200) {
-        let t = Instant::now();
-        f();
-        samples.push(t.elapsed().as_secs_f64());
-    }
-    samples.sort_by(f64::total_cmp);
-    samples[samples.len() / 2]
-}
+use timing::median;
 
 fn main() {
     // `cargo bench` passes `--bench`; every other argument is a file.
@@ -55,10 +46,12 @@ fn main() {
         let budget = Duration::from_secs(2);
         let parse = median(budget, || {
             black_box(hadal::syntax::parse(black_box(&text), 0).is_ok());
-        });
+        })
+        .as_secs_f64();
         let check = median(budget, || {
             black_box(hadal::check::check_file(&file, &Default::default()).is_ok());
-        });
+        })
+        .as_secs_f64();
         println!(
             "{}",
             serde_json::json!({

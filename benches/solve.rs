@@ -8,10 +8,14 @@
 
 #[path = "hand_coded/mod.rs"]
 mod hand_coded;
+#[path = "timing.rs"]
+mod timing;
 
 use std::hint::black_box;
 use std::path::Path;
 use std::time::{Duration, Instant};
+
+use timing::median;
 
 use hadal::compile::{self, Wants};
 use hadal::solve::methods::{self, Dense, Observer, Stats, Stop};
@@ -22,22 +26,6 @@ impl Observer for NoRows {
     fn accepted(&mut self, _: f64, _: f64, _: &[f64], _: &Dense) -> Result<(), Stop> {
         Ok(())
     }
-}
-
-/// Median wall time of `f` over enough repetitions to fill about `budget`.
-fn median(budget: Duration, mut f: impl FnMut()) -> Duration {
-    for _ in 0..3 {
-        f();
-    }
-    let mut samples = Vec::new();
-    let start = Instant::now();
-    while samples.len() < 15 || (start.elapsed() < budget && samples.len() < 2000) {
-        let t = Instant::now();
-        f();
-        samples.push(t.elapsed());
-    }
-    samples.sort();
-    samples[samples.len() / 2]
 }
 
 /// Medians of `f` and of `g` sampled in turn, and the median of the ratios
