@@ -579,7 +579,7 @@ fn rule_words(rule: Rule) -> Option<&'static str> {
         Rule::comment => "a comment",
         Rule::name => "a name",
         Rule::string => "a quoted string",
-        Rule::expr | Rule::op_expr | Rule::if_expr | Rule::age_expr => "an expression",
+        Rule::op_expr | Rule::if_expr | Rule::age_expr => "an expression",
         Rule::quantity | Rule::number => "a number",
         Rule::unit | Rule::unit_factor | Rule::unit_name | Rule::unit_one => "a unit",
         Rule::call | Rule::paren => "an expression",
@@ -1002,10 +1002,6 @@ impl Builder {
     fn expr(&self, pair: Pair<Rule>) -> Expr {
         let span = self.span(&pair);
         match pair.as_rule() {
-            Rule::expr => {
-                let inner = pair.into_inner().next().expect("expr has one child");
-                self.expr(inner)
-            }
             Rule::if_expr => {
                 let mut it = pair.into_inner().filter(|p| !is_keyword(p.as_rule()));
                 let cond = self.expr(it.next().expect("cond"));
@@ -1096,7 +1092,8 @@ impl Builder {
                 let inner = pair.into_inner().next().expect("paren content");
                 ExprKind::Paren(Box::new(self.expr(inner)))
             }
-            Rule::expr | Rule::op_expr | Rule::if_expr => return self.expr(pair),
+            // `expr` is silent: its pairs are these.
+            Rule::op_expr | Rule::if_expr => return self.expr(pair),
             other => unreachable!("not a primary rule: {other:?}"),
         };
         Expr { kind, span }
