@@ -83,7 +83,16 @@ fn main() {
             )
         })
         .collect();
-    let integrate_compiled = || {
+    // The same programs as native code (what ensembles run).
+    let native: Vec<compile::Program> = programs
+        .iter()
+        .map(|p| {
+            let mut p = p.clone();
+            p.make_native();
+            p
+        })
+        .collect();
+    let integrate = |programs: &[compile::Program]| {
         let mut y = solve::initial_state(&model).0;
         for (s, prog) in programs.iter().enumerate() {
             let st = &model.stages[s];
@@ -103,11 +112,25 @@ fn main() {
         }
         black_box(y);
     };
+    let integrate_compiled = || integrate(&programs);
     // Interleaved, one of each in turn, so that a change of the machine's
     // speed during the run (these machines are shared) falls on both sides
     // of the ratio alike.
     let (compiled, hand, pair_ratio) = median_pair(budget * 2, integrate_compiled, || {
         black_box(hand_coded::run_hand_coded());
+    });
+    let (native_time, hand_n, native_pair) = median_pair(
+        budget * 2,
+        || integrate(&native),
+        || {
+            black_box(hand_coded::run_hand_coded());
+        },
+    );
+    let build_native = median(Duration::from_millis(500), || {
+        for p in &programs {
+            let mut p = p.clone();
+            black_box(p.make_native());
+        }
     });
     // 2. The full solve as `hadal run` does it: compile every stage, watch
     //    events, produce the 451 report rows.
@@ -129,6 +152,13 @@ fn main() {
         }
         black_box(&dy);
     }) / 1000;
+    let mut nsys = solve::Sys::new(&model, &native[1]);
+    let nrhs = median(Duration::from_millis(500), || {
+        for _ in 0..1000 {
+            methods::System::rhs(&mut nsys, black_box(1e9), black_box(&y0), &mut dy);
+        }
+        black_box(&dy);
+    }) / 1000;
     let mut hsys = hand_coded::HandCoded::new(1);
     let hrhs = median(Duration::from_millis(500), || {
         for _ in 0..1000 {
@@ -140,7 +170,7 @@ fn main() {
     println!("hot_start demo (3 stages, 4.5 Gyr), medians:");
     println!(
         "  {:<44} {:>12}",
-        "compiled scenario, integration only",
+        "compiled scenario, interpreted, integration",
         ms(compiled)
     );
     println!(
@@ -150,7 +180,7 @@ fn main() {
     );
     println!(
         "  {:<44} {:>12.2}x   (target <= 1.5x)",
-        "ratio compiled / hand-coded",
+        "ratio interpreted / hand-coded",
         compiled.as_secs_f64() / hand.as_secs_f64()
     );
     println!(
@@ -159,7 +189,36 @@ fn main() {
     );
     println!(
         "  {:<44} {:>12}",
-        "one right-hand side, compiled",
+        "compiled scenario as native code",
+        ms(native_time)
+    );
+    println!(
+        "  {:<44} {:>12}",
+        "hand-coded Rust (sampled beside native)",
+        ms(hand_n)
+    );
+    println!(
+        "  {:<44} {:>12.2}x   (target <= 1.5x)",
+        "ratio native / hand-coded",
+        native_time.as_secs_f64() / hand_n.as_secs_f64()
+    );
+    println!(
+        "  {:<44} {:>12.2}x",
+        "ratio, median over neighbouring pairs", native_pair
+    );
+    println!(
+        "  {:<44} {:>12}",
+        "building native code for the 3 stages",
+        ms(build_native)
+    );
+    println!(
+        "  {:<44} {:>12}",
+        "one right-hand side, native",
+        format!("{:.0} ns", nrhs.as_secs_f64() * 1e9)
+    );
+    println!(
+        "  {:<44} {:>12}",
+        "one right-hand side, interpreted",
         format!("{:.0} ns", rhs.as_secs_f64() * 1e9)
     );
     println!(

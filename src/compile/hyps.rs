@@ -43,6 +43,10 @@ impl Hypsometry {
     /// Volume of water needed to fill the basins up to elevation `z`.
     pub fn basin_volume(&self, z: f64) -> f64 {
         let n = self.z.len();
+        if z.is_nan() {
+            // (A NaN would find no knot below it.)
+            return f64::NAN;
+        }
         if z <= self.z[0] {
             return 0.0;
         }
@@ -57,6 +61,9 @@ impl Hypsometry {
     /// Elevation of the water surface when `volume` fills the basins.
     pub fn sea_level(&self, volume: f64) -> f64 {
         let n = self.z.len();
+        if volume.is_nan() {
+            return f64::NAN;
+        }
         if volume <= 0.0 {
             return self.z[0];
         }
@@ -140,5 +147,13 @@ mod tests {
         assert_eq!(h.land_fraction(full * 1.5), 0.0);
         assert!((h.sea_level(full + 2.0e14 * 10.0) - 1010.0).abs() < 1e-9);
         assert_eq!(h.sea_level(-1.0), -1000.0);
+    }
+
+    #[test]
+    fn not_a_number_in_gives_not_a_number_out() {
+        let h = Hypsometry::new(&[-1000.0, 0.0, 1000.0], &[0.0, 1.0e14, 2.0e14]);
+        assert!(h.sea_level(f64::NAN).is_nan());
+        assert!(h.basin_volume(f64::NAN).is_nan());
+        assert!(h.land_fraction(f64::NAN).is_nan());
     }
 }

@@ -6,6 +6,7 @@
 //! side tables used to word diagnostics.
 
 pub mod hyps;
+mod native;
 
 use crate::model::{Builtin, DefId, DefKind, Endpoint, Expr, ExprKind, Model};
 use crate::numeric;
@@ -108,6 +109,18 @@ pub struct Program {
     kernels: Kernels,
     /// Knots of age-indexed tables this program reads (breakpoints).
     pub age_knots: Vec<f64>,
+    /// Native code for `ins`, when asked for (see [`Program::make_native`]).
+    native: Option<NativeCode>,
+}
+
+/// Native code shared by the clones of a program.
+#[derive(Clone)]
+struct NativeCode(std::sync::Arc<native::Code>);
+
+impl std::fmt::Debug for NativeCode {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str("NativeCode")
+    }
 }
 
 /// Data that instructions read besides registers.
@@ -155,10 +168,59 @@ impl Program {
         r[..self.n_state].copy_from_slice(&y[..self.n_state]);
         r[self.age_reg as usize] = age;
         r[self.time_reg as usize] = t;
+        if let Some(code) = &self.native {
+            // SAFETY: `r` has `init.len()` registers (asserted above); the
+            // code touches only registers and tables that `check_bounds`
+            // verified, and `self.kernels` are the kernels it was built for.
+            unsafe { (code.0.func)(r.as_mut_ptr(), &self.kernels) };
+            return;
+        }
         for ins in &self.ins {
             // SAFETY: `r` has `init.len()` registers (asserted above) and
             // `check_bounds` verified every index in `ins` when the program
             // was built.
+            unsafe { exec(&self.kernels, r, *ins) };
+        }
+    }
+
+    /// Generate native code for the dynamic instructions, for a program
+    /// that will be evaluated many times (building costs about as much as a
+    /// few thousand interpreted evaluations). Results are the same bits as
+    /// the interpreter's. Returns whether this machine got native code; if
+    /// not, the program stays interpreted.
+    pub fn make_native(&mut self) -> bool {
+        if self.native.is_some() {
+            return true;
+        }
+        // Registers that hold the same value in every evaluation: neither
+        // state, clock nor parameter, and written by no instruction.
+        let mut fixed = vec![true; self.init.len()];
+        for f in fixed.iter_mut().take(self.n_state) {
+            *f = false;
+        }
+        fixed[self.age_reg as usize] = false;
+        fixed[self.time_reg as usize] = false;
+        for &(_, r) in &self.param_regs {
+            fixed[r as usize] = false;
+        }
+        for ins in self.ins.iter().chain(&self.setup) {
+            fixed[dest(ins) as usize] = false;
+        }
+        self.native = native::build(&self.ins, &self.init, &fixed, self.age_reg)
+            .map(|c| NativeCode(std::sync::Arc::new(c)));
+        self.native.is_some()
+    }
+
+    /// Evaluate with the interpreter even when native code exists (for the
+    /// tests that compare the two).
+    pub fn eval_interpreted(&self, regs: &mut Regs, y: &[f64], t: f64, age: f64) {
+        let r = &mut regs.0;
+        assert_eq!(r.len(), self.init.len(), "registers of another program");
+        r[..self.n_state].copy_from_slice(&y[..self.n_state]);
+        r[self.age_reg as usize] = age;
+        r[self.time_reg as usize] = t;
+        for ins in &self.ins {
+            // SAFETY: as in `eval`.
             unsafe { exec(&self.kernels, r, *ins) };
         }
     }
@@ -445,9 +507,9 @@ unsafe fn exec(p: &Kernels, r: &mut [f64], ins: Ins) {
         Ins::Log10(d, a) => g!(d) = libm::log10(g!(a)),
         Ins::Sqrt(d, a) => g!(d) = libm::sqrt(g!(a)),
         Ins::Abs(d, a) => g!(d) = g!(a).abs(),
-        Ins::Min(d, a, b) => g!(d) = g!(a).min(g!(b)),
-        Ins::Max(d, a, b) => g!(d) = g!(a).max(g!(b)),
-        Ins::Clamp(d, x, lo, hi) => g!(d) = g!(x).max(g!(lo)).min(g!(hi)),
+        Ins::Min(d, a, b) => g!(d) = numeric::min(g!(a), g!(b)),
+        Ins::Max(d, a, b) => g!(d) = numeric::max(g!(a), g!(b)),
+        Ins::Clamp(d, x, lo, hi) => g!(d) = numeric::min(numeric::max(g!(x), g!(lo)), g!(hi)),
         Ins::Smoothstep(d, x, e0, e1) => g!(d) = numeric::smoothstep(g!(x), g!(e0), g!(e1)),
         Ins::Decay(d, q, h) => g!(d) = decay(p, r, q, h),
         Ins::Interp(d, t, x) => {
@@ -462,7 +524,7 @@ unsafe fn exec(p: &Kernels, r: &mut [f64], ins: Ins) {
         Ins::LandFraction(d, h, v) => g!(d) = p.hyps.get_unchecked(h as usize).land_fraction(g!(v)),
         Ins::BasinVolume(d, h, z) => g!(d) = p.hyps.get_unchecked(h as usize).basin_volume(g!(z)),
         Ins::Fill(d, m, c) => g!(d) = g!(m) / g!(c),
-        Ins::Excess(d, m, c) => g!(d) = (g!(m) - g!(c)).max(0.0),
+        Ins::Excess(d, m, c) => g!(d) = numeric::max(g!(m) - g!(c), 0.0),
         Ins::Mul3(d, a, b, c) => g!(d) = (g!(a) * g!(b)) * g!(c),
         Ins::ExpMul(d, a, b) => g!(d) = numeric::exp(g!(a) * g!(b)),
         Ins::MulSub(d, a, b, c) => g!(d) = g!(a) * (g!(b) - g!(c)),
@@ -687,6 +749,7 @@ impl<'m> Compiler<'m> {
             param_regs: std::mem::take(&mut self.param_regs),
             kernels: std::mem::take(&mut self.kernels),
             age_knots,
+            native: None,
         };
         let mut program = program;
         if self.fuse {
@@ -981,22 +1044,43 @@ pub fn initial_state(model: &Model) -> Vec<f64> {
 mod tests {
     use super::*;
 
+    /// Native code for `p`; on x86-64 there must be some.
+    fn made_native(p: &mut Program) -> bool {
+        let native = p.make_native();
+        assert!(
+            native || !cfg!(target_arch = "x86_64"),
+            "x86-64 gets native code"
+        );
+        native
+    }
+
+    /// The demo scenarios, what to compile of them (everything), and their
+    /// initial states.
+    fn demos() -> Vec<(&'static str, Model, Wants, Vec<f64>)> {
+        let root = std::path::Path::new(env!("CARGO_MANIFEST_DIR"));
+        ["hot_start", "glacial_window"]
+            .into_iter()
+            .map(|demo| {
+                let path = root.join(format!("scenarios/{demo}.hadal"));
+                let model = crate::check::check_file(&path, &Default::default())
+                    .unwrap_or_else(|_| panic!("{demo} checks"))
+                    .model;
+                let wants = Wants {
+                    rhs: true,
+                    defs: (0..model.defs.len()).collect(),
+                    exprs: Vec::new(),
+                };
+                let y0 = crate::solve::initial_state(&model).0;
+                (demo, model, wants, y0)
+            })
+            .collect()
+    }
+
     /// Fused instructions give the very bits of the pairs they replace.
     #[test]
     fn fused_programs_compute_the_same_bits_as_unfused_ones() {
-        let root = std::path::Path::new(env!("CARGO_MANIFEST_DIR"));
         let mut kinds = std::collections::BTreeSet::new();
-        for demo in ["hot_start", "glacial_window"] {
-            let path = root.join(format!("scenarios/{demo}.hadal"));
-            let model = crate::check::check_file(&path, &Default::default())
-                .unwrap_or_else(|_| panic!("{demo} checks"))
-                .model;
-            let wants = Wants {
-                rhs: true,
-                defs: (0..model.defs.len()).collect(),
-                exprs: Vec::new(),
-            };
-            let y0 = crate::solve::initial_state(&model).0;
+        for (demo, model, wants, y0) in demos() {
             for s in 0..model.stages.len() {
                 let fused = compile(&model, Some(s), &wants);
                 let mut c = Compiler::new(&model, stage_params(&model, Some(s)));
@@ -1050,5 +1134,214 @@ mod tests {
         ] {
             assert!(kinds.contains(k), "no {k} in the demos: {kinds:?}");
         }
+    }
+
+    /// Bits of every register, with every NaN as one value: which NaN an
+    /// operation on two NaNs returns depends on the order a compiler put
+    /// its operands in (IEEE 754 leaves it open), and no NaN ever reaches
+    /// an output (the solver and the writers refuse them).
+    fn bits(r: &Regs) -> Vec<u64> {
+        r.0.iter()
+            .map(|x| if x.is_nan() { u64::MAX } else { x.to_bits() })
+            .collect()
+    }
+
+    /// A program of every instruction, over three state registers, the
+    /// clock and constants (some of them edge values, which native code
+    /// embeds as immediates): native code and interpreter give the same
+    /// bits for inputs that include NaN, both zeros, infinities and
+    /// subnormals.
+    #[test]
+    fn native_code_computes_the_interpreters_bits_for_every_instruction() {
+        let consts = [
+            1.5,
+            -0.0,
+            0.0,
+            f64::NAN,
+            f64::INFINITY,
+            2.0,
+            1e-310,
+            0.7,
+            -3.25,
+            4.468e9,
+        ];
+        // Registers: 0..3 state, 3 age, 4 time, 5.. constants, then results.
+        let (n_state, age, time) = (3u32, 3u32, 4u32);
+        let c0 = 5u32;
+        let mut init = vec![0.0; c0 as usize];
+        init.extend(consts);
+        let inputs: Vec<Reg> = (0..c0 + consts.len() as u32).collect();
+        let mut ins = Vec::new();
+        let mut next = init.len() as Reg;
+        fn push(make: &dyn Fn(Reg) -> Ins, ins: &mut Vec<Ins>, next: &mut Reg) {
+            ins.push(make(*next));
+            *next += 1;
+        }
+        // Every instruction on several operand pairs, inputs and results.
+        for (k, &a) in inputs.iter().enumerate() {
+            let b = inputs[(k * 7 + 3) % inputs.len()];
+            let c = inputs[(k * 5 + 1) % inputs.len()];
+            let all: Vec<Box<dyn Fn(Reg) -> Ins>> = vec![
+                Box::new(move |d| Ins::Add(d, a, b)),
+                Box::new(move |d| Ins::Sub(d, a, b)),
+                Box::new(move |d| Ins::Mul(d, a, b)),
+                Box::new(move |d| Ins::Div(d, a, b)),
+                Box::new(move |d| Ins::Pow(d, a, b)),
+                Box::new(move |d| Ins::Square(d, a)),
+                Box::new(move |d| Ins::Neg(d, a)),
+                Box::new(move |d| Ins::Not(d, a)),
+                Box::new(move |d| Ins::Select(d, a, b, c)),
+                Box::new(move |d| Ins::Exp(d, a)),
+                Box::new(move |d| Ins::Ln(d, a)),
+                Box::new(move |d| Ins::Log10(d, a)),
+                Box::new(move |d| Ins::Sqrt(d, a)),
+                Box::new(move |d| Ins::Abs(d, a)),
+                Box::new(move |d| Ins::Min(d, a, b)),
+                Box::new(move |d| Ins::Max(d, a, b)),
+                Box::new(move |d| Ins::Min(d, b, a)),
+                Box::new(move |d| Ins::Max(d, b, a)),
+                Box::new(move |d| Ins::Clamp(d, a, b, c)),
+                Box::new(move |d| Ins::Smoothstep(d, a, b, c)),
+                Box::new(move |d| Ins::Decay(d, a, b)),
+                Box::new(move |d| Ins::Interp(d, 0, a)),
+                Box::new(move |d| Ins::SeaLevel(d, 0, a)),
+                Box::new(move |d| Ins::SeaLevelIsostatic(d, 0, a, b, c)),
+                Box::new(move |d| Ins::LandFraction(d, 0, a)),
+                Box::new(move |d| Ins::BasinVolume(d, 0, a)),
+                Box::new(move |d| Ins::Fill(d, a, b)),
+                Box::new(move |d| Ins::Excess(d, a, b)),
+                Box::new(move |d| Ins::Mul3(d, a, b, c)),
+                Box::new(move |d| Ins::ExpMul(d, a, b)),
+                Box::new(move |d| Ins::MulSub(d, a, b, c)),
+                Box::new(move |d| Ins::SubDiv(d, a, b, c)),
+                Box::new(move |d| Ins::DecayAdd(d, c, a, b)),
+                Box::new(move |d| Ins::MulExpMul(d, c, a, b)),
+            ];
+            for make in &all {
+                push(make.as_ref(), &mut ins, &mut next);
+            }
+            for op in BinOp::ALL {
+                push(&move |d| Ins::Other(op, d, a, b), &mut ins, &mut next);
+            }
+        }
+        // Results as operands too: chains through earlier results.
+        let first_result = init.len() as Reg;
+        let results = next - first_result;
+        for k in 0..results {
+            let a = first_result + k;
+            let b = first_result + (k * 13 + 5) % results;
+            push(&move |d| Ins::Mul(d, a, b), &mut ins, &mut next);
+            push(&move |d| Ins::Max(d, b, a), &mut ins, &mut next);
+        }
+        init.resize(next as usize, 0.0);
+        let hyps = Hypsometry::new(&[-5000.0, 0.0, 3000.0], &[0.0, 3e14, 5e14]);
+        let mut p = Program {
+            ins,
+            init,
+            n_state: n_state as usize,
+            state_defs: vec![0; n_state as usize],
+            age_reg: age,
+            time_reg: time,
+            fluxes: Vec::new(),
+            flux_probes: Vec::new(),
+            rates: Vec::new(),
+            rate_probes: Vec::new(),
+            observed: Vec::new(),
+            extra: Vec::new(),
+            setup: Vec::new(),
+            param_regs: Vec::new(),
+            kernels: Kernels {
+                tables: vec![(vec![-1.0, 0.0, 2.0], vec![3.0, -1.0, 0.5])],
+                hyps: vec![hyps],
+                age_reg: age,
+            },
+            age_knots: Vec::new(),
+            native: None,
+        };
+        p.check_bounds();
+        if !made_native(&mut p) {
+            return;
+        }
+        let edges = [
+            0.0,
+            -0.0,
+            1.0,
+            -1.0,
+            f64::NAN,
+            -f64::NAN,
+            f64::INFINITY,
+            f64::NEG_INFINITY,
+            5e-324,
+            f64::MIN_POSITIVE,
+            f64::MAX,
+            1e21,
+            1873.5,
+            2.5e9,
+        ];
+        let mut rng = crate::ensemble::SplitMix(5);
+        let (mut rn, mut ri) = (p.regs(), p.regs());
+        for trial in 0..4000 {
+            let mut pick = |k: usize| {
+                if trial % 3 == 0 {
+                    edges[(rng.next() as usize + k) % edges.len()]
+                } else {
+                    (rng.unit() - 0.3) * libm::exp2((rng.unit() - 0.5) * 80.0)
+                }
+            };
+            let y = [pick(0), pick(1), pick(2)];
+            let (t, a) = (pick(3), pick(4));
+            p.eval(&mut rn, &y, t, a);
+            p.eval_interpreted(&mut ri, &y, t, a);
+            let (bn, bi) = (bits(&rn), bits(&ri));
+            if let Some(k) = (0..bn.len()).find(|&k| bn[k] != bi[k]) {
+                let writer = p.ins.iter().find(|i| dest(i) as usize == k);
+                panic!(
+                    "register {k} ({writer:?}): native {} interpreted {}, state {y:?}, time {t}, age {a}",
+                    rn.0[k], ri.0[k]
+                );
+            }
+        }
+    }
+
+    /// The demos' programs, native and interpreted, on states around their
+    /// starting ones: the same bits in every register.
+    #[test]
+    fn native_code_computes_the_interpreters_bits_for_the_demos() {
+        for (demo, model, wants, y0) in demos() {
+            let mut rng = crate::ensemble::SplitMix(9);
+            for s in 0..model.stages.len() {
+                let mut p = compile(&model, Some(s), &wants);
+                if !made_native(&mut p) {
+                    return;
+                }
+                let (mut rn, mut ri) = (p.regs(), p.regs());
+                let st = &model.stages[s];
+                for _ in 0..500 {
+                    let f = rng.unit();
+                    let age = st.start_age + f * (st.end_age - st.start_age);
+                    let y: Vec<f64> = y0.iter().map(|v| v * 2.0 * rng.unit()).collect();
+                    let t = model.start_age - age;
+                    p.eval(&mut rn, &y, t, age);
+                    p.eval_interpreted(&mut ri, &y, t, age);
+                    assert_eq!(bits(&rn), bits(&ri), "{demo} stage {s} age {age}");
+                }
+            }
+        }
+    }
+
+    #[test]
+    fn max_and_min_follow_one_rule_for_nan_and_zeros() {
+        use crate::numeric::{max, min};
+        assert_eq!(max(1.0, 2.0), 2.0);
+        assert_eq!(min(1.0, 2.0), 1.0);
+        assert_eq!(max(f64::NAN, 2.0), 2.0);
+        assert_eq!(max(2.0, f64::NAN), 2.0);
+        assert_eq!(min(f64::NAN, 2.0), 2.0);
+        assert!(max(f64::NAN, f64::NAN).is_nan());
+        // Of two equal operands, the first.
+        assert!(max(-0.0, 0.0).is_sign_negative());
+        assert!(max(0.0, -0.0).is_sign_positive());
+        assert!(min(-0.0, 0.0).is_sign_negative());
+        assert!(min(0.0, -0.0).is_sign_positive());
     }
 }

@@ -255,16 +255,24 @@ fn programs(model: &Model, first: usize) -> Programs {
         .as_ref()
         .map(|e| e.vary.iter().map(|v| v.param).collect())
         .unwrap_or_default();
-    Programs {
-        stages: (0..model.stages.len())
-            .map(|s| (s >= first).then(|| solve::stage_programs(model, s, &varied)))
-            .collect(),
-        report: report::report_programs(model, &varied),
+    // Every member evaluates these programs thousands of times: native
+    // code (the same bits as the interpreter) pays for itself many times.
+    let mut stages: Vec<Option<solve::StagePrograms>> = (0..model.stages.len())
+        .map(|s| (s >= first).then(|| solve::stage_programs(model, s, &varied)))
+        .collect();
+    for sp in stages.iter_mut().flatten() {
+        sp.rhs.make_native();
+        sp.events.make_native();
     }
+    let report = report::report_programs_native(model, &varied, true);
+    Programs { stages, report }
 }
 
 type MemberOutput = (Vec<f64>, Option<Vec<u8>>, Vec<report::ExpectResult>);
 
+/// Solve one member; its series go into `series` (a buffer reused from
+/// member to member, so that memory is not returned to the system and
+/// faulted in again chunk after chunk).
 fn solve_member(
     model: &Model,
     shared: &[StageRun],
@@ -272,6 +280,7 @@ fn solve_member(
     progs: &Programs,
     params: &[(DefId, f64)],
     keep_series: bool,
+    mut series: Vec<f64>,
 ) -> Result<MemberOutput, Problem> {
     let event_ids = solve::event_defs(model);
     let mut events: Vec<Option<f64>> = vec![None; event_ids.len()];
@@ -307,7 +316,7 @@ fn solve_member(
         event_defs: event_ids,
         events,
     };
-    let series = report::series_values_with(model, &run, &progs.report, params)?;
+    report::series_values_into(model, &run, &progs.report, params, &mut series)?;
     let csv = keep_series.then(|| {
         let columns = report::columns(model);
         let mut csv = report::header_csv(&columns);
@@ -445,15 +454,21 @@ pub fn run(model: &Model, opts: &Options, dir: &Path) -> Result<EnsembleState, S
     let threads = pool.current_num_threads().max(1) as u64;
     let nv = state.variables.len();
     let member_bytes = (ages.len() * (nv + 1) * 8).max(1) as u64;
-    let chunk = ((64 << 20) / member_bytes).clamp(threads, 256 * threads);
+    let chunk = ((64 << 20) / member_bytes).clamp(threads, 2048 * threads);
     let times_per_block = ages.len().div_ceil(4 * threads as usize).max(1);
+    let mut spare: Vec<Vec<f64>> = Vec::new();
     let mut start = from;
     while start < to {
         let end = (start + chunk).min(to);
+        let buffers: Vec<Vec<f64>> = (start..end)
+            .map(|_| spare.pop().unwrap_or_default())
+            .collect();
         let mut results: Vec<MemberResult> = pool.install(|| {
-            (start..end)
+            buffers
                 .into_par_iter()
-                .map(|i| {
+                .enumerate()
+                .map(|(off, buffer)| {
+                    let i = start + off as u64;
                     run_member(
                         model,
                         &spec,
@@ -463,6 +478,7 @@ pub fn run(model: &Model, opts: &Options, dir: &Path) -> Result<EnsembleState, S
                         first,
                         &progs,
                         opts.keep_series,
+                        buffer,
                     )
                 })
                 .collect()
@@ -478,9 +494,7 @@ pub fn run(model: &Model, opts: &Options, dir: &Path) -> Result<EnsembleState, S
                     });
             });
         }
-        for r in &mut results {
-            r.series = Vec::new();
-        }
+        spare.extend(results.iter_mut().map(|r| std::mem::take(&mut r.series)));
         for (off, r) in results.into_iter().enumerate() {
             let i = start + off as u64;
             let shown: Vec<f64> = r
@@ -548,6 +562,7 @@ fn run_member(
     first: usize,
     progs: &Programs,
     keep: bool,
+    series: Vec<f64>,
 ) -> MemberResult {
     let values = match member_values(model, seed, i) {
         Ok(v) => v,
@@ -567,7 +582,7 @@ fn run_member(
         .map(|v| v.param)
         .zip(values.iter().copied())
         .collect();
-    match solve_member(model, shared, first, progs, &pairs, keep) {
+    match solve_member(model, shared, first, progs, &pairs, keep, series) {
         Ok((series, csv, expectations)) => MemberResult {
             values,
             series,
@@ -687,7 +702,7 @@ fn sensitivity(
     let Some(spec) = &model.ensemble else {
         return Vec::new();
     };
-    let nominal = solve_member(model, shared, first, progs, &[], false)
+    let nominal = solve_member(model, shared, first, progs, &[], false, Vec::new())
         .ok()
         .map(|r| r.2);
     let base = crate::compile::stage_params(model, None);
@@ -702,7 +717,15 @@ fn sensitivity(
         }
         let p1 = p0 * 1.01;
         // Every varied parameter acts from `first` on, so the shared stages hold.
-        let Ok(r) = solve_member(model, shared, first, progs, &[(v.param, p1)], false) else {
+        let Ok(r) = solve_member(
+            model,
+            shared,
+            first,
+            progs,
+            &[(v.param, p1)],
+            false,
+            Vec::new(),
+        ) else {
             continue;
         };
         for (k, (a, b)) in nominal.iter().zip(&r.2).enumerate() {

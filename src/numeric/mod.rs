@@ -31,6 +31,30 @@ pub fn binary(op: BinOp, a: f64, b: f64) -> f64 {
     }
 }
 
+/// The larger of `a` and `b` by one rule on every platform (the standard
+/// library's `f64::max` leaves the sign of a zero result to the machine):
+/// a NaN operand gives the other operand, and of two equal operands (such
+/// as +0 and -0) the first is returned. Compiled programs, interpreted or
+/// native, use this.
+#[inline]
+pub fn max(a: f64, b: f64) -> f64 {
+    if a.is_nan() || b > a {
+        b
+    } else {
+        a
+    }
+}
+
+/// The smaller of `a` and `b`, by the rule of [`max`].
+#[inline]
+pub fn min(a: f64, b: f64) -> f64 {
+    if a.is_nan() || b < a {
+        b
+    } else {
+        a
+    }
+}
+
 /// `a^b`, exact by repeated multiplication for small integer exponents.
 #[inline]
 pub fn pow(a: f64, b: f64) -> f64 {
@@ -60,7 +84,8 @@ pub fn smoothstep(x: f64, e0: f64, e1: f64) -> f64 {
 #[inline]
 pub fn interp(xs: &[f64], ys: &[f64], x: f64) -> f64 {
     let n = xs.len();
-    if n == 0 {
+    if n == 0 || x.is_nan() {
+        // (A NaN would find no knot below it.)
         return f64::NAN;
     }
     if x <= xs[0] {
@@ -88,6 +113,7 @@ mod tests {
         assert_eq!(interp(&xs, &ys, 1.0), 20.0);
         assert_eq!(interp(&xs, &ys, 2.0), 10.0);
         assert_eq!(interp(&xs, &ys, 9.0), 0.0);
+        assert!(interp(&xs, &ys, f64::NAN).is_nan());
     }
 
     #[test]

@@ -110,6 +110,12 @@ fn expect_exprs(e: &crate::model::Expect) -> Vec<crate::model::Expr> {
 /// Compile the outputs and expectations of every stage, keeping the
 /// parameters in `symbolic` as registers.
 pub fn report_programs(model: &Model, symbolic: &[DefId]) -> ReportPrograms {
+    report_programs_native(model, symbolic, false)
+}
+
+/// [`report_programs`], with native code for the output programs when
+/// `native` (for programs that many members evaluate).
+pub fn report_programs_native(model: &Model, symbolic: &[DefId], native: bool) -> ReportPrograms {
     let cols = columns(model);
     let outputs: Vec<DefId> = cols.iter().filter_map(|c| c.def).collect();
     let mut exprs = Vec::new();
@@ -122,7 +128,11 @@ pub fn report_programs(model: &Model, symbolic: &[DefId]) -> ReportPrograms {
     let mut out = Vec::new();
     let mut exp = Vec::new();
     for s in 0..model.stages.len() {
-        out.push(compile_outputs(model, s, &outputs, symbolic));
+        let mut p = compile_outputs(model, s, &outputs, symbolic);
+        if native {
+            p.make_native();
+        }
+        out.push(p);
         exp.push(compile::compile_with(
             model,
             Some(s),
@@ -224,9 +234,24 @@ pub fn series_values_with(
     programs: &ReportPrograms,
     params: &[(DefId, f64)],
 ) -> Result<Vec<f64>, Problem> {
+    let mut out = Vec::new();
+    series_values_into(model, run, programs, params, &mut out)?;
+    Ok(out)
+}
+
+/// [`series_values_with`] into `out` (cleared first), so that a caller
+/// running many members can reuse one buffer.
+pub fn series_values_into(
+    model: &Model,
+    run: &Run,
+    programs: &ReportPrograms,
+    params: &[(DefId, f64)],
+    out: &mut Vec<f64>,
+) -> Result<(), Problem> {
     let columns = columns(model);
     let rows: usize = run.stages.iter().map(|sr| sr.rows.len()).sum();
-    let mut out = Vec::with_capacity(rows * columns.len());
+    out.clear();
+    out.reserve(rows * columns.len());
     for sr in &run.stages {
         stage_values(
             model,
@@ -234,10 +259,10 @@ pub fn series_values_with(
             &programs.outputs[sr.stage],
             sr,
             params,
-            &mut out,
+            out,
         )?;
     }
-    Ok(out)
+    Ok(())
 }
 
 /// The series CSV lines of one stage's rows (no header): the stage's part

@@ -377,7 +377,7 @@ pub fn integrate(
                     }
                     jac_fresh = false;
                     // Refresh the Jacobian every few steps.
-                    if stats.implicit_steps % 8 == 0 {
+                    if stats.implicit_steps.is_multiple_of(8) {
                         have_jac = false;
                     }
                     let fac = if err == 0.0 {

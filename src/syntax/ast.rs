@@ -220,6 +220,23 @@ pub enum BinOp {
 }
 
 impl BinOp {
+    /// Every operator, in declaration order.
+    pub const ALL: [BinOp; 13] = [
+        BinOp::Or,
+        BinOp::And,
+        BinOp::Eq,
+        BinOp::Ne,
+        BinOp::Lt,
+        BinOp::Le,
+        BinOp::Gt,
+        BinOp::Ge,
+        BinOp::Add,
+        BinOp::Sub,
+        BinOp::Mul,
+        BinOp::Div,
+        BinOp::Pow,
+    ];
+
     pub fn symbol(self) -> &'static str {
         match self {
             BinOp::Or => "or",

@@ -20,7 +20,9 @@
 //!   text again changes nothing (idempotence);
 //! - a scenario that checks still checks after formatting, to the same
 //!   canonical model hash;
-//! - a scenario that checks and solves writes no NaN or infinity in any CSV.
+//! - a scenario that checks and solves writes no NaN or infinity in any CSV;
+//! - its stage programs give the same bits as native code as interpreted,
+//!   at the states the solve reported (ensembles run native code).
 
 #![allow(dead_code)]
 
@@ -1645,6 +1647,7 @@ pub fn run_case(ws: &Workspace, case: &Case, solve: bool) -> Result<Reached, Str
                 }
             }
             spans_are_valid(&model.sources, &outcome.warnings, "solve warnings")?;
+            native_agrees(&model, &outcome.run)?;
         }
         Err(p) => {
             reached.solve_failed = true;
@@ -1652,6 +1655,61 @@ pub fn run_case(ws: &Workspace, case: &Case, solve: bool) -> Result<Reached, Str
         }
     }
     Ok(reached)
+}
+
+/// Each stage's program (right-hand side, outputs and events) run as
+/// native code and interpreted, at the stage's start and end states (and
+/// halved and doubled copies of them) at its start, middle and end ages:
+/// the same bits in every register (any NaN counts as one value: which NaN
+/// an operation on NaNs returns is the machine's choice, and none is
+/// written).
+fn native_agrees(model: &hadal::model::Model, run: &hadal::solve::Run) -> Result<(), String> {
+    let mut defs: Vec<usize> = hadal::report::columns(model)
+        .iter()
+        .filter_map(|c| c.def)
+        .collect();
+    defs.extend(hadal::solve::event_defs(model));
+    let bits = |r: &hadal::compile::Regs| -> Vec<u64> {
+        r.0.iter()
+            .map(|x| if x.is_nan() { u64::MAX } else { x.to_bits() })
+            .collect()
+    };
+    let mut start = hadal::solve::initial_state(model).0;
+    for sr in &run.stages {
+        let wants = hadal::compile::Wants {
+            rhs: true,
+            defs: defs.clone(),
+            exprs: Vec::new(),
+        };
+        let mut prog = hadal::compile::compile(model, Some(sr.stage), &wants);
+        if !prog.make_native() {
+            return Ok(());
+        }
+        let st = &model.stages[sr.stage];
+        let (mut native, mut interpreted) = (prog.regs(), prog.regs());
+        for y in [&start, &sr.end.0] {
+            for scale in [1.0, 0.5, 2.0] {
+                for age in [st.start_age, 0.5 * (st.start_age + st.end_age), st.end_age] {
+                    let y: Vec<f64> = y.iter().map(|v| v * scale).collect();
+                    let t = model.start_age - age;
+                    prog.eval(&mut native, &y, t, age);
+                    prog.eval_interpreted(&mut interpreted, &y, t, age);
+                    let (a, b) = (bits(&native), bits(&interpreted));
+                    if let Some(r) = (0..a.len()).find(|&i| a[i] != b[i]) {
+                        return Err(format!(
+                            "stage {}: register {r} is {} as native code and {} interpreted at {} Ga",
+                            sr.stage,
+                            native.0[r],
+                            interpreted.0[r],
+                            age / 1e9
+                        ));
+                    }
+                }
+            }
+        }
+        start = sr.end.0.clone();
+    }
+    Ok(())
 }
 
 // ---- campaigns ---------------------------------------------------------------------

@@ -1,0 +1,481 @@
+//! Native code for a compiled program, through Cranelift, for programs that
+//! are evaluated millions of times (the stages of an ensemble's members).
+//!
+//! The native function performs exactly the IEEE operations of the
+//! interpreter (`super::exec`) in the same order: additions,
+//! multiplications and divisions inline, never fused into multiply-adds
+//! (Cranelift fuses nothing it is not asked to), comparisons and selections
+//! with the interpreter's rules, and every transcendental or table function
+//! through the very Rust function the interpreter calls. So a program gives
+//! the same bits whichever way it runs; the tests compare the two on every
+//! instruction, on edge values and on the demo scenarios' programs.
+//!
+//! What changes is the cost: registers live in machine registers between
+//! instructions, constants are immediates, and there is no dispatch. Code
+//! is only generated on x86-64, where it is tested; elsewhere programs are
+//! interpreted.
+//!
+//! Invariant: like the interpreter, the native code reads and writes only
+//! the register file and the program's kernels, at indices that
+//! `Program::check_bounds` verified.
+
+use super::{Ins, Kernels, Reg};
+/// The signature of a program's native code: the register file and the
+/// program's kernels.
+pub(super) type NativeFn = unsafe extern "C" fn(*mut f64, *const Kernels);
+
+#[cfg(target_arch = "x86_64")]
+mod gen {
+    use super::*;
+    use crate::numeric;
+    use crate::syntax::BinOp;
+
+    // The functions native code calls: the interpreter's own kernels behind the
+    // C calling convention. None of them can panic.
+
+    extern "C" fn pow(a: f64, b: f64) -> f64 {
+        numeric::pow(a, b)
+    }
+    extern "C" fn exp(x: f64) -> f64 {
+        numeric::exp(x)
+    }
+    extern "C" fn exp2(x: f64) -> f64 {
+        libm::exp2(x)
+    }
+    extern "C" fn ln(x: f64) -> f64 {
+        libm::log(x)
+    }
+    extern "C" fn log10(x: f64) -> f64 {
+        libm::log10(x)
+    }
+    extern "C" fn sqrt(x: f64) -> f64 {
+        libm::sqrt(x)
+    }
+    extern "C" fn smoothstep(x: f64, e0: f64, e1: f64) -> f64 {
+        numeric::smoothstep(x, e0, e1)
+    }
+    extern "C" fn binary(op: u64, a: f64, b: f64) -> f64 {
+        match BinOp::ALL.get(op as usize) {
+            Some(&op) => numeric::binary(op, a, b),
+            None => f64::NAN,
+        }
+    }
+    /// # Safety
+    /// `k` points to the kernels of the program whose code calls this, and
+    /// `t` is one of its table indices (both checked when it was built).
+    unsafe extern "C" fn interp(k: *const Kernels, t: u64, x: f64) -> f64 {
+        let k = &*k;
+        let (xs, ys) = k.tables.get_unchecked(t as usize);
+        numeric::interp(xs, ys, x)
+    }
+    /// # Safety
+    /// As for [`interp`].
+    unsafe extern "C" fn sea_level(k: *const Kernels, h: u64, v: f64) -> f64 {
+        let k = &*k;
+        k.hyps.get_unchecked(h as usize).sea_level(v)
+    }
+    /// # Safety
+    /// As for [`interp`].
+    unsafe extern "C" fn land_fraction(k: *const Kernels, h: u64, v: f64) -> f64 {
+        let k = &*k;
+        k.hyps.get_unchecked(h as usize).land_fraction(v)
+    }
+    /// # Safety
+    /// As for [`interp`].
+    unsafe extern "C" fn basin_volume(k: *const Kernels, h: u64, z: f64) -> f64 {
+        let k = &*k;
+        k.hyps.get_unchecked(h as usize).basin_volume(z)
+    }
+
+    use cranelift_codegen::ir::condcodes::FloatCC;
+    use cranelift_codegen::ir::types::{F64, I64};
+    use cranelift_codegen::ir::{AbiParam, InstBuilder, MemFlagsData, SigRef, Signature, Value};
+    use cranelift_codegen::settings::{self, Configurable};
+    use cranelift_frontend::{FunctionBuilder, FunctionBuilderContext};
+    use cranelift_jit::{JITBuilder, JITModule};
+    use cranelift_module::{default_libcall_names, Linkage, Module};
+
+    /// Generated code and the module that owns its memory.
+    pub struct Code {
+        module: Option<JITModule>,
+        pub func: NativeFn,
+    }
+
+    // SAFETY: after `finalize_definitions` the module is never used again
+    // except to free its memory when the last user is gone; the code itself
+    // only reads and writes the memory its caller passes, so any number of
+    // threads may run it at once.
+    unsafe impl Send for Code {}
+    unsafe impl Sync for Code {}
+
+    impl Drop for Code {
+        fn drop(&mut self) {
+            if let Some(m) = self.module.take() {
+                // SAFETY: `Code` is dropped when the last program holding it
+                // is, so nothing can call `func` any more.
+                unsafe { m.free_memory() };
+            }
+        }
+    }
+
+    /// Signatures of the called kernels, imported once per function.
+    struct Sigs {
+        f1: SigRef,
+        f2: SigRef,
+        f3: SigRef,
+        /// (kernels or operator, index, x)
+        k: SigRef,
+    }
+
+    /// Code for `ins` over registers whose start values are `init`;
+    /// registers marked in `fixed` hold the same value in every evaluation
+    /// and become immediates. `None` when Cranelift cannot build for this
+    /// machine (the caller keeps interpreting).
+    pub fn build(ins: &[Ins], init: &[f64], fixed: &[bool], age_reg: Reg) -> Option<Code> {
+        let mut flags = settings::builder();
+        flags.set("opt_level", "speed").ok()?;
+        let isa = cranelift_native::builder()
+            .ok()?
+            .finish(settings::Flags::new(flags))
+            .ok()?;
+        let mut module = JITModule::new(JITBuilder::with_isa(isa, default_libcall_names()));
+        let ptr = module.target_config().pointer_type();
+        if ptr != I64 {
+            return None;
+        }
+        let call_conv = module.isa().default_call_conv();
+        let sig = |params: &[cranelift_codegen::ir::Type]| {
+            let mut s = Signature::new(call_conv);
+            s.params.extend(params.iter().map(|&t| AbiParam::new(t)));
+            s.returns.push(AbiParam::new(F64));
+            s
+        };
+        let mut main = Signature::new(call_conv);
+        main.params.push(AbiParam::new(I64));
+        main.params.push(AbiParam::new(I64));
+        let id = module
+            .declare_function("program", Linkage::Local, &main)
+            .ok()?;
+        let frontend = module.target_config();
+        let mut ctx = module.make_context();
+        ctx.func.signature = main;
+        let mut fctx = FunctionBuilderContext::new();
+        {
+            let mut b = FunctionBuilder::new(&mut ctx.func, &mut fctx);
+            let block = b.create_block();
+            b.append_block_params_for_function_params(block);
+            b.switch_to_block(block);
+            let regs = b.block_params(block)[0];
+            let kernels = b.block_params(block)[1];
+            let sigs = Sigs {
+                f1: b.import_signature(sig(&[F64])),
+                f2: b.import_signature(sig(&[F64, F64])),
+                f3: b.import_signature(sig(&[F64, F64, F64])),
+                k: b.import_signature(sig(&[I64, I64, F64])),
+            };
+            let mut e = Emitter {
+                b,
+                regs,
+                kernels,
+                sigs,
+                vals: vec![None; init.len()],
+                init,
+                fixed,
+                age_reg,
+            };
+            for &i in ins {
+                e.ins(i);
+            }
+            e.b.ins().return_(&[]);
+            e.b.seal_all_blocks();
+            e.b.finalize(frontend);
+        }
+        module.define_function(id, &mut ctx).ok()?;
+        module.clear_context(&mut ctx);
+        module.finalize_definitions().ok()?;
+        let code = module.get_finalized_function(id);
+        // SAFETY: the function was declared with the signature of
+        // `NativeFn` (two pointer-sized arguments, no result) in the
+        // platform's C calling convention.
+        let func = unsafe { std::mem::transmute::<*const u8, NativeFn>(code) };
+        Some(Code {
+            module: Some(module),
+            func,
+        })
+    }
+
+    struct Emitter<'a, 'f> {
+        b: FunctionBuilder<'f>,
+        regs: Value,
+        kernels: Value,
+        sigs: Sigs,
+        /// The current value of each register, once read or written.
+        vals: Vec<Option<Value>>,
+        init: &'a [f64],
+        fixed: &'a [bool],
+        age_reg: Reg,
+    }
+
+    impl Emitter<'_, '_> {
+        fn get(&mut self, r: Reg) -> Value {
+            let i = r as usize;
+            if let Some(v) = self.vals[i] {
+                return v;
+            }
+            let v = if self.fixed[i] {
+                self.b.ins().f64const(self.init[i])
+            } else {
+                self.b
+                    .ins()
+                    .load(F64, MemFlagsData::trusted(), self.regs, 8 * i as i32)
+            };
+            self.vals[i] = Some(v);
+            v
+        }
+
+        fn set(&mut self, r: Reg, v: Value) {
+            let i = r as usize;
+            self.b
+                .ins()
+                .store(MemFlagsData::trusted(), v, self.regs, 8 * i as i32);
+            self.vals[i] = Some(v);
+        }
+
+        fn call(&mut self, f: usize, sig: SigRef, args: &[Value]) -> Value {
+            let callee = self.b.ins().iconst(I64, f as i64);
+            let call = self.b.ins().call_indirect(sig, callee, args);
+            self.b.inst_results(call)[0]
+        }
+
+        fn call1(&mut self, f: extern "C" fn(f64) -> f64, x: Value) -> Value {
+            let s = self.sigs.f1;
+            self.call(f as *const () as usize, s, &[x])
+        }
+
+        fn table(
+            &mut self,
+            f: unsafe extern "C" fn(*const Kernels, u64, f64) -> f64,
+            t: u32,
+            x: Value,
+        ) -> Value {
+            let idx = self.b.ins().iconst(I64, i64::from(t));
+            let (s, k) = (self.sigs.k, self.kernels);
+            self.call(f as *const () as usize, s, &[k, idx, x])
+        }
+
+        /// `numeric::max`: the other operand for a NaN, the first of two
+        /// equal ones.
+        fn max(&mut self, a: Value, b: Value) -> Value {
+            let nan = self.b.ins().fcmp(FloatCC::Unordered, a, a);
+            let gt = self.b.ins().fcmp(FloatCC::GreaterThan, b, a);
+            let c = self.b.ins().bor(nan, gt);
+            self.b.ins().select(c, b, a)
+        }
+
+        /// `numeric::min`, as [`Self::max`].
+        fn min(&mut self, a: Value, b: Value) -> Value {
+            let nan = self.b.ins().fcmp(FloatCC::Unordered, a, a);
+            let lt = self.b.ins().fcmp(FloatCC::LessThan, b, a);
+            let c = self.b.ins().bor(nan, lt);
+            self.b.ins().select(c, b, a)
+        }
+
+        fn decay(&mut self, q: Reg, h: Reg) -> Value {
+            let age = self.get(self.age_reg);
+            let h = self.get(h);
+            let x = self.b.ins().fdiv(age, h);
+            let p = self.call1(exp2, x);
+            let q = self.get(q);
+            self.b.ins().fmul(q, p)
+        }
+
+        fn ins(&mut self, ins: Ins) {
+            let (d, v) = match ins {
+                Ins::Add(d, a, b) => {
+                    let (a, b) = (self.get(a), self.get(b));
+                    (d, self.b.ins().fadd(a, b))
+                }
+                Ins::Sub(d, a, b) => {
+                    let (a, b) = (self.get(a), self.get(b));
+                    (d, self.b.ins().fsub(a, b))
+                }
+                Ins::Mul(d, a, b) => {
+                    let (a, b) = (self.get(a), self.get(b));
+                    (d, self.b.ins().fmul(a, b))
+                }
+                Ins::Div(d, a, b) | Ins::Fill(d, a, b) => {
+                    let (a, b) = (self.get(a), self.get(b));
+                    (d, self.b.ins().fdiv(a, b))
+                }
+                Ins::Pow(d, a, b) => {
+                    let (a, b) = (self.get(a), self.get(b));
+                    let s = self.sigs.f2;
+                    (d, self.call(pow as *const () as usize, s, &[a, b]))
+                }
+                Ins::Square(d, a) => {
+                    let a = self.get(a);
+                    (d, self.b.ins().fmul(a, a))
+                }
+                Ins::Other(op, d, a, b) => {
+                    let k = BinOp::ALL
+                        .iter()
+                        .position(|&o| o == op)
+                        .unwrap_or(BinOp::ALL.len());
+                    let op = self.b.ins().f64const(f64::from_bits(k as u64));
+                    let (a, b) = (self.get(a), self.get(b));
+                    // The operator travels as the bits of a double so that
+                    // one three-double signature serves.
+                    let s = self.sigs.f3;
+                    (
+                        d,
+                        self.call(binary_bits as *const () as usize, s, &[op, a, b]),
+                    )
+                }
+                Ins::Neg(d, a) => {
+                    let a = self.get(a);
+                    (d, self.b.ins().fneg(a))
+                }
+                Ins::Not(d, a) => {
+                    let a = self.get(a);
+                    let zero = self.b.ins().f64const(0.0);
+                    let is_zero = self.b.ins().fcmp(FloatCC::Equal, a, zero);
+                    let one = self.b.ins().f64const(1.0);
+                    (d, self.b.ins().select(is_zero, one, zero))
+                }
+                Ins::Select(d, c, a, b) => {
+                    let c = self.get(c);
+                    let zero = self.b.ins().f64const(0.0);
+                    let truth = self.b.ins().fcmp(FloatCC::NotEqual, c, zero);
+                    let (a, b) = (self.get(a), self.get(b));
+                    (d, self.b.ins().select(truth, a, b))
+                }
+                Ins::Exp(d, a) => {
+                    let a = self.get(a);
+                    (d, self.call1(exp, a))
+                }
+                Ins::Ln(d, a) => {
+                    let a = self.get(a);
+                    (d, self.call1(ln, a))
+                }
+                Ins::Log10(d, a) => {
+                    let a = self.get(a);
+                    (d, self.call1(log10, a))
+                }
+                Ins::Sqrt(d, a) => {
+                    let a = self.get(a);
+                    (d, self.call1(sqrt, a))
+                }
+                Ins::Abs(d, a) => {
+                    let a = self.get(a);
+                    (d, self.b.ins().fabs(a))
+                }
+                Ins::Min(d, a, b) => {
+                    let (a, b) = (self.get(a), self.get(b));
+                    (d, self.min(a, b))
+                }
+                Ins::Max(d, a, b) => {
+                    let (a, b) = (self.get(a), self.get(b));
+                    (d, self.max(a, b))
+                }
+                Ins::Clamp(d, x, lo, hi) => {
+                    let (x, lo, hi) = (self.get(x), self.get(lo), self.get(hi));
+                    let m = self.max(x, lo);
+                    (d, self.min(m, hi))
+                }
+                Ins::Smoothstep(d, x, e0, e1) => {
+                    let (x, e0, e1) = (self.get(x), self.get(e0), self.get(e1));
+                    let s = self.sigs.f3;
+                    (
+                        d,
+                        self.call(smoothstep as *const () as usize, s, &[x, e0, e1]),
+                    )
+                }
+                Ins::Decay(d, q, h) => (d, self.decay(q, h)),
+                Ins::Interp(d, t, x) => {
+                    let x = self.get(x);
+                    (d, self.table(interp, t, x))
+                }
+                Ins::SeaLevel(d, h, v) => {
+                    let v = self.get(v);
+                    (d, self.table(sea_level, h, v))
+                }
+                Ins::SeaLevelIsostatic(d, h, v, rw, rm) => {
+                    let (rm, rw) = (self.get(rm), self.get(rw));
+                    let diff = self.b.ins().fsub(rm, rw);
+                    let f = self.b.ins().fdiv(diff, rm);
+                    let v = self.get(v);
+                    let scaled = self.b.ins().fmul(v, f);
+                    (d, self.table(sea_level, h, scaled))
+                }
+                Ins::LandFraction(d, h, v) => {
+                    let v = self.get(v);
+                    (d, self.table(land_fraction, h, v))
+                }
+                Ins::BasinVolume(d, h, z) => {
+                    let z = self.get(z);
+                    (d, self.table(basin_volume, h, z))
+                }
+                Ins::Excess(d, m, c) => {
+                    let (m, c) = (self.get(m), self.get(c));
+                    let diff = self.b.ins().fsub(m, c);
+                    let zero = self.b.ins().f64const(0.0);
+                    (d, self.max(diff, zero))
+                }
+                Ins::Mul3(d, a, b, c) => {
+                    let (a, b) = (self.get(a), self.get(b));
+                    let ab = self.b.ins().fmul(a, b);
+                    let c = self.get(c);
+                    (d, self.b.ins().fmul(ab, c))
+                }
+                Ins::ExpMul(d, a, b) => {
+                    let (a, b) = (self.get(a), self.get(b));
+                    let x = self.b.ins().fmul(a, b);
+                    (d, self.call1(exp, x))
+                }
+                Ins::MulSub(d, a, b, c) => {
+                    let (b, c) = (self.get(b), self.get(c));
+                    let diff = self.b.ins().fsub(b, c);
+                    let a = self.get(a);
+                    (d, self.b.ins().fmul(a, diff))
+                }
+                Ins::SubDiv(d, a, b, c) => {
+                    let (a, b) = (self.get(a), self.get(b));
+                    let diff = self.b.ins().fsub(a, b);
+                    let c = self.get(c);
+                    (d, self.b.ins().fdiv(diff, c))
+                }
+                Ins::DecayAdd(d, acc, q, h) => {
+                    let acc = self.get(acc);
+                    let dec = self.decay(q, h);
+                    (d, self.b.ins().fadd(acc, dec))
+                }
+                Ins::MulExpMul(d, c, a, b) => {
+                    let (a, b) = (self.get(a), self.get(b));
+                    let x = self.b.ins().fmul(a, b);
+                    let e = self.call1(exp, x);
+                    let c = self.get(c);
+                    (d, self.b.ins().fmul(c, e))
+                }
+            };
+            self.set(d, v);
+        }
+    }
+
+    extern "C" fn binary_bits(op: f64, a: f64, b: f64) -> f64 {
+        binary(op.to_bits(), a, b)
+    }
+}
+
+#[cfg(target_arch = "x86_64")]
+pub(super) use gen::{build, Code};
+
+/// Where no native code is generated: nothing to hold.
+#[cfg(not(target_arch = "x86_64"))]
+pub(super) struct Code {
+    pub func: NativeFn,
+}
+
+#[cfg(not(target_arch = "x86_64"))]
+pub(super) fn build(_: &[Ins], _: &[f64], _: &[bool], _: Reg) -> Option<Code> {
+    None
+}
