@@ -263,3 +263,34 @@ fn inventories_near_the_largest_number_close_their_budget_without_overflow() {
     let csv = String::from_utf8(hadal::report::stages_csv(&m, &run)).unwrap();
     assert!(!csv.contains("inf") && !csv.contains("NaN"), "{csv}");
 }
+
+#[test]
+fn not_a_number_into_a_table_or_a_hypsometry_is_a_diagnostic_not_a_panic() {
+    // b / b is 0 / 0 at the start, where b is empty: the lookups used to
+    // index below their first knot and panic.
+    for lookup in ["ramp(b / b * 1 K)", "basin_volume(hyps, b / b * 1 m)"] {
+        for output in [
+            format!("output v = {lookup}"),
+            format!("output z = sea_level(hyps, {lookup})"),
+            format!("output land = land_fraction(hyps, {lookup})"),
+        ] {
+            let dir = tempfile::tempdir().unwrap();
+            std::fs::write(dir.path().join("ramp.csv"), "x,y\n0,0\n10,1\n").unwrap();
+            std::fs::write(
+                dir.path().join("hyps.csv"),
+                "z,a\n-1000,0\n0,1e14\n1000,2e14\n",
+            )
+            .unwrap();
+            let text = format!(
+                "{HEAD}table ramp = \"ramp.csv\" (K, m^3)\ntable hyps = \"hyps.csv\" (m, m^2)\n\
+                 reservoir a = 1e21 kg\nreservoir b = 0 kg\nflux f: a -> b = 1e11 kg/yr\n\
+                 {output}\nstage all from 2 Ga to 0 Ga\n"
+            );
+            let m = model_in(dir.path(), &text);
+            let run = hadal::solve::solve(&m).expect("the state is finite");
+            let p = hadal::report::series(&m, &run).expect_err("a NaN output");
+            assert_eq!(p.code, "H0605", "{output}: {}", p.message);
+            assert!(p.message.contains("not a number"), "{}", p.message);
+        }
+    }
+}
