@@ -1129,9 +1129,10 @@ impl<'m> ConstEval<'m> {
                     Builtin::Log10 => libm::log10(v[0]),
                     Builtin::Sqrt => libm::sqrt(v[0]),
                     Builtin::Abs => v[0].abs(),
-                    Builtin::Min => v.iter().copied().fold(f64::INFINITY, f64::min),
-                    Builtin::Max => v.iter().copied().fold(f64::NEG_INFINITY, f64::max),
-                    Builtin::Clamp => v[0].max(v[1]).min(v[2]),
+                    // As compiled programs compute them (`compile::exec`).
+                    Builtin::Min => v[1..].iter().fold(v[0], |a, &b| crate::numeric::min(a, b)),
+                    Builtin::Max => v[1..].iter().fold(v[0], |a, &b| crate::numeric::max(a, b)),
+                    Builtin::Clamp => crate::numeric::min(crate::numeric::max(v[0], v[1]), v[2]),
                     Builtin::Smoothstep => crate::numeric::smoothstep(v[0], v[1], v[2]),
                     // A table that failed to load (already reported) has no
                     // value, rather than a NaN that would be reported again.

@@ -43,8 +43,9 @@ impl Hypsometry {
     /// Volume of water needed to fill the basins up to elevation `z`.
     pub fn basin_volume(&self, z: f64) -> f64 {
         let n = self.z.len();
-        if z.is_nan() {
-            // (A NaN would find no knot below it.)
+        if z.is_nan() || n == 0 {
+            // (A NaN would find no knot below it; the checker refuses empty
+            // tables, but native code must never meet a panic.)
             return f64::NAN;
         }
         if z <= self.z[0] {
@@ -61,7 +62,7 @@ impl Hypsometry {
     /// Elevation of the water surface when `volume` fills the basins.
     pub fn sea_level(&self, volume: f64) -> f64 {
         let n = self.z.len();
-        if volume.is_nan() {
+        if volume.is_nan() || n == 0 {
             return f64::NAN;
         }
         if volume <= 0.0 {
@@ -155,5 +156,9 @@ mod tests {
         assert!(h.sea_level(f64::NAN).is_nan());
         assert!(h.basin_volume(f64::NAN).is_nan());
         assert!(h.land_fraction(f64::NAN).is_nan());
+        let empty = Hypsometry::new(&[], &[]);
+        assert!(empty.sea_level(1.0).is_nan());
+        assert!(empty.basin_volume(1.0).is_nan());
+        assert_eq!(empty.land_fraction(1.0), 0.0);
     }
 }

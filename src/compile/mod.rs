@@ -162,23 +162,42 @@ impl Program {
     /// and age `age`.
     #[inline]
     pub fn eval(&self, regs: &mut Regs, y: &[f64], t: f64, age: f64) {
+        let r = self.load_inputs(regs, y, t, age);
+        if let Some(code) = &self.native {
+            // SAFETY: `r` has `init.len()` registers (checked by
+            // `load_inputs`); the code touches only registers and tables
+            // that `check_bounds` verified, and `self.kernels` are the
+            // kernels it was built for.
+            unsafe { (code.0.func())(r.as_mut_ptr(), &self.kernels) };
+            return;
+        }
+        self.interpret(r);
+    }
+
+    /// Evaluate with the interpreter even when native code exists (for the
+    /// tests that compare the two).
+    pub fn eval_interpreted(&self, regs: &mut Regs, y: &[f64], t: f64, age: f64) {
+        let r = self.load_inputs(regs, y, t, age);
+        self.interpret(r);
+    }
+
+    /// The state and the clock into the registers.
+    fn load_inputs<'r>(&self, regs: &'r mut Regs, y: &[f64], t: f64, age: f64) -> &'r mut [f64] {
         let r = &mut regs.0;
         // Registers from another program would break `exec`'s invariant.
         assert_eq!(r.len(), self.init.len(), "registers of another program");
         r[..self.n_state].copy_from_slice(&y[..self.n_state]);
         r[self.age_reg as usize] = age;
         r[self.time_reg as usize] = t;
-        if let Some(code) = &self.native {
-            // SAFETY: `r` has `init.len()` registers (asserted above); the
-            // code touches only registers and tables that `check_bounds`
-            // verified, and `self.kernels` are the kernels it was built for.
-            unsafe { (code.0.func)(r.as_mut_ptr(), &self.kernels) };
-            return;
-        }
+        r
+    }
+
+    fn interpret(&self, r: &mut [f64]) {
+        debug_assert_eq!(r.len(), self.init.len());
         for ins in &self.ins {
-            // SAFETY: `r` has `init.len()` registers (asserted above) and
-            // `check_bounds` verified every index in `ins` when the program
-            // was built.
+            // SAFETY: `r` has `init.len()` registers (asserted by
+            // `load_inputs`) and `check_bounds` verified every index in
+            // `ins` when the program was built.
             unsafe { exec(&self.kernels, r, *ins) };
         }
     }
@@ -188,6 +207,11 @@ impl Program {
     /// few thousand interpreted evaluations). Results are the same bits as
     /// the interpreter's. Returns whether this machine got native code; if
     /// not, the program stays interpreted.
+    ///
+    /// The code takes every register that is neither state, clock,
+    /// parameter nor written by an instruction as a constant: the layout
+    /// fields (`n_state`, `age_reg`, `time_reg`, `param_regs`) must not
+    /// change afterwards, as they must not for the interpreter either.
     pub fn make_native(&mut self) -> bool {
         if self.native.is_some() {
             return true;
@@ -206,23 +230,9 @@ impl Program {
         for ins in self.ins.iter().chain(&self.setup) {
             fixed[dest(ins) as usize] = false;
         }
-        self.native = native::build(&self.ins, &self.init, &fixed, self.age_reg)
+        self.native = native::build(&self.ins, &self.init, &fixed, self.kernels.age_reg)
             .map(|c| NativeCode(std::sync::Arc::new(c)));
         self.native.is_some()
-    }
-
-    /// Evaluate with the interpreter even when native code exists (for the
-    /// tests that compare the two).
-    pub fn eval_interpreted(&self, regs: &mut Regs, y: &[f64], t: f64, age: f64) {
-        let r = &mut regs.0;
-        assert_eq!(r.len(), self.init.len(), "registers of another program");
-        r[..self.n_state].copy_from_slice(&y[..self.n_state]);
-        r[self.age_reg as usize] = age;
-        r[self.time_reg as usize] = t;
-        for ins in &self.ins {
-            // SAFETY: as in `eval`.
-            unsafe { exec(&self.kernels, r, *ins) };
-        }
     }
 
     /// Number of instructions (for tests and benchmarks).
@@ -1326,6 +1336,82 @@ mod tests {
                     assert_eq!(bits(&rn), bits(&ri), "{demo} stage {s} age {age}");
                 }
             }
+        }
+    }
+
+    /// What ensembles run: the demos' stage and output programs with
+    /// parameters as registers (the ensemble's own, and one whose uses
+    /// include parameter-only setup instructions), at several sets of
+    /// parameter values.
+    #[test]
+    fn native_code_computes_the_interpreters_bits_with_parameters_as_registers() {
+        let mut setups = 0;
+        for (demo, model, _, y0) in demos() {
+            let mut varied: Vec<DefId> = model
+                .ensemble
+                .as_ref()
+                .map(|e| e.vary.iter().map(|v| v.param).collect())
+                .unwrap_or_default();
+            // `1 + convection_beta` and friends depend on parameters only.
+            varied.extend(
+                model
+                    .defs
+                    .iter()
+                    .enumerate()
+                    .filter(|(_, d)| matches!(d.kind, DefKind::Param) && d.name.contains("beta"))
+                    .map(|(i, _)| i),
+            );
+            let outputs: Vec<DefId> = crate::report::columns(&model)
+                .iter()
+                .filter_map(|c| c.def)
+                .collect();
+            let mut rng = crate::ensemble::SplitMix(23);
+            for s in 0..model.stages.len() {
+                let base = stage_params(&model, Some(s));
+                let sp = crate::solve::stage_programs(&model, s, &varied);
+                let out = compile_with(
+                    &model,
+                    Some(s),
+                    &Wants {
+                        rhs: false,
+                        defs: outputs.clone(),
+                        exprs: Vec::new(),
+                    },
+                    &varied,
+                );
+                for mut p in [sp.rhs, sp.events, out] {
+                    setups += p.setup.len();
+                    if !made_native(&mut p) {
+                        return;
+                    }
+                    let st = &model.stages[s];
+                    for member in 0..20 {
+                        let params: Vec<(DefId, f64)> = varied
+                            .iter()
+                            .map(|&d| (d, base[d].unwrap_or(1.0) * (0.7 + 0.6 * rng.unit())))
+                            .collect();
+                        let (mut rn, mut ri) = (p.regs_with(&params), p.regs_with(&params));
+                        for _ in 0..20 {
+                            let f = rng.unit();
+                            let age = st.start_age + f * (st.end_age - st.start_age);
+                            let y: Vec<f64> = y0.iter().map(|v| v * 2.0 * rng.unit()).collect();
+                            let t = model.start_age - age;
+                            p.eval(&mut rn, &y, t, age);
+                            p.eval_interpreted(&mut ri, &y, t, age);
+                            assert_eq!(bits(&rn), bits(&ri), "{demo} stage {s} member {member}");
+                        }
+                    }
+                }
+            }
+        }
+        assert!(setups > 0, "some parameter-only instructions");
+    }
+
+    #[cfg(target_arch = "x86_64")]
+    #[test]
+    fn operators_reach_native_code_by_their_place_in_all() {
+        for (k, &op) in BinOp::ALL.iter().enumerate() {
+            assert_eq!(native::op_code(op), k as u64, "{op:?}");
         }
     }
 

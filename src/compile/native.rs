@@ -4,11 +4,14 @@
 //! The native function performs exactly the IEEE operations of the
 //! interpreter (`super::exec`) in the same order: additions,
 //! multiplications and divisions inline, never fused into multiply-adds
-//! (Cranelift fuses nothing it is not asked to), comparisons and selections
-//! with the interpreter's rules, and every transcendental or table function
-//! through the very Rust function the interpreter calls. So a program gives
-//! the same bits whichever way it runs; the tests compare the two on every
-//! instruction, on edge values and on the demo scenarios' programs.
+//! (Cranelift fuses nothing it is not asked to); `select`, `not`, `min`,
+//! `max`, `clamp` and `excess` inline by the interpreter's written rules;
+//! and every transcendental, table or hypsometry function, and the
+//! operators of `Ins::Other` (comparisons, logic), through the very Rust
+//! function the interpreter calls. So a program gives the same bits
+//! whichever way it runs; the tests compare the two on every instruction,
+//! on edge values, on the demo scenarios' programs with their ensemble
+//! parameters as registers, and in every fuzz case that solves.
 //!
 //! What changes is the cost: registers live in machine registers between
 //! instructions, constants are immediates, and there is no dispatch. Code
@@ -20,6 +23,7 @@
 //! `Program::check_bounds` verified.
 
 use super::{Ins, Kernels, Reg};
+
 /// The signature of a program's native code: the register file and the
 /// program's kernels.
 pub(super) type NativeFn = unsafe extern "C" fn(*mut f64, *const Kernels);
@@ -54,12 +58,35 @@ mod gen {
     extern "C" fn smoothstep(x: f64, e0: f64, e1: f64) -> f64 {
         numeric::smoothstep(x, e0, e1)
     }
+    /// The number that carries an operator into native code: an
+    /// exhaustive match, so a new operator cannot be forgotten here.
+    pub fn op_code(op: BinOp) -> u64 {
+        match op {
+            BinOp::Or => 0,
+            BinOp::And => 1,
+            BinOp::Eq => 2,
+            BinOp::Ne => 3,
+            BinOp::Lt => 4,
+            BinOp::Le => 5,
+            BinOp::Gt => 6,
+            BinOp::Ge => 7,
+            BinOp::Add => 8,
+            BinOp::Sub => 9,
+            BinOp::Mul => 10,
+            BinOp::Div => 11,
+            BinOp::Pow => 12,
+        }
+    }
+
+    /// The operator of [`op_code`]'s number (`BinOp::ALL` is in the same
+    /// order: unit-tested).
     extern "C" fn binary(op: u64, a: f64, b: f64) -> f64 {
         match BinOp::ALL.get(op as usize) {
             Some(&op) => numeric::binary(op, a, b),
             None => f64::NAN,
         }
     }
+
     /// # Safety
     /// `k` points to the kernels of the program whose code calls this, and
     /// `t` is one of its table indices (both checked when it was built).
@@ -98,7 +125,13 @@ mod gen {
     /// Generated code and the module that owns its memory.
     pub struct Code {
         module: Option<JITModule>,
-        pub func: NativeFn,
+        func: NativeFn,
+    }
+
+    impl Code {
+        pub fn func(&self) -> NativeFn {
+            self.func
+        }
     }
 
     // SAFETY: after `finalize_definitions` the module is never used again
@@ -123,24 +156,63 @@ mod gen {
         f1: SigRef,
         f2: SigRef,
         f3: SigRef,
-        /// (kernels or operator, index, x)
+        /// (kernels, table index, x)
         k: SigRef,
+        /// (operator, a, b)
+        op: SigRef,
     }
+
+    /// Programs longer than this stay interpreted: code generation time
+    /// grows with the program, and a program this long is evaluated too
+    /// few times in a run to repay it.
+    const MAX_INSTRUCTIONS: usize = 100_000;
 
     /// Code for `ins` over registers whose start values are `init`;
     /// registers marked in `fixed` hold the same value in every evaluation
     /// and become immediates. `None` when Cranelift cannot build for this
-    /// machine (the caller keeps interpreting).
+    /// machine or the program is out of its range (the caller keeps
+    /// interpreting).
     pub fn build(ins: &[Ins], init: &[f64], fixed: &[bool], age_reg: Reg) -> Option<Code> {
+        // Register offsets are 32-bit displacements.
+        if ins.len() > MAX_INSTRUCTIONS || init.len() > (i32::MAX / 8) as usize {
+            return None;
+        }
         let mut flags = settings::builder();
         flags.set("opt_level", "speed").ok()?;
+        // The IR verifier checks this module's output; the tests run it.
+        let verify = if cfg!(debug_assertions) {
+            "true"
+        } else {
+            "false"
+        };
+        flags.set("enable_verifier", verify).ok()?;
         let isa = cranelift_native::builder()
             .ok()?
             .finish(settings::Flags::new(flags))
             .ok()?;
         let mut module = JITModule::new(JITBuilder::with_isa(isa, default_libcall_names()));
-        let ptr = module.target_config().pointer_type();
-        if ptr != I64 {
+        match define(&mut module, ins, init, fixed, age_reg) {
+            Some(func) => Some(Code {
+                module: Some(module),
+                func,
+            }),
+            None => {
+                // SAFETY: nothing from this module was handed out.
+                unsafe { module.free_memory() };
+                None
+            }
+        }
+    }
+
+    /// Define, compile and finalize the program's function in `module`.
+    fn define(
+        module: &mut JITModule,
+        ins: &[Ins],
+        init: &[f64],
+        fixed: &[bool],
+        age_reg: Reg,
+    ) -> Option<NativeFn> {
+        if module.target_config().pointer_type() != I64 {
             return None;
         }
         let call_conv = module.isa().default_call_conv();
@@ -172,6 +244,7 @@ mod gen {
                 f2: b.import_signature(sig(&[F64, F64])),
                 f3: b.import_signature(sig(&[F64, F64, F64])),
                 k: b.import_signature(sig(&[I64, I64, F64])),
+                op: b.import_signature(sig(&[I64, F64, F64])),
             };
             let mut e = Emitter {
                 b,
@@ -197,11 +270,7 @@ mod gen {
         // SAFETY: the function was declared with the signature of
         // `NativeFn` (two pointer-sized arguments, no result) in the
         // platform's C calling convention.
-        let func = unsafe { std::mem::transmute::<*const u8, NativeFn>(code) };
-        Some(Code {
-            module: Some(module),
-            func,
-        })
+        Some(unsafe { std::mem::transmute::<*const u8, NativeFn>(code) })
     }
 
     struct Emitter<'a, 'f> {
@@ -317,19 +386,10 @@ mod gen {
                     (d, self.b.ins().fmul(a, a))
                 }
                 Ins::Other(op, d, a, b) => {
-                    let k = BinOp::ALL
-                        .iter()
-                        .position(|&o| o == op)
-                        .unwrap_or(BinOp::ALL.len());
-                    let op = self.b.ins().f64const(f64::from_bits(k as u64));
+                    let op = self.b.ins().iconst(I64, op_code(op) as i64);
                     let (a, b) = (self.get(a), self.get(b));
-                    // The operator travels as the bits of a double so that
-                    // one three-double signature serves.
-                    let s = self.sigs.f3;
-                    (
-                        d,
-                        self.call(binary_bits as *const () as usize, s, &[op, a, b]),
-                    )
+                    let s = self.sigs.op;
+                    (d, self.call(binary as *const () as usize, s, &[op, a, b]))
                 }
                 Ins::Neg(d, a) => {
                     let a = self.get(a);
@@ -460,19 +520,22 @@ mod gen {
             self.set(d, v);
         }
     }
-
-    extern "C" fn binary_bits(op: f64, a: f64, b: f64) -> f64 {
-        binary(op.to_bits(), a, b)
-    }
 }
 
+#[cfg(all(test, target_arch = "x86_64"))]
+pub(super) use gen::op_code;
 #[cfg(target_arch = "x86_64")]
 pub(super) use gen::{build, Code};
 
-/// Where no native code is generated: nothing to hold.
+/// Where no native code is generated there is none to hold.
 #[cfg(not(target_arch = "x86_64"))]
-pub(super) struct Code {
-    pub func: NativeFn,
+pub(super) enum Code {}
+
+#[cfg(not(target_arch = "x86_64"))]
+impl Code {
+    pub fn func(&self) -> NativeFn {
+        match *self {}
+    }
 }
 
 #[cfg(not(target_arch = "x86_64"))]

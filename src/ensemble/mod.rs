@@ -264,7 +264,8 @@ fn programs(model: &Model, first: usize) -> Programs {
         sp.rhs.make_native();
         sp.events.make_native();
     }
-    let report = report::report_programs_native(model, &varied, true);
+    let mut report = report::report_programs(model, &varied);
+    report.make_native();
     Programs { stages, report }
 }
 
@@ -453,8 +454,11 @@ pub fn run(model: &Model, opts: &Options, dir: &Path) -> Result<EnsembleState, S
     // about 64 MiB.
     let threads = pool.current_num_threads().max(1) as u64;
     let nv = state.variables.len();
-    let member_bytes = (ages.len() * (nv + 1) * 8).max(1) as u64;
-    let chunk = ((64 << 20) / member_bytes).clamp(threads, 2048 * threads);
+    // A member's series as doubles, and as CSV text (about 20 bytes a
+    // value) when it is kept.
+    let per_value = if opts.keep_series { 8 + 20 } else { 8 };
+    let member_bytes = (ages.len() * (nv + 1) * per_value).max(1) as u64;
+    let chunk = ((64 << 20) / member_bytes).clamp(threads, 256 * threads);
     let times_per_block = ages.len().div_ceil(4 * threads as usize).max(1);
     let mut spare: Vec<Vec<f64>> = Vec::new();
     let mut start = from;

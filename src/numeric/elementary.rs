@@ -124,25 +124,6 @@ fn reduce(x: f64) -> Reduced {
     }
 }
 
-/// ln x for a positive normal x, to about 1e-10 absolute: the table and
-/// the first terms of the series, without the corrections of `ln_dd`. For
-/// placing a value rather than computing with it (the buckets of the
-/// ensemble's quantile sketches).
-#[inline]
-pub fn ln_approx(x: f64) -> f64 {
-    let Reduced {
-        e,
-        m,
-        c,
-        inv_c,
-        lnc_hi,
-        ..
-    } = reduce(x);
-    // |u| < 2^-8: three terms leave u^4 / 4 < 6e-11.
-    let u = (m - c) * inv_c;
-    e * std::f64::consts::LN_2 + lnc_hi + u * (1.0 - u * (0.5 - u * (1.0 / 3.0)))
-}
-
 /// ln x as hi + lo for a positive normal x, to about 2^-66 of x's
 /// logarithm (absolute 2^-66 near x = 1).
 #[inline(always)]
@@ -222,18 +203,6 @@ mod tests {
         assert_eq!(f(LN2_HI).to_bits() & 0x7ff, 0, "LN2_HI has 42 bits");
         assert_eq!(f(LN2_N_HI).to_bits() & 0x1ffff, 0, "LN2_N_HI has 36 bits");
         assert!((f(INV_LN2_N) - 128.0 / std::f64::consts::LN_2).abs() < 1e-13);
-    }
-
-    #[test]
-    fn the_table_logarithm_is_within_1e_10_of_libm() {
-        let mut rng = Rng(3);
-        for _ in 0..1_000_000 {
-            let x = libm::exp((rng.unit() * 2.0 - 1.0) * 700.0);
-            let err = (ln_approx(x) - libm::log(x)).abs();
-            assert!(err < 1e-10, "ln {x:e}: {err:e}");
-        }
-        assert!(ln_approx(1.0).abs() < 1e-10);
-        assert!((ln_approx(f64::MIN_POSITIVE) - libm::log(f64::MIN_POSITIVE)).abs() < 1e-10);
     }
 
     #[test]

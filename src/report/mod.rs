@@ -95,6 +95,18 @@ pub struct ReportPrograms {
     expect_slots: Vec<std::ops::Range<usize>>,
 }
 
+impl ReportPrograms {
+    /// Native code for the output programs, which every report row of
+    /// every member evaluates (see `compile::Program::make_native`); the
+    /// expectations' programs run a few times a member and stay
+    /// interpreted.
+    pub fn make_native(&mut self) {
+        for p in &mut self.outputs {
+            p.make_native();
+        }
+    }
+}
+
 fn expect_exprs(e: &crate::model::Expect) -> Vec<crate::model::Expr> {
     use crate::model::ExpectCheck;
     match &e.check {
@@ -110,12 +122,6 @@ fn expect_exprs(e: &crate::model::Expect) -> Vec<crate::model::Expr> {
 /// Compile the outputs and expectations of every stage, keeping the
 /// parameters in `symbolic` as registers.
 pub fn report_programs(model: &Model, symbolic: &[DefId]) -> ReportPrograms {
-    report_programs_native(model, symbolic, false)
-}
-
-/// [`report_programs`], with native code for the output programs when
-/// `native` (for programs that many members evaluate).
-pub fn report_programs_native(model: &Model, symbolic: &[DefId], native: bool) -> ReportPrograms {
     let cols = columns(model);
     let outputs: Vec<DefId> = cols.iter().filter_map(|c| c.def).collect();
     let mut exprs = Vec::new();
@@ -128,11 +134,7 @@ pub fn report_programs_native(model: &Model, symbolic: &[DefId], native: bool) -
     let mut out = Vec::new();
     let mut exp = Vec::new();
     for s in 0..model.stages.len() {
-        let mut p = compile_outputs(model, s, &outputs, symbolic);
-        if native {
-            p.make_native();
-        }
-        out.push(p);
+        out.push(compile_outputs(model, s, &outputs, symbolic));
         exp.push(compile::compile_with(
             model,
             Some(s),
