@@ -62,6 +62,9 @@ fn outputs(dir: &Path) -> Vec<(String, Vec<u8>)> {
     .collect()
 }
 
+/// The unsharded runs (90 members) run native code where the machine has
+/// it, the shards of 30 the interpreter (native code is built from 50
+/// members): their merged bytes must agree all the same.
 #[test]
 fn same_seed_same_bytes_for_any_thread_count_and_shard_split() {
     let t = tempfile::tempdir().unwrap();

@@ -255,18 +255,39 @@ fn programs(model: &Model, first: usize) -> Programs {
         .as_ref()
         .map(|e| e.vary.iter().map(|v| v.param).collect())
         .unwrap_or_default();
-    // Every member evaluates these programs thousands of times: native
-    // code (the same bits as the interpreter) pays for itself many times.
-    let mut stages: Vec<Option<solve::StagePrograms>> = (0..model.stages.len())
-        .map(|s| (s >= first).then(|| solve::stage_programs(model, s, &varied)))
-        .collect();
-    for sp in stages.iter_mut().flatten() {
-        sp.rhs.make_native();
-        sp.events.make_native();
+    Programs {
+        stages: (0..model.stages.len())
+            .map(|s| (s >= first).then(|| solve::stage_programs(model, s, &varied)))
+            .collect(),
+        report: report::report_programs(model, &varied),
     }
-    let mut report = report::report_programs(model, &varied);
-    report.make_native();
-    Programs { stages, report }
+}
+
+/// Members from which native code is built for the programs. Every member
+/// evaluates them thousands of times and native code (the same bits as the
+/// interpreter) evaluates them about 1.5x faster, but building it has a
+/// cost that grows with the programs: measured on 12-02, a few
+/// milliseconds for the hot-start demo, which is ahead from 10 to 20
+/// members on; about 1.2 s of CPU for a chain of 1,000 reservoirs
+/// (`benches/scaling/generate.py 1000 4.5`), 12 % slower than the
+/// interpreter at 20 members and level with it at 100 (11.2 s against
+/// 11.4 s: there the sketches of its 2,000 series dominate).
+const NATIVE_MIN_MEMBERS: u64 = 50;
+
+impl Programs {
+    /// Native code for every program, built in parallel on the pool the
+    /// caller installs.
+    fn make_native(&mut self) {
+        rayon::join(
+            || {
+                self.stages.par_iter_mut().flatten().for_each(|sp| {
+                    sp.rhs.make_native();
+                    sp.events.make_native();
+                })
+            },
+            || self.report.make_native(),
+        );
+    }
 }
 
 type MemberOutput = (Vec<f64>, Option<Vec<u8>>, Vec<report::ExpectResult>);
@@ -359,7 +380,7 @@ pub fn run(model: &Model, opts: &Options, dir: &Path) -> Result<EnsembleState, S
     // Stages before the first varying one are shared by every member.
     let first = first_varying_stage(model);
     let shared = solve_shared(model, first, opts.store.as_ref())?;
-    let progs = programs(model, first);
+    let mut progs = programs(model, first);
 
     let columns = report::columns(model);
     let variables: Vec<(String, String)> = columns[1..]
@@ -433,6 +454,9 @@ pub fn run(model: &Model, opts: &Options, dir: &Path) -> Result<EnsembleState, S
         .num_threads(opts.threads.unwrap_or(0))
         .build()
         .map_err(|e| e.to_string())?;
+    if to - from >= NATIVE_MIN_MEMBERS {
+        pool.install(|| progs.make_native());
+    }
     let bar = if opts.progress {
         let b = indicatif::ProgressBar::new(to - from);
         b.set_style(

@@ -97,13 +97,14 @@ pub struct ReportPrograms {
 
 impl ReportPrograms {
     /// Native code for the output programs, which every report row of
-    /// every member evaluates (see `compile::Program::make_native`); the
-    /// expectations' programs run a few times a member and stay
-    /// interpreted.
+    /// every member evaluates (see `compile::Program::make_native`), built
+    /// in parallel on the current rayon pool; the expectations' programs
+    /// run a few times a member and stay interpreted.
     pub fn make_native(&mut self) {
-        for p in &mut self.outputs {
+        use rayon::prelude::*;
+        self.outputs.par_iter_mut().for_each(|p| {
             p.make_native();
-        }
+        });
     }
 }
 
