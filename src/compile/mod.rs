@@ -1064,6 +1064,32 @@ mod tests {
         native
     }
 
+    /// `p` native and interpreted, both from registers `regs`, at `n`
+    /// random ages of stage `s` and states around `y0`: the same bits.
+    #[allow(clippy::too_many_arguments)]
+    fn agree_at_random_states(
+        p: &Program,
+        regs: Regs,
+        model: &Model,
+        s: usize,
+        y0: &[f64],
+        rng: &mut crate::ensemble::SplitMix,
+        n: usize,
+        what: &str,
+    ) {
+        let (mut rn, mut ri) = (regs.clone(), regs);
+        let st = &model.stages[s];
+        for _ in 0..n {
+            let f = rng.unit();
+            let age = st.start_age + f * (st.end_age - st.start_age);
+            let y: Vec<f64> = y0.iter().map(|v| v * 2.0 * rng.unit()).collect();
+            let t = model.start_age - age;
+            p.eval(&mut rn, &y, t, age);
+            p.eval_interpreted(&mut ri, &y, t, age);
+            assert_eq!(bits(&rn), bits(&ri), "{what} age {age}");
+        }
+    }
+
     /// The demo scenarios, what to compile of them (everything), and their
     /// initial states.
     fn demos() -> Vec<(&'static str, Model, Wants, Vec<f64>)> {
@@ -1324,17 +1350,8 @@ mod tests {
                 if !made_native(&mut p) {
                     return;
                 }
-                let (mut rn, mut ri) = (p.regs(), p.regs());
-                let st = &model.stages[s];
-                for _ in 0..500 {
-                    let f = rng.unit();
-                    let age = st.start_age + f * (st.end_age - st.start_age);
-                    let y: Vec<f64> = y0.iter().map(|v| v * 2.0 * rng.unit()).collect();
-                    let t = model.start_age - age;
-                    p.eval(&mut rn, &y, t, age);
-                    p.eval_interpreted(&mut ri, &y, t, age);
-                    assert_eq!(bits(&rn), bits(&ri), "{demo} stage {s} age {age}");
-                }
+                let what = format!("{demo} stage {s}");
+                agree_at_random_states(&p, p.regs(), &model, s, &y0, &mut rng, 500, &what);
             }
         }
     }
@@ -1384,22 +1401,14 @@ mod tests {
                     if !made_native(&mut p) {
                         return;
                     }
-                    let st = &model.stages[s];
                     for member in 0..20 {
                         let params: Vec<(DefId, f64)> = varied
                             .iter()
                             .map(|&d| (d, base[d].unwrap_or(1.0) * (0.7 + 0.6 * rng.unit())))
                             .collect();
-                        let (mut rn, mut ri) = (p.regs_with(&params), p.regs_with(&params));
-                        for _ in 0..20 {
-                            let f = rng.unit();
-                            let age = st.start_age + f * (st.end_age - st.start_age);
-                            let y: Vec<f64> = y0.iter().map(|v| v * 2.0 * rng.unit()).collect();
-                            let t = model.start_age - age;
-                            p.eval(&mut rn, &y, t, age);
-                            p.eval_interpreted(&mut ri, &y, t, age);
-                            assert_eq!(bits(&rn), bits(&ri), "{demo} stage {s} member {member}");
-                        }
+                        let regs = p.regs_with(&params);
+                        let what = format!("{demo} stage {s} member {member}");
+                        agree_at_random_states(&p, regs, &model, s, &y0, &mut rng, 20, &what);
                     }
                 }
             }

@@ -273,6 +273,23 @@ mod gen {
         Some(unsafe { std::mem::transmute::<*const u8, NativeFn>(code) })
     }
 
+    /// `numeric::max`: the other operand for a NaN, the first of two equal
+    /// ones.
+    fn max(b: &mut FunctionBuilder, x: Value, y: Value) -> Value {
+        let nan = b.ins().fcmp(FloatCC::Unordered, x, x);
+        let gt = b.ins().fcmp(FloatCC::GreaterThan, y, x);
+        let c = b.ins().bor(nan, gt);
+        b.ins().select(c, y, x)
+    }
+
+    /// `numeric::min`, by the rule of [`max`].
+    fn min(b: &mut FunctionBuilder, x: Value, y: Value) -> Value {
+        let nan = b.ins().fcmp(FloatCC::Unordered, x, x);
+        let lt = b.ins().fcmp(FloatCC::LessThan, y, x);
+        let c = b.ins().bor(nan, lt);
+        b.ins().select(c, y, x)
+    }
+
     struct Emitter<'a, 'f> {
         b: FunctionBuilder<'f>,
         regs: Value,
@@ -285,7 +302,7 @@ mod gen {
         age_reg: Reg,
     }
 
-    impl Emitter<'_, '_> {
+    impl<'f> Emitter<'_, 'f> {
         fn get(&mut self, r: Reg) -> Value {
             let i = r as usize;
             if let Some(v) = self.vals[i] {
@@ -332,21 +349,31 @@ mod gen {
             self.call(f as *const () as usize, s, &[k, idx, x])
         }
 
-        /// `numeric::max`: the other operand for a NaN, the first of two
-        /// equal ones.
-        fn max(&mut self, a: Value, b: Value) -> Value {
-            let nan = self.b.ins().fcmp(FloatCC::Unordered, a, a);
-            let gt = self.b.ins().fcmp(FloatCC::GreaterThan, b, a);
-            let c = self.b.ins().bor(nan, gt);
-            self.b.ins().select(c, b, a)
+        /// `op` on the values of registers `a` and `b`.
+        fn on2(
+            &mut self,
+            a: Reg,
+            b: Reg,
+            op: impl FnOnce(&mut FunctionBuilder<'f>, Value, Value) -> Value,
+        ) -> Value {
+            let (a, b) = (self.get(a), self.get(b));
+            op(&mut self.b, a, b)
         }
 
-        /// `numeric::min`, as [`Self::max`].
-        fn min(&mut self, a: Value, b: Value) -> Value {
-            let nan = self.b.ins().fcmp(FloatCC::Unordered, a, a);
-            let lt = self.b.ins().fcmp(FloatCC::LessThan, b, a);
-            let c = self.b.ins().bor(nan, lt);
-            self.b.ins().select(c, b, a)
+        /// `op` on the value of register `a`.
+        fn on1(
+            &mut self,
+            a: Reg,
+            op: impl FnOnce(&mut FunctionBuilder<'f>, Value) -> Value,
+        ) -> Value {
+            let a = self.get(a);
+            op(&mut self.b, a)
+        }
+
+        /// The C function `f` of the value of register `a`.
+        fn call_on(&mut self, f: extern "C" fn(f64) -> f64, a: Reg) -> Value {
+            let a = self.get(a);
+            self.call1(f, a)
         }
 
         fn decay(&mut self, q: Reg, h: Reg) -> Value {
@@ -360,41 +387,25 @@ mod gen {
 
         fn ins(&mut self, ins: Ins) {
             let (d, v) = match ins {
-                Ins::Add(d, a, b) => {
-                    let (a, b) = (self.get(a), self.get(b));
-                    (d, self.b.ins().fadd(a, b))
-                }
-                Ins::Sub(d, a, b) => {
-                    let (a, b) = (self.get(a), self.get(b));
-                    (d, self.b.ins().fsub(a, b))
-                }
-                Ins::Mul(d, a, b) => {
-                    let (a, b) = (self.get(a), self.get(b));
-                    (d, self.b.ins().fmul(a, b))
-                }
+                Ins::Add(d, a, b) => (d, self.on2(a, b, |f, x, y| f.ins().fadd(x, y))),
+                Ins::Sub(d, a, b) => (d, self.on2(a, b, |f, x, y| f.ins().fsub(x, y))),
+                Ins::Mul(d, a, b) => (d, self.on2(a, b, |f, x, y| f.ins().fmul(x, y))),
                 Ins::Div(d, a, b) | Ins::Fill(d, a, b) => {
-                    let (a, b) = (self.get(a), self.get(b));
-                    (d, self.b.ins().fdiv(a, b))
+                    (d, self.on2(a, b, |f, x, y| f.ins().fdiv(x, y)))
                 }
                 Ins::Pow(d, a, b) => {
                     let (a, b) = (self.get(a), self.get(b));
                     let s = self.sigs.f2;
                     (d, self.call(pow as *const () as usize, s, &[a, b]))
                 }
-                Ins::Square(d, a) => {
-                    let a = self.get(a);
-                    (d, self.b.ins().fmul(a, a))
-                }
+                Ins::Square(d, a) => (d, self.on1(a, |f, x| f.ins().fmul(x, x))),
                 Ins::Other(op, d, a, b) => {
                     let op = self.b.ins().iconst(I64, op_code(op) as i64);
                     let (a, b) = (self.get(a), self.get(b));
                     let s = self.sigs.op;
                     (d, self.call(binary as *const () as usize, s, &[op, a, b]))
                 }
-                Ins::Neg(d, a) => {
-                    let a = self.get(a);
-                    (d, self.b.ins().fneg(a))
-                }
+                Ins::Neg(d, a) => (d, self.on1(a, |f, x| f.ins().fneg(x))),
                 Ins::Not(d, a) => {
                     let a = self.get(a);
                     let zero = self.b.ins().f64const(0.0);
@@ -409,38 +420,17 @@ mod gen {
                     let (a, b) = (self.get(a), self.get(b));
                     (d, self.b.ins().select(truth, a, b))
                 }
-                Ins::Exp(d, a) => {
-                    let a = self.get(a);
-                    (d, self.call1(exp, a))
-                }
-                Ins::Ln(d, a) => {
-                    let a = self.get(a);
-                    (d, self.call1(ln, a))
-                }
-                Ins::Log10(d, a) => {
-                    let a = self.get(a);
-                    (d, self.call1(log10, a))
-                }
-                Ins::Sqrt(d, a) => {
-                    let a = self.get(a);
-                    (d, self.call1(sqrt, a))
-                }
-                Ins::Abs(d, a) => {
-                    let a = self.get(a);
-                    (d, self.b.ins().fabs(a))
-                }
-                Ins::Min(d, a, b) => {
-                    let (a, b) = (self.get(a), self.get(b));
-                    (d, self.min(a, b))
-                }
-                Ins::Max(d, a, b) => {
-                    let (a, b) = (self.get(a), self.get(b));
-                    (d, self.max(a, b))
-                }
+                Ins::Exp(d, a) => (d, self.call_on(exp, a)),
+                Ins::Ln(d, a) => (d, self.call_on(ln, a)),
+                Ins::Log10(d, a) => (d, self.call_on(log10, a)),
+                Ins::Sqrt(d, a) => (d, self.call_on(sqrt, a)),
+                Ins::Abs(d, a) => (d, self.on1(a, |f, x| f.ins().fabs(x))),
+                Ins::Min(d, a, b) => (d, self.on2(a, b, min)),
+                Ins::Max(d, a, b) => (d, self.on2(a, b, max)),
                 Ins::Clamp(d, x, lo, hi) => {
                     let (x, lo, hi) = (self.get(x), self.get(lo), self.get(hi));
-                    let m = self.max(x, lo);
-                    (d, self.min(m, hi))
+                    let m = max(&mut self.b, x, lo);
+                    (d, min(&mut self.b, m, hi))
                 }
                 Ins::Smoothstep(d, x, e0, e1) => {
                     let (x, e0, e1) = (self.get(x), self.get(e0), self.get(e1));
@@ -479,7 +469,7 @@ mod gen {
                     let (m, c) = (self.get(m), self.get(c));
                     let diff = self.b.ins().fsub(m, c);
                     let zero = self.b.ins().f64const(0.0);
-                    (d, self.max(diff, zero))
+                    (d, max(&mut self.b, diff, zero))
                 }
                 Ins::Mul3(d, a, b, c) => {
                     let (a, b) = (self.get(a), self.get(b));

@@ -184,7 +184,8 @@ pub fn series_with(
     programs: &ReportPrograms,
     params: &[(DefId, f64)],
 ) -> Result<Series, Problem> {
-    let values = series_values_with(model, run, programs, params)?;
+    let mut values = Vec::new();
+    series_values_into(model, run, programs, params, &mut values)?;
     let columns = columns(model);
     let rows = values
         .chunks(columns.len().max(1))
@@ -230,20 +231,8 @@ fn stage_values(
 }
 
 /// The whole series as one row-major array (`columns(model).len()` values
-/// per row): what an ensemble member keeps, without a vector per row.
-pub fn series_values_with(
-    model: &Model,
-    run: &Run,
-    programs: &ReportPrograms,
-    params: &[(DefId, f64)],
-) -> Result<Vec<f64>, Problem> {
-    let mut out = Vec::new();
-    series_values_into(model, run, programs, params, &mut out)?;
-    Ok(out)
-}
-
-/// [`series_values_with`] into `out` (cleared first), so that a caller
-/// running many members can reuse one buffer.
+/// per row), into `out` (cleared first): what an ensemble member keeps,
+/// without a vector per row, in a buffer it reuses from member to member.
 pub fn series_values_into(
     model: &Model,
     run: &Run,
