@@ -369,18 +369,32 @@ impl Model {
         self.defs.iter().position(|d| d.name == name)
     }
 
+    /// Reservoirs in the order of their names (the state vector's order).
     pub fn reservoirs(&self) -> impl Iterator<Item = (DefId, &Def)> {
-        self.defs
-            .iter()
-            .enumerate()
-            .filter(|(_, d)| matches!(d.kind, DefKind::Reservoir { .. }))
+        self.by_name(|k| matches!(k, DefKind::Reservoir { .. }))
     }
 
+    /// States in the order of their names.
     pub fn states(&self) -> impl Iterator<Item = (DefId, &Def)> {
-        self.defs
-            .iter()
-            .enumerate()
-            .filter(|(_, d)| matches!(d.kind, DefKind::State { .. }))
+        self.by_name(|k| matches!(k, DefKind::State { .. }))
+    }
+
+    fn by_name(&self, kind: impl Fn(&DefKind) -> bool) -> impl Iterator<Item = (DefId, &Def)> {
+        self.ids_by_name(kind)
+            .into_iter()
+            .map(move |i| (i, &self.defs[i]))
+    }
+
+    /// Definitions of one kind in the order of their names. Everything a run
+    /// sums, lays out or writes follows this order, never the order of
+    /// declaration, so reordering a file changes no bit of any result (and
+    /// the stage cache, blind to declaration order, relies on that).
+    pub fn ids_by_name(&self, kind: impl Fn(&DefKind) -> bool) -> Vec<DefId> {
+        let mut ids: Vec<DefId> = (0..self.defs.len())
+            .filter(|&i| kind(&self.defs[i].kind))
+            .collect();
+        ids.sort_by(|&a, &b| self.defs[a].name.cmp(&self.defs[b].name));
+        ids
     }
 
     /// A formatting-independent text of an expression: numbers in internal

@@ -696,7 +696,11 @@ impl<'m> Compiler<'m> {
         let mut rates = Vec::new();
         let mut rate_probes = Vec::new();
         if wants.rhs {
-            for (id, d) in model.defs.iter().enumerate() {
+            // Fluxes are summed in the order of their names, never of their
+            // declarations: the stage fingerprint is blind to declaration order
+            // (it hashes canonical texts by name), so the sum must be too.
+            for id in by_name(model, |k| matches!(k, DefKind::Flux { .. })) {
+                let d = &model.defs[id];
                 if let DefKind::Flux {
                     from,
                     to,
@@ -1014,15 +1018,9 @@ impl<'m> Compiler<'m> {
     }
 }
 
-/// Definitions of one kind, ordered by name. Compiled code follows this
-/// order, not the order of declaration, so reordering a file changes no bit
-/// of any result (and the stage cache may rely on that).
+/// Definitions of one kind, ordered by name (see [`Model::ids_by_name`]).
 pub fn by_name(model: &Model, kind: impl Fn(&DefKind) -> bool) -> Vec<DefId> {
-    let mut ids: Vec<DefId> = (0..model.defs.len())
-        .filter(|&i| kind(&model.defs[i].kind))
-        .collect();
-    ids.sort_by(|&a, &b| model.defs[a].name.cmp(&model.defs[b].name));
-    ids
+    model.ids_by_name(kind)
 }
 
 /// The layout of the state vector: reservoirs by name, then states by name

@@ -64,7 +64,9 @@ fn column_for(model: &Model, id: DefId) -> Column {
     }
 }
 
-/// Columns: age, reservoirs, states, outputs (each in definition order).
+/// Columns: age, reservoirs, states, outputs, each group in the order of
+/// names. Never declaration order: reordering a file's declarations changes
+/// neither the model nor a byte of its series (the stage cache relies on it).
 pub fn columns(model: &Model) -> Vec<Column> {
     let mut cols = vec![Column {
         name: "age".into(),
@@ -72,16 +74,11 @@ pub fn columns(model: &Model) -> Vec<Column> {
         def: None,
         display: units::lookup("Ga").expect("Ga is a unit"),
     }];
-    for (id, _) in model.reservoirs() {
+    for id in compile::state_order(model) {
         cols.push(column_for(model, id));
     }
-    for (id, _) in model.states() {
+    for id in compile::by_name(model, |k| matches!(k, DefKind::Output)) {
         cols.push(column_for(model, id));
-    }
-    for (id, d) in model.defs.iter().enumerate() {
-        if matches!(d.kind, DefKind::Output) {
-            cols.push(column_for(model, id));
-        }
     }
     cols
 }

@@ -16,7 +16,8 @@ use methods::{Control, Dense, Failure, Observer, Stats, Stop, System};
 /// Version of the numeric engine: bump whenever a change to compile or
 /// solve can change any result bit, so cached stages are not reused.
 /// 2: exp and pow from `numeric::elementary` instead of `libm`.
-pub const ENGINE_VERSION: u32 = 2;
+/// 3: fluxes summed in the order of their names, not of their declarations.
+pub const ENGINE_VERSION: u32 = 3;
 
 /// The state carried between stages: every reservoir and state component,
 /// then the ledger of water delivered from outside and lost to outside.
