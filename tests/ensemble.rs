@@ -259,3 +259,93 @@ fn member_values_depend_only_on_seed_member_and_name() {
         assert!(v[1] >= 0.0, "{v:?}");
     }
 }
+
+/// A scenario whose one varied parameter is `q0`, with the `vary` line given.
+fn heat_study(vary: &str) -> String {
+    format!(
+        "\
+scenario heat \"a truncated heat flow\"
+span 1 Ga to 0 Ga
+report every 100 Myr
+param q0 = 24 TW
+reservoir a = 1e21 kg
+reservoir b = 1e20 kg
+flux ab: a -> b = a * q0 / 1e14 TW / 1 Gyr
+stage all from 1 Ga to 0 Ga
+ensemble {{
+  members = 20
+  {vary}
+}}
+"
+    )
+}
+
+#[test]
+fn a_truncation_that_leaves_nothing_is_refused_before_any_member_runs() {
+    let t = tempfile::tempdir().unwrap();
+    let d = t.path();
+    std::fs::write(
+        d.join("s.hadal"),
+        heat_study("vary q0 ~ normal(24 TW, 1 TW), min = 64 TW"),
+    )
+    .unwrap();
+    let o = Command::new(env!("CARGO_BIN_EXE_hadal"))
+        .current_dir(d)
+        .args(["ensemble", "s.hadal", "--out", "out"])
+        .env("HADAL_CACHE", d.join(".cache"))
+        .env("NO_COLOR", "1")
+        .output()
+        .unwrap();
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert_eq!(o.status.code(), Some(1), "{err}");
+    assert!(err.contains("H0414"), "{err}");
+    assert!(!d.join("out/members.csv").exists());
+}
+
+#[test]
+fn thin_truncations_are_drawn_inside_their_bounds_never_as_nan() {
+    let t = tempfile::tempdir().unwrap();
+    let d = t.path();
+    // 6 standard deviations up keeps about 1e-9 of the normal: rejection
+    // would never get there, the inverse distribution function does.
+    std::fs::write(
+        d.join("s.hadal"),
+        heat_study("vary q0 ~ normal(24 TW, 1 TW), min = 30 TW"),
+    )
+    .unwrap();
+    hadal(d, &["ensemble", "s.hadal", "--out", "out"]);
+    let csv = std::fs::read_to_string(d.join("out/members.csv")).unwrap();
+    let rows: Vec<&str> = csv.lines().skip(1).collect();
+    assert_eq!(rows.len(), 20, "{csv}");
+    for row in rows {
+        let cells: Vec<&str> = row.split(',').collect();
+        let q0: f64 = cells[1].parse().unwrap_or(f64::NAN);
+        assert!((30.0..40.0).contains(&q0), "{row}");
+        assert_eq!(cells.last(), Some(&"ok"), "{row}");
+    }
+
+    // The mean of a standard normal beyond a is phi(a) / Q(a), the inverse
+    // Mills ratio: 6.0758828e-9 / 9.8658765e-10 = 6.1584826 at a = 6, with
+    // a standard deviation of sqrt(1 + a m - m^2) = 0.155 (Johnson, Kotz &
+    // Balakrishnan, Continuous Univariate Distributions, vol. 1, ch. 13).
+    let p = d.join("k.hadal");
+    std::fs::write(
+        &p,
+        "scenario k\nspan 1 Ga to 0 Ga\nreport every 1 Gyr\nparam k = 0\nstage all from 1 Ga to 0 Ga\n\
+         ensemble {\n  vary k ~ normal(0, 1), min = 6\n}\n",
+    )
+    .unwrap();
+    let m = hadal::check::check_file(&p, &Default::default())
+        .unwrap()
+        .model;
+    let n = 4000;
+    let mut sum = 0.0;
+    for i in 0..n {
+        let v = hadal::ensemble::member_values(&m, 11, i).unwrap()[0];
+        assert!(v >= 6.0 && v.is_finite(), "member {i}: {v}");
+        sum += v;
+    }
+    let mean = sum / n as f64;
+    // Four standard errors: 4 * 0.155 / sqrt(4000) = 0.0098.
+    assert!((mean - 6.158_482_6).abs() < 0.01, "mean {mean}");
+}

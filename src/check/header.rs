@@ -4,6 +4,7 @@ use super::expr::Ty;
 use super::Checker;
 use crate::diagnostic::{nearest, Problem};
 use crate::model::*;
+use crate::numeric::truncation::MIN_TRUNCATED_MASS;
 use crate::span::Span;
 use crate::syntax::{self, EntryKind, StmtKind};
 use crate::units::Dim;
@@ -683,6 +684,10 @@ impl Checker {
     }
 }
 
+/// Standard deviations a normal draw can reach: Box–Muller from 53-bit
+/// uniforms gives at most sqrt(-2 ln 2^-54), about 8.65.
+const REACH: f64 = 9.0;
+
 /// Most ensemble members one run may ask for.
 pub const MAX_MEMBERS: u64 = 10_000_000;
 
@@ -891,6 +896,10 @@ impl Checker {
                     bad(self, "both ends must be positive");
                     return None;
                 }
+                if func.text == "uniform" && !(vals[1] - vals[0]).is_finite() {
+                    bad(self, "the range is too wide for a number");
+                    return None;
+                }
                 if func.text == "uniform" {
                     Dist::Uniform(vals[0], vals[1])
                 } else {
@@ -900,6 +909,10 @@ impl Checker {
             "normal" => {
                 if vals[1] <= 0.0 {
                     bad(self, "the standard deviation must be positive");
+                    return None;
+                }
+                if !(vals[0].abs() + REACH * vals[1]).is_finite() {
+                    bad(self, "its draws would be too large for a number");
                     return None;
                 }
                 Dist::Normal {
@@ -915,6 +928,10 @@ impl Checker {
                     );
                     return None;
                 }
+                if !(vals[0] * libm::exp(REACH * vals[1])).is_finite() {
+                    bad(self, "its draws would be too large for a number");
+                    return None;
+                }
                 Dist::LogNormal {
                     median: vals[0],
                     sd_ln: vals[1],
@@ -924,6 +941,10 @@ impl Checker {
                 let n = vals[2];
                 if n.fract() != 0.0 || !(2.0..=1e6).contains(&n) || vals[0] >= vals[1] {
                     bad(self, "write `grid(low, high, n)` with low below high and n a whole number from 2");
+                    return None;
+                }
+                if !(vals[1] - vals[0]).is_finite() {
+                    bad(self, "the range is too wide for a number");
                     return None;
                 }
                 Dist::Grid {
@@ -949,6 +970,19 @@ impl Checker {
                     continue;
                 }
             };
+            if d.axis_len().is_some() {
+                // A design axis runs through all its points; a bound on it
+                // would be ignored.
+                self.error(
+                    Problem::error(
+                        "H0207",
+                        format!("`{}` does not apply to `{}`", c.key.text, func.text),
+                    )
+                    .label(c.key.span, "not allowed here")
+                    .help("a design axis runs through every one of its points; narrow the list, or the ends of the grid, instead"),
+                );
+                continue;
+            }
             let what = format!("`{}`", c.key.text);
             let v = self.const_value(&c.value, dim, &what);
             *slot = v;
@@ -959,6 +993,30 @@ impl Checker {
                     Problem::error("H0411", "`min` must be below `max`")
                         .label(span, "empty range")
                         .help("swap the two bounds"),
+                );
+                return None;
+            }
+        }
+        if min.is_some() || max.is_some() {
+            let mass = d.mass_between(min, max);
+            if mass.is_nan() || mass < MIN_TRUNCATED_MASS {
+                let kept = if mass > 0.0 {
+                    format!("only {mass:.1e} of")
+                } else {
+                    "none of".to_owned()
+                };
+                self.error(
+                    Problem::error(
+                        "H0414",
+                        format!(
+                            "`min` and `max` leave {kept} the distribution of `{}`",
+                            name.text
+                        ),
+                    )
+                    .label(span, "no member could be drawn from this")
+                    .help(format!(
+                        "the bounds must keep at least {MIN_TRUNCATED_MASS:.0e} of the distribution; compare them with its center and spread"
+                    )),
                 );
                 return None;
             }
