@@ -724,7 +724,7 @@ impl Checker {
         }
         let header = self.check_header();
         let mut stages = self.check_stages(&header);
-        let expects = self.check_expects();
+        let expects = self.check_expects(&header);
         let ensemble = self.check_ensemble();
         // Stage-local fluxes know their stage.
         for (id, def) in self.defs.iter_mut().enumerate() {
