@@ -96,18 +96,43 @@ impl Dist {
     /// `max` (each optional), in 0..=1; 1 for a design axis, which
     /// `min`/`max` do not truncate.
     pub fn mass_between(&self, min: Option<f64>, max: Option<f64>) -> f64 {
-        use crate::numeric::truncation::normal_mass;
+        match self.standard_bounds(min, max) {
+            Standard::Flat { a, b, x, y } => {
+                if x >= y {
+                    0.0
+                } else {
+                    ((y - x) / (b - a)).min(1.0)
+                }
+            }
+            Standard::Normal { za, zb } => crate::numeric::truncation::normal_mass(za, zb),
+            Standard::Axis => 1.0,
+        }
+    }
+
+    /// The value at fraction `u` (in 0..1) of the part of a random
+    /// distribution between `min` and `max`, by its inverse distribution
+    /// function; `None` for a design axis.
+    pub fn truncated_at(&self, min: Option<f64>, max: Option<f64>, u: f64) -> Option<f64> {
+        let t = match self.standard_bounds(min, max) {
+            Standard::Flat { x, y, .. } => x + (y - x) * u,
+            Standard::Normal { za, zb } => crate::numeric::truncation::normal_between(za, zb, u),
+            Standard::Axis => return None,
+        };
+        Some(match *self {
+            Dist::Uniform(..) => t,
+            Dist::LogUniform(..) => libm::exp(t),
+            Dist::Normal { mean, sd } => mean + sd * t,
+            Dist::LogNormal { median, sd_ln } => median * libm::exp(sd_ln * t),
+            Dist::List(_) | Dist::Grid { .. } => return None,
+        })
+    }
+
+    /// `min` and `max` on the scale where the distribution is a plain
+    /// uniform or a standard normal (logarithms for the log forms; a bound
+    /// at or below zero is no bound there).
+    fn standard_bounds(&self, min: Option<f64>, max: Option<f64>) -> Standard {
         let lo = min.unwrap_or(f64::NEG_INFINITY);
         let hi = max.unwrap_or(f64::INFINITY);
-        let fraction = |a: f64, b: f64| {
-            // The overlap of [a, b] with [lo, hi], as a share of [a, b].
-            let (x, y) = (a.max(lo), b.min(hi));
-            if x >= y {
-                0.0
-            } else {
-                ((y - x) / (b - a)).min(1.0)
-            }
-        };
         let ln = |x: f64| {
             if x > 0.0 {
                 libm::log(x)
@@ -116,61 +141,46 @@ impl Dist {
             }
         };
         match *self {
-            Dist::Uniform(a, b) => fraction(a, b),
+            Dist::Uniform(a, b) => Standard::Flat {
+                a,
+                b,
+                x: a.max(lo),
+                y: b.min(hi),
+            },
             Dist::LogUniform(a, b) => {
-                let (la, lb) = (libm::log(a), libm::log(b));
-                let (x, y) = (la.max(ln(lo)), lb.min(ln(hi)));
-                if x >= y {
-                    0.0
-                } else {
-                    ((y - x) / (lb - la)).min(1.0)
+                let (a, b) = (libm::log(a), libm::log(b));
+                Standard::Flat {
+                    a,
+                    b,
+                    x: a.max(ln(lo)),
+                    y: b.min(ln(hi)),
                 }
             }
-            Dist::Normal { mean, sd } => normal_mass((lo - mean) / sd, (hi - mean) / sd),
+            Dist::Normal { mean, sd } => Standard::Normal {
+                za: (lo - mean) / sd,
+                zb: (hi - mean) / sd,
+            },
             Dist::LogNormal { median, sd_ln } => {
                 let m = libm::log(median);
-                normal_mass((ln(lo) - m) / sd_ln, (ln(hi) - m) / sd_ln)
+                Standard::Normal {
+                    za: (ln(lo) - m) / sd_ln,
+                    zb: (ln(hi) - m) / sd_ln,
+                }
             }
-            Dist::List(_) | Dist::Grid { .. } => 1.0,
+            Dist::List(_) | Dist::Grid { .. } => Standard::Axis,
         }
     }
+}
 
-    /// The value at fraction `u` (in 0..1) of the part of a random
-    /// distribution between `min` and `max`, by its inverse distribution
-    /// function; `None` for a design axis.
-    pub fn truncated_at(&self, min: Option<f64>, max: Option<f64>, u: f64) -> Option<f64> {
-        use crate::numeric::truncation::normal_between;
-        let lo = min.unwrap_or(f64::NEG_INFINITY);
-        let hi = max.unwrap_or(f64::INFINITY);
-        let ln = |x: f64| {
-            if x > 0.0 {
-                libm::log(x)
-            } else {
-                f64::NEG_INFINITY
-            }
-        };
-        Some(match *self {
-            Dist::Uniform(a, b) => {
-                let (x, y) = (a.max(lo), b.min(hi));
-                x + (y - x) * u
-            }
-            Dist::LogUniform(a, b) => {
-                let (x, y) = (libm::log(a).max(ln(lo)), libm::log(b).min(ln(hi)));
-                libm::exp(x + (y - x) * u)
-            }
-            Dist::Normal { mean, sd } => {
-                mean + sd * normal_between((lo - mean) / sd, (hi - mean) / sd, u)
-            }
-            Dist::LogNormal { median, sd_ln } => {
-                let m = libm::log(median);
-                median
-                    * libm::exp(
-                        sd_ln * normal_between((ln(lo) - m) / sd_ln, (ln(hi) - m) / sd_ln, u),
-                    )
-            }
-            Dist::List(_) | Dist::Grid { .. } => return None,
-        })
-    }
+/// A truncated distribution on its standard scale (see
+/// [`Dist::standard_bounds`]).
+enum Standard {
+    /// Uniform on `a..b`, truncated to `x..y`.
+    Flat { a: f64, b: f64, x: f64, y: f64 },
+    /// The standard normal truncated to `za..zb`.
+    Normal { za: f64, zb: f64 },
+    /// A design axis: not truncated.
+    Axis,
 }
 
 #[derive(Debug, Clone)]

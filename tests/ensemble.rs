@@ -349,3 +349,48 @@ fn thin_truncations_are_drawn_inside_their_bounds_never_as_nan() {
     // Four standard errors: 4 * 0.155 / sqrt(4000) = 0.0098.
     assert!((mean - 6.158_482_6).abs() < 0.01, "mean {mean}");
 }
+
+#[test]
+fn truncated_shares_and_inverses_of_every_random_distribution() {
+    use hadal::model::Dist;
+    let close = |a: f64, b: f64| (a - b).abs() <= 1e-12 * b.abs().max(1e-300);
+    // Uniform: the share of the range, and the point at a share of it.
+    let u = Dist::Uniform(0.0, 10.0);
+    assert!(close(u.mass_between(Some(2.0), Some(3.0)), 0.1));
+    assert!(close(
+        u.truncated_at(Some(2.0), Some(3.0), 0.5).unwrap(),
+        2.5
+    ));
+    assert_eq!(u.mass_between(Some(11.0), None), 0.0);
+    // Log-uniform: shares of the logarithm; 1..100 cut at 10 keeps half,
+    // and a bound at or below zero cuts nothing.
+    let lu = Dist::LogUniform(1.0, 100.0);
+    assert!(close(lu.mass_between(None, Some(10.0)), 0.5));
+    assert!(close(
+        lu.truncated_at(None, Some(10.0), 0.5).unwrap(),
+        10f64.sqrt()
+    ));
+    assert_eq!(lu.mass_between(Some(-1.0), None), 1.0);
+    // Normal: P(Z > 2) = 0.0227501 (standard normal tables).
+    let n = Dist::Normal {
+        mean: 24.0,
+        sd: 1.0,
+    };
+    assert!((n.mass_between(Some(26.0), None) - 0.022_750_1).abs() < 1e-7);
+    let x = n.truncated_at(Some(26.0), None, 0.5).unwrap();
+    assert!((n.mass_between(Some(x), None) / 0.022_750_1 - 0.5).abs() < 1e-6);
+    // Log-normal: ln x is normal, so the share above median * e^(2 sd_ln)
+    // is the same 0.0227501; a bound at or below zero cuts nothing.
+    let ln = Dist::LogNormal {
+        median: 3.0,
+        sd_ln: 0.5,
+    };
+    assert!((ln.mass_between(Some(3.0 * 1f64.exp()), None) - 0.022_750_1).abs() < 1e-7);
+    assert_eq!(ln.mass_between(Some(0.0), None), 1.0);
+    // Design axes are not truncated.
+    assert_eq!(
+        Dist::List(vec![1.0, 2.0]).mass_between(Some(5.0), None),
+        1.0
+    );
+    assert_eq!(Dist::List(vec![1.0]).truncated_at(None, None, 0.5), None);
+}
