@@ -394,3 +394,32 @@ fn truncated_shares_and_inverses_of_every_random_distribution() {
     );
     assert_eq!(Dist::List(vec![1.0]).truncated_at(None, None, 0.5), None);
 }
+
+#[test]
+fn a_member_whose_parameter_is_not_finite_stops_the_run_without_a_members_file() {
+    // The checker refuses distributions that could overflow (H0411); a
+    // model built in code can still hold one, and the sampler's guard
+    // must refuse it rather than write `inf` into members.csv.
+    let t = tempfile::tempdir().unwrap();
+    let p = t.path().join("s.hadal");
+    std::fs::write(&p, heat_study("vary q0 ~ uniform(20 TW, 30 TW)")).unwrap();
+    let mut m = hadal::check::check_file(&p, &Default::default())
+        .unwrap()
+        .model;
+    m.ensemble.as_mut().unwrap().vary[0].dist = hadal::model::Dist::Uniform(-1e308, 1e308);
+    let opts = hadal::ensemble::Options {
+        members: Some(4),
+        seed: None,
+        shard: (1, 1),
+        threads: Some(1),
+        keep_series: false,
+        store: None,
+        progress: false,
+    };
+    let out = t.path().join("out");
+    let err = hadal::ensemble::run(&m, &opts, &out).unwrap_err();
+    assert!(err.contains("not a finite number"), "{err}");
+    assert!(!out.join("members.csv").exists());
+    let left: Vec<_> = std::fs::read_dir(&out).unwrap().collect();
+    assert!(left.is_empty(), "{left:?}");
+}
