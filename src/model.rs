@@ -91,6 +91,96 @@ impl Dist {
             _ => None,
         }
     }
+
+    /// The fraction of a random distribution's mass between `min` and
+    /// `max` (each optional), in 0..=1; 1 for a design axis, which
+    /// `min`/`max` do not truncate.
+    pub fn mass_between(&self, min: Option<f64>, max: Option<f64>) -> f64 {
+        match self.standard_bounds(min, max) {
+            Standard::Flat { a, b, x, y } => {
+                if x >= y {
+                    0.0
+                } else {
+                    ((y - x) / (b - a)).min(1.0)
+                }
+            }
+            Standard::Normal { za, zb } => crate::numeric::truncation::normal_mass(za, zb),
+            Standard::Axis => 1.0,
+        }
+    }
+
+    /// The value at fraction `u` (in 0..1) of the part of a random
+    /// distribution between `min` and `max`, by its inverse distribution
+    /// function; `None` for a design axis.
+    pub fn truncated_at(&self, min: Option<f64>, max: Option<f64>, u: f64) -> Option<f64> {
+        let t = match self.standard_bounds(min, max) {
+            Standard::Flat { x, y, .. } => x + (y - x) * u,
+            Standard::Normal { za, zb } => crate::numeric::truncation::normal_between(za, zb, u),
+            Standard::Axis => return None,
+        };
+        Some(match *self {
+            Dist::Uniform(..) => t,
+            Dist::LogUniform(..) => libm::exp(t),
+            Dist::Normal { mean, sd } => mean + sd * t,
+            Dist::LogNormal { median, sd_ln } => median * libm::exp(sd_ln * t),
+            Dist::List(_) | Dist::Grid { .. } => return None,
+        })
+    }
+
+    /// `min` and `max` on the scale where the distribution is a plain
+    /// uniform or a standard normal (logarithms for the log forms; a bound
+    /// at or below zero is no bound there).
+    fn standard_bounds(&self, min: Option<f64>, max: Option<f64>) -> Standard {
+        let lo = min.unwrap_or(f64::NEG_INFINITY);
+        let hi = max.unwrap_or(f64::INFINITY);
+        let ln = |x: f64| {
+            if x > 0.0 {
+                libm::log(x)
+            } else {
+                f64::NEG_INFINITY
+            }
+        };
+        match *self {
+            Dist::Uniform(a, b) => Standard::Flat {
+                a,
+                b,
+                x: a.max(lo),
+                y: b.min(hi),
+            },
+            Dist::LogUniform(a, b) => {
+                let (a, b) = (libm::log(a), libm::log(b));
+                Standard::Flat {
+                    a,
+                    b,
+                    x: a.max(ln(lo)),
+                    y: b.min(ln(hi)),
+                }
+            }
+            Dist::Normal { mean, sd } => Standard::Normal {
+                za: (lo - mean) / sd,
+                zb: (hi - mean) / sd,
+            },
+            Dist::LogNormal { median, sd_ln } => {
+                let m = libm::log(median);
+                Standard::Normal {
+                    za: (ln(lo) - m) / sd_ln,
+                    zb: (ln(hi) - m) / sd_ln,
+                }
+            }
+            Dist::List(_) | Dist::Grid { .. } => Standard::Axis,
+        }
+    }
+}
+
+/// A truncated distribution on its standard scale (see
+/// [`Dist::standard_bounds`]).
+enum Standard {
+    /// Uniform on `a..b`, truncated to `x..y`.
+    Flat { a: f64, b: f64, x: f64, y: f64 },
+    /// The standard normal truncated to `za..zb`.
+    Normal { za: f64, zb: f64 },
+    /// A design axis: not truncated.
+    Axis,
 }
 
 #[derive(Debug, Clone)]

@@ -398,3 +398,50 @@ fn colour_on_a_terminal_unless_no_color() {
     assert!(plain.contains("H0301"), "{plain}");
     assert!(!has_ansi(&plain), "colour despite NO_COLOR:\n{plain}");
 }
+
+/// `--set` takes one expression on one line: a line break used to let a
+/// second statement ride along (dropped from the model, yet recorded in the
+/// manifest), and a comment was recorded as part of the value.
+#[test]
+fn a_set_value_must_be_one_expression_on_one_line() {
+    let (_t, dir) = workdir();
+    for value in [
+        "regassing_rate=2e11 kg/yr\nflux drain: ocean -> outside = 1e12 kg/yr",
+        "regassing_rate=2e11 kg/yr\r\nparam extra = 1",
+        "regassing_rate=2e11 kg/yr # doubled",
+        "regassing\n_rate=2e11 kg/yr",
+    ] {
+        let o = run(
+            &[
+                "run",
+                "good.hadal",
+                "--out",
+                "out",
+                "--no-cache",
+                "--set",
+                value,
+            ],
+            &dir,
+        );
+        let err = stderr(&o);
+        assert_eq!(code(&o), 1, "{value:?}: {err}");
+        assert!(err.contains("H0415"), "{value:?}: {err}");
+        // The location line shows the option escaped, on one line.
+        assert!(!err.contains("--set regassing_rate=2e11 kg/yr\n"), "{err}");
+        assert!(!dir.join("out").exists(), "{value:?}: a run was written");
+    }
+    // A tab is blank space like any other, and one expression still runs.
+    let o = run(
+        &[
+            "run",
+            "good.hadal",
+            "--out",
+            "out",
+            "--no-cache",
+            "--set",
+            "regassing_rate=2e11\tkg/yr",
+        ],
+        &dir,
+    );
+    assert_eq!(code(&o), 0, "{}", stderr(&o));
+}

@@ -259,3 +259,167 @@ fn member_values_depend_only_on_seed_member_and_name() {
         assert!(v[1] >= 0.0, "{v:?}");
     }
 }
+
+/// A scenario whose one varied parameter is `q0`, with the `vary` line given.
+fn heat_study(vary: &str) -> String {
+    format!(
+        "\
+scenario heat \"a truncated heat flow\"
+span 1 Ga to 0 Ga
+report every 100 Myr
+param q0 = 24 TW
+reservoir a = 1e21 kg
+reservoir b = 1e20 kg
+flux ab: a -> b = a * q0 / 1e14 TW / 1 Gyr
+stage all from 1 Ga to 0 Ga
+ensemble {{
+  members = 20
+  {vary}
+}}
+"
+    )
+}
+
+#[test]
+fn a_truncation_that_leaves_nothing_is_refused_before_any_member_runs() {
+    let t = tempfile::tempdir().unwrap();
+    let d = t.path();
+    std::fs::write(
+        d.join("s.hadal"),
+        heat_study("vary q0 ~ normal(24 TW, 1 TW), min = 64 TW"),
+    )
+    .unwrap();
+    let o = Command::new(env!("CARGO_BIN_EXE_hadal"))
+        .current_dir(d)
+        .args(["ensemble", "s.hadal", "--out", "out"])
+        .env("HADAL_CACHE", d.join(".cache"))
+        .env("NO_COLOR", "1")
+        .output()
+        .unwrap();
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert_eq!(o.status.code(), Some(1), "{err}");
+    assert!(err.contains("H0414"), "{err}");
+    assert!(!d.join("out/members.csv").exists());
+}
+
+#[test]
+fn thin_truncations_are_drawn_inside_their_bounds_never_as_nan() {
+    let t = tempfile::tempdir().unwrap();
+    let d = t.path();
+    // 6 standard deviations up keeps about 1e-9 of the normal: rejection
+    // would never get there, the inverse distribution function does.
+    std::fs::write(
+        d.join("s.hadal"),
+        heat_study("vary q0 ~ normal(24 TW, 1 TW), min = 30 TW"),
+    )
+    .unwrap();
+    hadal(d, &["ensemble", "s.hadal", "--out", "out"]);
+    let csv = std::fs::read_to_string(d.join("out/members.csv")).unwrap();
+    let rows: Vec<&str> = csv.lines().skip(1).collect();
+    assert_eq!(rows.len(), 20, "{csv}");
+    for row in rows {
+        let cells: Vec<&str> = row.split(',').collect();
+        let q0: f64 = cells[1].parse().unwrap_or(f64::NAN);
+        assert!((30.0..40.0).contains(&q0), "{row}");
+        assert_eq!(cells.last(), Some(&"ok"), "{row}");
+    }
+
+    // The mean of a standard normal beyond a is phi(a) / Q(a), the inverse
+    // Mills ratio: 6.0758828e-9 / 9.8658765e-10 = 6.1584826 at a = 6, with
+    // a standard deviation of sqrt(1 + a m - m^2) = 0.155 (Johnson, Kotz &
+    // Balakrishnan, Continuous Univariate Distributions, vol. 1, ch. 13).
+    let p = d.join("k.hadal");
+    std::fs::write(
+        &p,
+        "scenario k\nspan 1 Ga to 0 Ga\nreport every 1 Gyr\nparam k = 0\nstage all from 1 Ga to 0 Ga\n\
+         ensemble {\n  vary k ~ normal(0, 1), min = 6\n}\n",
+    )
+    .unwrap();
+    let m = hadal::check::check_file(&p, &Default::default())
+        .unwrap()
+        .model;
+    let n = 4000;
+    let mut sum = 0.0;
+    for i in 0..n {
+        let v = hadal::ensemble::member_values(&m, 11, i).unwrap()[0];
+        assert!(v >= 6.0 && v.is_finite(), "member {i}: {v}");
+        sum += v;
+    }
+    let mean = sum / n as f64;
+    // Four standard errors: 4 * 0.155 / sqrt(4000) = 0.0098.
+    assert!((mean - 6.158_482_6).abs() < 0.01, "mean {mean}");
+}
+
+#[test]
+fn truncated_shares_and_inverses_of_every_random_distribution() {
+    use hadal::model::Dist;
+    let close = |a: f64, b: f64| (a - b).abs() <= 1e-12 * b.abs().max(1e-300);
+    // Uniform: the share of the range, and the point at a share of it.
+    let u = Dist::Uniform(0.0, 10.0);
+    assert!(close(u.mass_between(Some(2.0), Some(3.0)), 0.1));
+    assert!(close(
+        u.truncated_at(Some(2.0), Some(3.0), 0.5).unwrap(),
+        2.5
+    ));
+    assert_eq!(u.mass_between(Some(11.0), None), 0.0);
+    // Log-uniform: shares of the logarithm; 1..100 cut at 10 keeps half,
+    // and a bound at or below zero cuts nothing.
+    let lu = Dist::LogUniform(1.0, 100.0);
+    assert!(close(lu.mass_between(None, Some(10.0)), 0.5));
+    assert!(close(
+        lu.truncated_at(None, Some(10.0), 0.5).unwrap(),
+        10f64.sqrt()
+    ));
+    assert_eq!(lu.mass_between(Some(-1.0), None), 1.0);
+    // Normal: P(Z > 2) = 0.0227501 (standard normal tables).
+    let n = Dist::Normal {
+        mean: 24.0,
+        sd: 1.0,
+    };
+    assert!((n.mass_between(Some(26.0), None) - 0.022_750_1).abs() < 1e-7);
+    let x = n.truncated_at(Some(26.0), None, 0.5).unwrap();
+    assert!((n.mass_between(Some(x), None) / 0.022_750_1 - 0.5).abs() < 1e-6);
+    // Log-normal: ln x is normal, so the share above median * e^(2 sd_ln)
+    // is the same 0.0227501; a bound at or below zero cuts nothing.
+    let ln = Dist::LogNormal {
+        median: 3.0,
+        sd_ln: 0.5,
+    };
+    assert!((ln.mass_between(Some(3.0 * 1f64.exp()), None) - 0.022_750_1).abs() < 1e-7);
+    assert_eq!(ln.mass_between(Some(0.0), None), 1.0);
+    // Design axes are not truncated.
+    assert_eq!(
+        Dist::List(vec![1.0, 2.0]).mass_between(Some(5.0), None),
+        1.0
+    );
+    assert_eq!(Dist::List(vec![1.0]).truncated_at(None, None, 0.5), None);
+}
+
+#[test]
+fn a_member_whose_parameter_is_not_finite_stops_the_run_without_a_members_file() {
+    // The checker refuses distributions that could overflow (H0411); a
+    // model built in code can still hold one, and the sampler's guard
+    // must refuse it rather than write `inf` into members.csv.
+    let t = tempfile::tempdir().unwrap();
+    let p = t.path().join("s.hadal");
+    std::fs::write(&p, heat_study("vary q0 ~ uniform(20 TW, 30 TW)")).unwrap();
+    let mut m = hadal::check::check_file(&p, &Default::default())
+        .unwrap()
+        .model;
+    m.ensemble.as_mut().unwrap().vary[0].dist = hadal::model::Dist::Uniform(-1e308, 1e308);
+    let opts = hadal::ensemble::Options {
+        members: Some(4),
+        seed: None,
+        shard: (1, 1),
+        threads: Some(1),
+        keep_series: false,
+        store: None,
+        progress: false,
+    };
+    let out = t.path().join("out");
+    let err = hadal::ensemble::run(&m, &opts, &out).unwrap_err();
+    assert!(err.contains("not a finite number"), "{err}");
+    assert!(!out.join("members.csv").exists());
+    let left: Vec<_> = std::fs::read_dir(&out).unwrap().collect();
+    assert!(left.is_empty(), "{left:?}");
+}

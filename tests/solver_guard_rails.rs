@@ -219,17 +219,24 @@ fn expectations_that_cannot_be_evaluated_fail_without_a_nan_in_any_csv() {
 
 #[test]
 fn an_expectation_with_no_uncertainty_fails_without_a_nan() {
-    // `+- 1e-999 kg` is zero: the misfit of an exact hit would be 0 / 0.
+    // The checker refuses a written `+-` width of zero (H0418), but an
+    // ensemble member may still draw one for a parameter it varies: set
+    // the parameters to zero after checking, as a member does. The misfit
+    // of an exact hit would be 0 / 0.
     let dir = tempfile::tempdir().unwrap();
     let m = model_in(
         dir.path(),
         &format!(
-            "{HEAD}reservoir a = 1e21 kg\nstage all from 2 Ga to 0 Ga\n\
-             expect a at 0 Ga = 1e21 kg +- 1e-999 kg\nexpect a at 1 Ga = 2e21 kg +- 0 kg\n"
+            "{HEAD}param w0 = 1 kg\nparam w1 = 1 kg\nreservoir a = 1e21 kg\n\
+             stage all from 2 Ga to 0 Ga\n\
+             expect a at 0 Ga = 1e21 kg +- w0\nexpect a at 1 Ga = 2e21 kg +- w1\n"
         ),
     );
+    let id = |name: &str| m.defs.iter().position(|d| d.name == name).unwrap();
+    let m = hadal::ensemble::with_params(&m, &[(id("w0"), 0.0), (id("w1"), 0.0)]);
     let outcome = hadal::pipeline::execute(&m, None).expect("runs");
     let results = hadal::report::expectations(&m, &outcome.run);
+    assert_eq!(results.len(), 2);
     assert!(results.iter().all(|r| !r.pass && r.misfit == f64::INFINITY));
     let csv = String::from_utf8(hadal::report::expectations_csv(&results)).unwrap();
     assert!(!csv.contains("NaN"), "{csv}");

@@ -4,6 +4,7 @@ use super::expr::Ty;
 use super::Checker;
 use crate::diagnostic::{nearest, Problem};
 use crate::model::*;
+use crate::numeric::truncation::MIN_TRUNCATED_MASS;
 use crate::span::Span;
 use crate::syntax::{self, EntryKind, StmtKind};
 use crate::units::Dim;
@@ -210,7 +211,13 @@ impl Checker {
                     let a = self.const_value(from, Dim::AGE, "the start of the span");
                     let b = self.const_value(to, Dim::AGE, "the end of the span");
                     if let (Some(a), Some(b)) = (a, b) {
-                        if a <= b {
+                        if a == b {
+                            self.error(
+                                Problem::error("H0417", "the span has no length")
+                                    .label(stmt.span, format!("from {} to {}", format_age(a), format_age(b)))
+                                    .help("a span runs from an older age to a younger one, e.g. `span 4.5 Ga to 0 Ga`"),
+                            );
+                        } else if a < b {
                             self.error(
                                 Problem::error(
                                     "H0410",
@@ -349,7 +356,14 @@ impl Checker {
                 span: stmt.span,
             };
             if let (Some(a), Some(b)) = (a, b) {
-                if a <= b {
+                if a == b {
+                    backwards = true;
+                    self.error(
+                        Problem::error("H0417", format!("stage `{}` has no length", name.text))
+                            .label(stmt.span, format!("from {} to {}", format_age(a), format_age(b)))
+                            .help("a stage covers a stretch of time: end it at a younger age than it starts, or delete it"),
+                    );
+                } else if a < b {
                     backwards = true;
                     self.error(
                         Problem::error("H0410", format!("stage `{}` runs backwards", name.text))
@@ -542,9 +556,11 @@ impl Checker {
         }
     }
 
-    pub(crate) fn check_expects(&mut self) -> Vec<Expect> {
+    pub(crate) fn check_expects(&mut self, h: &Header) -> Vec<Expect> {
         let header = std::mem::take(&mut self.header);
         let mut out = Vec::new();
+        // The span, when it is known; ages of expectations must lie in it.
+        let span = (h.start_age > h.end_age).then_some((h.start_age, h.end_age));
         for stmt in header {
             let StmtKind::Expect { subject, check } = &stmt.kind else {
                 continue;
@@ -572,6 +588,9 @@ impl Checker {
                 let Some(a) = self.const_value(age, Dim::AGE, "the age of an expectation") else {
                     continue;
                 };
+                if !self.age_in_span(a, age.span, span) {
+                    continue;
+                }
                 out.push(Expect {
                     subject: Expr {
                         kind: ExprKind::Ref(event),
@@ -632,32 +651,57 @@ impl Checker {
                     None
                 }
             };
+            // The age, checked against the span.
+            let age_of = |c: &mut Checker, at: &syntax::Expr| {
+                let a = c.const_value(at, Dim::AGE, "the age of an expectation")?;
+                c.age_in_span(a, at.span, span).then_some(a)
+            };
             let checked = match check {
                 syntax::ExpectCheck::Target { at, value, sigma } => {
-                    let a = self.const_value(at, Dim::AGE, "the age of an expectation");
+                    let a = age_of(self, at);
                     let v = value_of(self, value, dim, "the expected value");
                     let s = value_of(self, sigma, dim.plain(), "the uncertainty");
+                    let v_ok = v.as_ref().is_some_and(|x| {
+                        self.finite_expect_value(x, value.span, "the expected value")
+                    });
+                    let s_ok = s.as_ref().is_some_and(|x| {
+                        self.finite_expect_value(x, sigma.span, "the uncertainty")
+                            && self.positive_uncertainty(x, sigma.span)
+                    });
                     match (a, v, s) {
-                        (Some(age), Some(value), Some(sigma)) => {
+                        (Some(age), Some(value), Some(sigma)) if v_ok && s_ok => {
                             Some(ExpectCheck::Target { age, value, sigma })
                         }
                         _ => None,
                     }
                 }
                 syntax::ExpectCheck::Range { at, low, high } => {
-                    let a = self.const_value(at, Dim::AGE, "the age of an expectation");
+                    let a = age_of(self, at);
                     let l = value_of(self, low, dim, "the lower end");
                     let hi = value_of(self, high, dim, "the upper end");
+                    let l_ok = l
+                        .as_ref()
+                        .is_some_and(|x| self.finite_expect_value(x, low.span, "the lower end"));
+                    let h_ok = hi
+                        .as_ref()
+                        .is_some_and(|x| self.finite_expect_value(x, high.span, "the upper end"));
+                    let ordered = match (&l, &hi) {
+                        (Some(lx), Some(hx)) if l_ok && h_ok => {
+                            self.ordered_range(lx, hx, low.span.join(high.span))
+                        }
+                        _ => false,
+                    };
                     match (a, l, hi) {
-                        (Some(age), Some(low), Some(high)) => {
+                        (Some(age), Some(low), Some(high)) if ordered => {
                             Some(ExpectCheck::Range { age, low, high })
                         }
                         _ => None,
                     }
                 }
                 syntax::ExpectCheck::Bound { at, op, value } => {
-                    let a = self.const_value(at, Dim::AGE, "the age of an expectation");
-                    let v = value_of(self, value, dim, "the bound");
+                    let a = age_of(self, at);
+                    let v = value_of(self, value, dim, "the bound")
+                        .filter(|x| self.finite_expect_value(x, value.span, "the bound"));
                     match (a, v) {
                         (Some(age), Some(value)) => Some(ExpectCheck::Bound {
                             age,
@@ -680,6 +724,111 @@ impl Checker {
             }
         }
         out
+    }
+}
+
+/// Standard deviations a normal draw can reach: Box–Muller from 53-bit
+/// uniforms gives at most sqrt(-2 ln 2^-54), about 8.65.
+const REACH: f64 = 9.0;
+
+impl Checker {
+    /// H0416 unless `age` lies in the span (edges included); true when it
+    /// does, or when the span is unknown (its own error is reported).
+    fn age_in_span(&mut self, age: f64, at: Span, span: Option<(f64, f64)>) -> bool {
+        let Some((start, end)) = span else {
+            return true;
+        };
+        if age <= start && age >= end {
+            return true;
+        }
+        self.error(
+            Problem::error("H0416", "the age of an expectation lies outside the span")
+                .label(
+                    at,
+                    format!(
+                        "{}, but the span is {} to {}",
+                        format_age(age),
+                        format_age(start),
+                        format_age(end)
+                    ),
+                )
+                .help(format!(
+                    "the run has no state at that age; expect at an age from {} to {}",
+                    format_age(start),
+                    format_age(end)
+                )),
+        );
+        false
+    }
+
+    /// The nominal value of a checked, constant expectation expression;
+    /// `None` when it cannot be folded (an earlier error).
+    fn expect_value_now(&self, x: &Expr) -> Option<f64> {
+        super::expr::eval_const_in(&self.defs, &self.tables, x)
+    }
+
+    /// H0303 when a value of an expectation is not a finite number (a
+    /// division by zero, an overflow): the comparison would be NaN.
+    fn finite_expect_value(&mut self, x: &Expr, at: Span, what: &str) -> bool {
+        match self.expect_value_now(x) {
+            Some(v) if !v.is_finite() => {
+                self.error(
+                    Problem::error(
+                        "H0303",
+                        format!("{what} does not evaluate to a finite number"),
+                    )
+                    .label(at, "not finite")
+                    .help("look for a division by zero or a result too large for a number"),
+                );
+                false
+            }
+            _ => true,
+        }
+    }
+
+    /// H0418 for a `+-` width that is zero or negative: the misfit divides
+    /// by it, and a sign on an uncertainty means nothing.
+    fn positive_uncertainty(&mut self, x: &Expr, at: Span) -> bool {
+        match self.expect_value_now(x) {
+            Some(v) if v <= 0.0 => {
+                let what = if v == 0.0 { "zero" } else { "negative" };
+                self.error(
+                    Problem::error(
+                        "H0418",
+                        format!("the uncertainty after `+-` is {what}"),
+                    )
+                    .label(at, "must be positive")
+                    .help("give the one-standard-deviation width of the target, e.g. `+- 30 K`; for a hard limit write a range `in LOW to HIGH` or a bound `< X`"),
+                );
+                false
+            }
+            _ => true,
+        }
+    }
+
+    /// H0418 for a range `in LOW to HIGH` whose low end is not below its
+    /// high end: no value (or only one exact value) could pass.
+    fn ordered_range(&mut self, low: &Expr, high: &Expr, at: Span) -> bool {
+        match (self.expect_value_now(low), self.expect_value_now(high)) {
+            (Some(l), Some(h)) if l >= h => {
+                let what = if l == h {
+                    "has no width"
+                } else {
+                    "runs backwards"
+                };
+                self.error(
+                    Problem::error("H0418", format!("the range of an expectation {what}"))
+                        .label(at, "the low end must be below the high end")
+                        .help(if l == h {
+                            "a range needs room; for a target with an uncertainty write `= X +- WIDTH`"
+                        } else {
+                            "write the lower end first: `in LOW to HIGH`"
+                        }),
+                );
+                false
+            }
+            _ => true,
+        }
     }
 }
 
@@ -891,6 +1040,10 @@ impl Checker {
                     bad(self, "both ends must be positive");
                     return None;
                 }
+                if func.text == "uniform" && !(vals[1] - vals[0]).is_finite() {
+                    bad(self, "the range is too wide for a number");
+                    return None;
+                }
                 if func.text == "uniform" {
                     Dist::Uniform(vals[0], vals[1])
                 } else {
@@ -900,6 +1053,10 @@ impl Checker {
             "normal" => {
                 if vals[1] <= 0.0 {
                     bad(self, "the standard deviation must be positive");
+                    return None;
+                }
+                if !(vals[0].abs() + REACH * vals[1]).is_finite() {
+                    bad(self, "its draws would be too large for a number");
                     return None;
                 }
                 Dist::Normal {
@@ -915,6 +1072,10 @@ impl Checker {
                     );
                     return None;
                 }
+                if !(vals[0] * libm::exp(REACH * vals[1])).is_finite() {
+                    bad(self, "its draws would be too large for a number");
+                    return None;
+                }
                 Dist::LogNormal {
                     median: vals[0],
                     sd_ln: vals[1],
@@ -924,6 +1085,10 @@ impl Checker {
                 let n = vals[2];
                 if n.fract() != 0.0 || !(2.0..=1e6).contains(&n) || vals[0] >= vals[1] {
                     bad(self, "write `grid(low, high, n)` with low below high and n a whole number from 2");
+                    return None;
+                }
+                if !(vals[1] - vals[0]).is_finite() {
+                    bad(self, "the range is too wide for a number");
                     return None;
                 }
                 Dist::Grid {
@@ -949,6 +1114,19 @@ impl Checker {
                     continue;
                 }
             };
+            if d.axis_len().is_some() {
+                // A design axis runs through all its points; a bound on it
+                // would be ignored.
+                self.error(
+                    Problem::error(
+                        "H0207",
+                        format!("`{}` does not apply to `{}`", c.key.text, func.text),
+                    )
+                    .label(c.key.span, "not allowed here")
+                    .help("a design axis runs through every one of its points; narrow the list, or the ends of the grid, instead"),
+                );
+                continue;
+            }
             let what = format!("`{}`", c.key.text);
             let v = self.const_value(&c.value, dim, &what);
             *slot = v;
@@ -959,6 +1137,30 @@ impl Checker {
                     Problem::error("H0411", "`min` must be below `max`")
                         .label(span, "empty range")
                         .help("swap the two bounds"),
+                );
+                return None;
+            }
+        }
+        if min.is_some() || max.is_some() {
+            let mass = d.mass_between(min, max);
+            if mass.is_nan() || mass < MIN_TRUNCATED_MASS {
+                let kept = if mass > 0.0 {
+                    format!("only {mass:.1e} of")
+                } else {
+                    "none of".to_owned()
+                };
+                self.error(
+                    Problem::error(
+                        "H0414",
+                        format!(
+                            "`min` and `max` leave {kept} the distribution of `{}`",
+                            name.text
+                        ),
+                    )
+                    .label(span, "no member could be drawn from this")
+                    .help(format!(
+                        "the bounds must keep at least {MIN_TRUNCATED_MASS:.0e} of the distribution; compare them with its center and spread"
+                    )),
                 );
                 return None;
             }

@@ -724,7 +724,7 @@ impl Checker {
         }
         let header = self.check_header();
         let mut stages = self.check_stages(&header);
-        let expects = self.check_expects();
+        let expects = self.check_expects(&header);
         let ensemble = self.check_ensemble();
         // Stage-local fluxes know their stage.
         for (id, def) in self.defs.iter_mut().enumerate() {
@@ -862,11 +862,24 @@ impl Checker {
     fn apply_overrides(&mut self, options: &CheckOptions) {
         for (name, value) in &options.overrides {
             let text = format!("param {name} = {value}\n");
-            let file = self.sources.add(
-                format!("--set {name}={value}"),
-                PathBuf::new(),
-                text.clone(),
-            );
+            // Escaped, so that a line break in the option cannot break the
+            // location line of a diagnostic.
+            let shown: String = format!("--set {name}={value}")
+                .chars()
+                .flat_map(|c| {
+                    let escaped: Vec<char> = if c.is_control() {
+                        c.escape_debug().collect()
+                    } else {
+                        vec![c]
+                    };
+                    escaped
+                })
+                .collect();
+            let file = self.sources.add(shown, PathBuf::new(), text.clone());
+            if let Some(p) = override_shape(name, value, file) {
+                self.error(p);
+                continue;
+            }
             let parsed = match syntax::parse(&text, file) {
                 Ok(p) => p,
                 Err(problems) => {
@@ -876,8 +889,12 @@ impl Checker {
                     continue;
                 }
             };
-            let Some(EntryKind::Stmt(stmt)) = parsed.entries.into_iter().next().map(|e| e.kind)
+            let mut entries = parsed.entries.into_iter();
+            let (Some(EntryKind::Stmt(stmt)), None) =
+                (entries.next().map(|e| e.kind), entries.next())
             else {
+                // Unreachable after `override_shape`: one line without a
+                // comment parses to one statement or to errors.
                 continue;
             };
             let stmt: Rc<syntax::Stmt> = Rc::new(*stmt);
@@ -1343,6 +1360,56 @@ impl Checker {
 /// formula; a reservoir's capacity (inlined by `fill`, `capacity` and
 /// `excess`). A reference to a reservoir or a state reads a register and
 /// ends the walk.
+/// H0415 for a `--set NAME=VALUE` that is not one expression on one line:
+/// a line break would smuggle further statements past the option (they
+/// were dropped, while the manifest recorded the whole text), and a
+/// comment would be recorded in the manifest as part of the value. `file`
+/// holds `param NAME = VALUE`, so spans are offsets into that text.
+fn override_shape(name: &str, value: &str, file: u32) -> Option<Problem> {
+    let at = |start: usize, end: usize| Span {
+        file,
+        start: start as u32,
+        end: end as u32,
+    };
+    let value_start = "param ".len() + name.len() + " = ".len();
+    if let Some(i) = name.find(|c: char| c.is_control() && c != '\t') {
+        let start = "param ".len();
+        return Some(
+            Problem::error("H0415", "a `--set` name must be one name on one line")
+                .label(
+                    at(start + i, start + name.len()),
+                    "a line break or control character",
+                )
+                .help("give each parameter its own `--set NAME=VALUE`"),
+        );
+    }
+    let (i, problem) = if let Some(i) = value.find(|c: char| c.is_control() && c != '\t') {
+        (
+            i,
+            Problem::error(
+                "H0415",
+                format!("`--set {name}` must be one expression on one line"),
+            )
+            .help("give each parameter its own `--set NAME=VALUE`; other statements belong in the scenario file"),
+        )
+    } else if let Some(i) = value.find('#') {
+        (
+            i,
+            Problem::error("H0415", format!("`--set {name}` cannot carry a comment")).help(
+                "leave out the `# ...`: the value is recorded in the manifest exactly as given",
+            ),
+        )
+    } else {
+        return None;
+    };
+    let what = if value[i..].starts_with('#') {
+        "a comment"
+    } else {
+        "a line break or control character"
+    };
+    Some(problem.label(at(value_start + i, value_start + value.len()), what))
+}
+
 fn body(d: &Def) -> Option<&Expr> {
     match &d.kind {
         DefKind::Reservoir { capacity } => capacity.as_ref(),

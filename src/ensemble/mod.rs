@@ -24,6 +24,7 @@ use crate::cache::Store;
 use crate::diagnostic::Problem;
 use crate::graph::{DepGraph, Node};
 use crate::model::{DefId, DefKind, Dist, Expr, ExprKind, Model};
+use crate::numeric::truncation::REJECTION_MIN_MASS;
 use crate::pipeline;
 use crate::report::{self, fmt_num};
 use crate::solve::{self, Run, StageRun};
@@ -101,7 +102,8 @@ pub fn design(model: &Model, members: Option<u64>) -> (u64, Vec<u64>) {
     (n, axes)
 }
 
-/// Parameter values of member `i`, in the order of the `vary` lines.
+/// Parameter values of member `i`, in the order of the `vary` lines; an
+/// error if a value cannot be drawn (the whole run is then refused).
 pub fn member_values(model: &Model, seed: u64, i: u64) -> Result<Vec<f64>, String> {
     let Some(spec) = &model.ensemble else {
         return Ok(Vec::new());
@@ -135,6 +137,19 @@ pub fn member_values(model: &Model, seed: u64, i: u64) -> Result<Vec<f64>, Strin
                 axis += 1;
                 lo + (hi - lo) * k as f64 / (*n - 1) as f64
             }
+            _ if (v.min.is_some() || v.max.is_some())
+                && v.dist.mass_between(v.min, v.max) < REJECTION_MIN_MASS =>
+            {
+                // A thin slice (the checker refused slices below
+                // MIN_TRUNCATED_MASS): invert the distribution function
+                // there, with one uniform number.
+                let x = v
+                    .dist
+                    .truncated_at(v.min, v.max, rng.unit())
+                    .unwrap_or(f64::NAN);
+                // Rounding in the last step may land a hair outside.
+                x.max(v.min.unwrap_or(x)).min(v.max.unwrap_or(x))
+            }
             _ => {
                 // Truncation by rejection: deterministic, as the stream is.
                 let mut x = draw(&mut rng);
@@ -151,6 +166,13 @@ pub fn member_values(model: &Model, seed: u64, i: u64) -> Result<Vec<f64>, Strin
                 x
             }
         };
+        // The checker bounds every distribution's reach, so this is a
+        // guard: a parameter that is not a number must not become a member.
+        if !value.is_finite() {
+            return Err(format!(
+                "`{name}`: drew {value}, which is not a finite number"
+            ));
+        }
         out.push(value);
     }
     Ok(out)
@@ -210,6 +232,9 @@ struct MemberResult {
     series_csv: Option<Vec<u8>>,
     expectations: Vec<report::ExpectResult>,
     error: Option<String>,
+    /// Its parameters could not be drawn: the run stops, as no member's
+    /// row may hold a value that is not a number.
+    draw_error: Option<String>,
 }
 
 /// Everything an ensemble (or a shard of one) accumulates; merging shard
@@ -523,6 +548,15 @@ pub fn run(model: &Model, opts: &Options, dir: &Path) -> Result<EnsembleState, S
             });
         }
         spare.extend(results.iter_mut().map(|r| std::mem::take(&mut r.series)));
+        if let Some((off, e)) = results
+            .iter()
+            .enumerate()
+            .find_map(|(off, r)| r.draw_error.as_ref().map(|e| (off, e)))
+        {
+            drop(out);
+            let _ = std::fs::remove_file(&tmp);
+            return Err(format!("member {}: {e}", start + off as u64));
+        }
         for (off, r) in results.into_iter().enumerate() {
             let i = start + off as u64;
             let shown: Vec<f64> = r
@@ -596,11 +630,12 @@ fn run_member(
         Ok(v) => v,
         Err(e) => {
             return MemberResult {
-                values: vec![f64::NAN; spec.vary.len()],
+                values: Vec::new(),
                 series: Vec::new(),
                 series_csv: None,
                 expectations: Vec::new(),
-                error: Some(e),
+                error: None,
+                draw_error: Some(e),
             }
         }
     };
@@ -617,6 +652,7 @@ fn run_member(
             series_csv: csv,
             expectations,
             error: None,
+            draw_error: None,
         },
         Err(p) => MemberResult {
             values,
@@ -624,6 +660,7 @@ fn run_member(
             series_csv: None,
             expectations: Vec::new(),
             error: Some(format!("{}: {}", p.code, p.message)),
+            draw_error: None,
         },
     }
 }

@@ -5,6 +5,7 @@
 
 pub mod elementary;
 mod tables;
+pub mod truncation;
 
 pub use elementary::exp;
 
