@@ -463,6 +463,20 @@ fn a_huge_manifest_is_refused_from_its_size() {
     );
 }
 
+#[test]
+fn a_huge_published_output_is_not_read() {
+    let t = tree();
+    let f = std::fs::File::create(t.project.join("outputs/repro/series.csv")).unwrap();
+    f.set_len(64 << 20).unwrap();
+    let o = t.verify();
+    let all = text(&o);
+    assert_eq!(o.status.code(), Some(1), "{all}");
+    assert!(
+        all.contains("the published `series.csv` is 67108864 bytes, far more than"),
+        "{all}"
+    );
+}
+
 #[cfg(unix)]
 #[test]
 fn a_fifo_as_manifest_is_refused_without_hanging() {
@@ -582,6 +596,24 @@ fn names_and_hashes_from_a_manifest_never_panic_or_drive_the_terminal() {
     .unwrap();
     let o = hadal(&t.project, &["diff", "outputs/repro", "outputs/other"]);
     assert_eq!(o.status.code(), Some(1), "{}", text(&o));
+}
+
+#[test]
+fn a_published_output_cannot_drive_the_terminal_either() {
+    let t = tree();
+    let series = t.project.join("outputs/repro/series.csv");
+    std::fs::write(&series, "age [Ga],\u{1b}[2Ja [kg]\n2,\u{1b}]0;x\u{7}\n").unwrap();
+    for args in [
+        &["verify", "outputs/repro/manifest.json"][..],
+        &["diff", "outputs/repro", "outputs/repro"][..],
+    ] {
+        let o = hadal(&t.project, args);
+        let all = text(&o);
+        assert!(!all.contains('\u{1b}') && !all.contains('\u{7}'), "{all:?}");
+    }
+    let o = t.verify();
+    assert_eq!(o.status.code(), Some(1));
+    assert!(text(&o).contains("\\u{1b}[2Ja [kg]"), "{}", text(&o));
 }
 
 #[test]

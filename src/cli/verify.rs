@@ -4,7 +4,7 @@ use std::path::{Path, PathBuf};
 
 use super::{report, EXIT_INVALID, EXIT_OK, EXIT_USAGE};
 use crate::check::CheckError;
-use crate::manifest::verify::{self, Published, RefusalKind};
+use crate::manifest::verify::{self, shown as sh, Published, RefusalKind};
 use crate::manifest::{self, diff_csv, hash_bytes, Manifest};
 use crate::report as rep;
 
@@ -36,7 +36,7 @@ fn verify_one(path: &Path, rtol: Option<f64>) -> i32 {
         }
     };
     let m = &opened.manifest;
-    let name = &verify::shown(&m.compared.scenario.name);
+    let name = &sh(&m.compared.scenario.name);
     let checked = match opened.check() {
         Ok(c) => c,
         Err(CheckError::Io { path, message }) => {
@@ -95,7 +95,7 @@ fn verify_one(path: &Path, rtol: Option<f64>) -> i32 {
         // Compare the values against the published file when there is one.
         let reference = published.clone().unwrap_or_default();
         if published.is_none() {
-            eprintln!("drift: {name}: `{}` differs from the manifest (blake3 {} instead of {}); the published file is not beside the manifest to compare values", rec.path, &fresh_hash[..16], verify::shown(rec.blake3.get(..16).unwrap_or(&rec.blake3)));
+            eprintln!("drift: {name}: `{}` differs from the manifest (blake3 {} instead of {}); the published file is not beside the manifest to compare values", rec.path, &fresh_hash[..16], sh(rec.blake3.get(..16).unwrap_or(&rec.blake3)));
             drift = true;
             continue;
         }
@@ -110,12 +110,15 @@ fn verify_one(path: &Path, rtol: Option<f64>) -> i32 {
         }
         drift = true;
         for s in &d.shape {
-            eprintln!("drift: {name}: `{}`: {s}", rec.path);
+            eprintln!("drift: {name}: `{}`: {}", rec.path, sh(s));
         }
         if let Some((col, age, a, b)) = &d.first {
             eprintln!(
-                "drift: {name}: `{}` first differs in column `{col}` at age {age}: published {a}, recomputed {b}; largest relative difference {:.3e}",
+                "drift: {name}: `{}` first differs in column `{}` at age {}: published {}, recomputed {b}; largest relative difference {:.3e}",
                 rec.path,
+                sh(col),
+                sh(age),
+                sh(a),
                 d.max_rel()
             );
         }
@@ -157,10 +160,8 @@ pub(crate) fn cmd_verify(manifests: &[PathBuf], rtol: Option<f64>) -> i32 {
 /// Largest output file `hadal diff` compares (it holds both tables).
 const MAX_DIFF_BYTES: u64 = 256 * 1024 * 1024;
 
-use verify::shown as sh;
-
 fn short(hash: &str) -> String {
-    verify::shown(hash.get(..12).unwrap_or(hash))
+    sh(hash.get(..12).unwrap_or(hash))
 }
 
 /// The canonical folder of a manifest that was read.
@@ -313,7 +314,7 @@ pub(crate) fn cmd_diff(a: &Path, b: &Path) -> i32 {
                     c.max_rel,
                     c.first_age
                         .as_deref()
-                        .map(|a| format!("{a} Ga"))
+                        .map(|a| format!("{} Ga", sh(a)))
                         .unwrap_or_default()
                 );
             }
