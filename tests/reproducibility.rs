@@ -122,17 +122,20 @@ fn a_tampered_input_is_reported_as_such() {
         "age,rate\n0,0.2\n1,0.1\n2,0.31\n",
     )
     .unwrap();
+    // A differing input is a failed verification (exit 1, H0806); a
+    // missing one means it could not be made (exit 2, H0805).
     let o = hadal(p.path(), &["verify", "outputs/repro/manifest.json"]);
-    assert_eq!(o.status.code(), Some(2));
+    assert_eq!(o.status.code(), Some(1));
     let err = String::from_utf8_lossy(&o.stderr);
     assert!(
-        err.contains("input `scenarios/data/forcing.csv` differs"),
+        err.contains("H0806") && err.contains("input `scenarios/data/forcing.csv` differs"),
         "{err}"
     );
     std::fs::remove_file(p.path().join("scenarios/data/forcing.csv")).unwrap();
     let o = hadal(p.path(), &["verify", "outputs/repro/manifest.json"]);
     assert_eq!(o.status.code(), Some(2));
-    assert!(String::from_utf8_lossy(&o.stderr).contains("is missing"));
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(err.contains("H0805") && err.contains("is missing"), "{err}");
 }
 
 /// Perturb every `a` value of the published series by `rel` and record the

@@ -91,7 +91,19 @@ pub fn check_text(
     root_dir: &Path,
     options: &CheckOptions,
 ) -> Result<Checked, CheckError> {
+    check_text_from(name, path, text, root_dir, options, None)
+}
+
+fn check_text_from(
+    name: &str,
+    path: &Path,
+    text: &str,
+    root_dir: &Path,
+    options: &CheckOptions,
+    inputs: Option<InputFiles>,
+) -> Result<Checked, CheckError> {
     let mut c = Checker::new(root_dir);
+    c.inputs = inputs;
     c.bytes_read = text.len() as u64;
     let prelude = c
         .sources
@@ -167,6 +179,14 @@ pub(crate) fn read_limited(path: &Path, limit: u64) -> Result<String, String> {
     if bytes.len() as u64 > limit {
         return Err(format!("is more than the limit of {limit} bytes"));
     }
+    decode_source(bytes)
+}
+
+/// The text hadal reads from a file's bytes: UTF-8, with a leading
+/// byte-order mark replaced by three spaces. Shared by files read from disk
+/// and files handed over in memory ([`InputFiles`]), so both give the same
+/// text, hence the same model and fingerprints.
+pub fn decode_source(bytes: Vec<u8>) -> Result<String, String> {
     let mut text = String::from_utf8(bytes).map_err(|e| {
         format!(
             "is not UTF-8 text (bad byte at offset {})",
@@ -178,6 +198,52 @@ pub(crate) fn read_limited(path: &Path, limit: u64) -> Result<String, String> {
         text.replace_range(0..3, "   ");
     }
     Ok(text)
+}
+
+/// Files a check may read, as bytes already in memory, keyed by their
+/// canonical path. `hadal verify` hands over the inputs a manifest records,
+/// after checking their hashes, so the run reads exactly the bytes that were
+/// checked and nothing else: an include or table that is not in the set is
+/// an error (H0501, H0503), and no file is opened.
+#[derive(Debug, Clone, Default)]
+pub struct InputFiles {
+    files: HashMap<PathBuf, std::sync::Arc<[u8]>>,
+}
+
+impl InputFiles {
+    /// Add a file under its canonical path.
+    pub fn insert(&mut self, canonical: PathBuf, bytes: Vec<u8>) {
+        self.files.insert(canonical, bytes.into());
+    }
+
+    /// The text of the file at `path` (resolved as the checker resolves it).
+    fn text(&self, path: &Path, limit: u64) -> Result<String, String> {
+        let real = std::fs::canonicalize(path).unwrap_or_else(|_| path.to_owned());
+        let bytes = self
+            .files
+            .get(&real)
+            .ok_or("is not one of the input files recorded in the manifest")?;
+        if bytes.len() as u64 > limit {
+            return Err(format!(
+                "is {} bytes, more than the limit of {limit} bytes",
+                bytes.len()
+            ));
+        }
+        decode_source(bytes.to_vec())
+    }
+}
+
+/// Check `text` as [`check_text`] does, reading includes and tables only
+/// from `inputs`, never from disk.
+pub fn check_text_with_inputs(
+    name: &str,
+    path: &Path,
+    text: &str,
+    root_dir: &Path,
+    options: &CheckOptions,
+    inputs: &InputFiles,
+) -> Result<Checked, CheckError> {
+    check_text_from(name, path, text, root_dir, options, Some(inputs.clone()))
 }
 
 /// Read an included file or a table: as [`read_limited`], and only a
@@ -253,6 +319,8 @@ pub(crate) struct Checker {
     /// [`MAX_DEPTH`] was reported.
     pub(crate) depth: usize,
     depth_reported: bool,
+    /// Where includes and tables come from: the disk, or these files only.
+    inputs: Option<InputFiles>,
 }
 
 impl Checker {
@@ -277,6 +345,7 @@ impl Checker {
             bytes_read: 0,
             depth: 0,
             depth_reported: false,
+            inputs: None,
         }
     }
 
@@ -476,6 +545,15 @@ impl Checker {
         }
         self.bytes_read = total;
         Ok(())
+    }
+
+    /// Read an included file or a table, from the disk or from the
+    /// in-memory inputs.
+    pub(crate) fn read_input(&self, path: &Path, limit: u64) -> Result<String, String> {
+        match &self.inputs {
+            Some(inputs) => inputs.text(path, limit),
+            None => read_project_file(path, limit),
+        }
     }
 
     /// Resolve a path written in `file` (relative to that file's directory)
@@ -683,7 +761,8 @@ impl Checker {
             );
             return;
         }
-        let text = match read_project_file(&path, MAX_SOURCE_BYTES)
+        let text = match self
+            .read_input(&path, MAX_SOURCE_BYTES)
             .and_then(|t| self.take_bytes(t.len()).map(|_| t))
         {
             Ok(t) => t,

@@ -3,7 +3,8 @@
 use std::path::{Path, PathBuf};
 
 use super::{report, EXIT_INVALID, EXIT_OK, EXIT_USAGE};
-use crate::check::{self, CheckError, CheckOptions};
+use crate::check::CheckError;
+use crate::manifest::verify::{self, shown as sh, Published, RefusalKind};
 use crate::manifest::{self, diff_csv, hash_bytes, Manifest};
 use crate::report as rep;
 
@@ -15,64 +16,28 @@ fn outputs_of(
     super::run::output_files(model, outcome, &expectations)
 }
 
+/// Render problems that have no place in a scenario (manifest problems).
+fn report_plain(problems: &[crate::diagnostic::Problem]) {
+    report(&crate::span::Sources::default(), problems);
+}
+
 /// Verify one manifest; returns the exit code for it.
 fn verify_one(path: &Path, rtol: Option<f64>) -> i32 {
-    let m = match Manifest::read(path) {
-        Ok(m) => m,
-        Err(e) => {
-            eprintln!("error: {}: {e}", path.display());
-            return EXIT_USAGE;
+    // Everything the manifest names is confined and hash-checked here,
+    // before anything runs (see `manifest::verify`).
+    let opened = match verify::open(path) {
+        Ok(o) => o,
+        Err(refusal) => {
+            report_plain(&refusal.problems);
+            return match refusal.kind {
+                RefusalKind::Differs => EXIT_INVALID,
+                RefusalKind::Unusable => EXIT_USAGE,
+            };
         }
     };
-    let name = &m.compared.scenario.name;
-    let Some(root) = m.locate_root(path) else {
-        eprintln!(
-            "error: {}: cannot find the scenario `{}` of this manifest (looked from the recorded project root and every directory above the manifest)",
-            path.display(),
-            m.compared.scenario.path
-        );
-        return EXIT_USAGE;
-    };
-    // Inputs first: a reviewer must know whether they have the same files.
-    let mut input_problems = Vec::new();
-    for i in &m.compared.inputs {
-        let p = root.join(&i.path);
-        match std::fs::read(&p) {
-            Err(_) => input_problems.push(format!(
-                "input `{}` is missing (expected at {})",
-                i.path,
-                p.display()
-            )),
-            Ok(b) => {
-                let h = hash_bytes(&b);
-                if h != i.blake3 {
-                    input_problems.push(format!(
-                        "input `{}` differs from the one recorded: blake3 {} instead of {} ({} bytes instead of {})",
-                        i.path,
-                        &h[..16],
-                        &i.blake3[..16],
-                        b.len(),
-                        i.bytes
-                    ));
-                }
-            }
-        }
-    }
-    if !input_problems.is_empty() {
-        for p in &input_problems {
-            eprintln!("error: {name}: {p}");
-        }
-        eprintln!("help: restore the inputs the manifest names; results can only be verified from the same inputs");
-        return EXIT_USAGE;
-    }
-    let scenario = root.join(&m.compared.scenario.path);
-    let overrides: Vec<(String, String)> = m
-        .compared
-        .overrides
-        .iter()
-        .map(|o| (o.name.clone(), o.value.clone()))
-        .collect();
-    let checked = match check::check_file(&scenario, &CheckOptions { overrides }) {
+    let m = &opened.manifest;
+    let name = &sh(&m.compared.scenario.name);
+    let checked = match opened.check() {
         Ok(c) => c,
         Err(CheckError::Io { path, message }) => {
             eprintln!("error: cannot read {}: {message}", path.display());
@@ -92,7 +57,6 @@ fn verify_one(path: &Path, rtol: Option<f64>) -> i32 {
         }
     };
     let fresh = outputs_of(model, &outcome);
-    let dir = path.parent().unwrap_or(Path::new("."));
     let mut drift = false;
     let mut tolerated: f64 = 0.0;
     for rec in &m.compared.outputs {
@@ -101,7 +65,26 @@ fn verify_one(path: &Path, rtol: Option<f64>) -> i32 {
             drift = true;
             continue;
         };
-        let published = std::fs::read(dir.join(&rec.path)).ok();
+        // A published file is compared with the recomputed one, so twice
+        // its size (plus room for longer numbers) bounds what is read.
+        let limit = (bytes.len() as u64).saturating_mul(2) + (1 << 20);
+        let published = match opened.published(&rec.path, limit) {
+            Ok(Published::Bytes(b)) => Some(b),
+            Ok(Published::Absent) => None,
+            Ok(Published::TooLarge(n)) => {
+                eprintln!(
+                    "drift: {name}: the published `{}` is {n} bytes, far more than the {} bytes recomputed; not compared",
+                    rec.path,
+                    bytes.len()
+                );
+                drift = true;
+                continue;
+            }
+            Err(p) => {
+                report_plain(&[p]);
+                return EXIT_USAGE;
+            }
+        };
         let fresh_hash = hash_bytes(bytes);
         let pub_ok = published
             .as_ref()
@@ -112,7 +95,7 @@ fn verify_one(path: &Path, rtol: Option<f64>) -> i32 {
         // Compare the values against the published file when there is one.
         let reference = published.clone().unwrap_or_default();
         if published.is_none() {
-            eprintln!("drift: {name}: `{}` differs from the manifest (blake3 {} instead of {}); the published file is not beside the manifest to compare values", rec.path, &fresh_hash[..16], &rec.blake3[..16]);
+            eprintln!("drift: {name}: `{}` differs from the manifest (blake3 {} instead of {}); the published file is not beside the manifest to compare values", rec.path, &fresh_hash[..16], sh(rec.blake3.get(..16).unwrap_or(&rec.blake3)));
             drift = true;
             continue;
         }
@@ -127,12 +110,15 @@ fn verify_one(path: &Path, rtol: Option<f64>) -> i32 {
         }
         drift = true;
         for s in &d.shape {
-            eprintln!("drift: {name}: `{}`: {s}", rec.path);
+            eprintln!("drift: {name}: `{}`: {}", rec.path, sh(s));
         }
         if let Some((col, age, a, b)) = &d.first {
             eprintln!(
-                "drift: {name}: `{}` first differs in column `{col}` at age {age}: published {a}, recomputed {b}; largest relative difference {:.3e}",
+                "drift: {name}: `{}` first differs in column `{}` at age {}: published {}, recomputed {b}; largest relative difference {:.3e}",
                 rec.path,
+                sh(col),
+                sh(age),
+                sh(a),
                 d.max_rel()
             );
         }
@@ -171,6 +157,20 @@ pub(crate) fn cmd_verify(manifests: &[PathBuf], rtol: Option<f64>) -> i32 {
         .unwrap_or(EXIT_OK)
 }
 
+/// Largest output file `hadal diff` compares (it holds both tables).
+const MAX_DIFF_BYTES: u64 = 256 * 1024 * 1024;
+
+fn short(hash: &str) -> String {
+    sh(hash.get(..12).unwrap_or(hash))
+}
+
+/// The canonical folder of a manifest that was read.
+fn canonical_dir(manifest: &Path) -> Result<PathBuf, String> {
+    let real = std::fs::canonicalize(manifest)
+        .map_err(|e| format!("{}: {}", manifest.display(), crate::check::io_words(&e)))?;
+    Ok(real.parent().unwrap_or(Path::new("/")).to_owned())
+}
+
 fn manifest_path(p: &Path) -> PathBuf {
     if p.is_dir() {
         p.join("manifest.json")
@@ -190,9 +190,9 @@ pub(crate) fn cmd_diff(a: &Path, b: &Path) -> i32 {
     let (ca, cb) = (&ma.compared, &mb.compared);
     println!(
         "A: {} ({})\nB: {} ({})",
-        ca.scenario.name,
+        sh(&ca.scenario.name),
         pa.display(),
-        cb.scenario.name,
+        sh(&cb.scenario.name),
         pb.display()
     );
     if ca.scenario.canonical_hash != cb.scenario.canonical_hash {
@@ -203,13 +203,15 @@ pub(crate) fn cmd_diff(a: &Path, b: &Path) -> i32 {
     for i in &ca.inputs {
         match cb.inputs.iter().find(|j| j.path == i.path) {
             None => {
-                println!("input {}: only in A", i.path);
+                println!("input {}: only in A", sh(&i.path));
                 differ = true;
             }
             Some(j) if j.blake3 != i.blake3 => {
                 println!(
                     "input {}: differs ({} bytes against {})",
-                    i.path, i.bytes, j.bytes
+                    sh(&i.path),
+                    i.bytes,
+                    j.bytes
                 );
                 differ = true;
             }
@@ -218,14 +220,14 @@ pub(crate) fn cmd_diff(a: &Path, b: &Path) -> i32 {
     }
     for j in &cb.inputs {
         if !ca.inputs.iter().any(|i| i.path == j.path) {
-            println!("input {}: only in B", j.path);
+            println!("input {}: only in B", sh(&j.path));
             differ = true;
         }
     }
     if ca.overrides != cb.overrides {
         let show = |o: &[manifest::Override]| {
             o.iter()
-                .map(|x| format!("{}={}", x.name, x.value))
+                .map(|x| format!("{}={}", sh(&x.name), sh(&x.value)))
                 .collect::<Vec<_>>()
                 .join(" ")
         };
@@ -239,15 +241,15 @@ pub(crate) fn cmd_diff(a: &Path, b: &Path) -> i32 {
     for s in &ca.stages {
         match cb.stages.iter().find(|t| t.name == s.name) {
             None => {
-                println!("stage {}: only in A", s.name);
+                println!("stage {}: only in A", sh(&s.name));
                 differ = true;
             }
             Some(t) if t.fingerprint != s.fingerprint => {
                 println!(
                     "stage {}: different inputs (fingerprint {} against {})",
-                    s.name,
-                    &s.fingerprint[..12],
-                    &t.fingerprint[..12]
+                    sh(&s.name),
+                    short(&s.fingerprint),
+                    short(&t.fingerprint)
                 );
                 differ = true;
             }
@@ -256,20 +258,32 @@ pub(crate) fn cmd_diff(a: &Path, b: &Path) -> i32 {
     }
     for t in &cb.stages {
         if !ca.stages.iter().any(|s| s.name == t.name) {
-            println!("stage {}: only in B", t.name);
+            println!("stage {}: only in B", sh(&t.name));
             differ = true;
         }
     }
-    let (da, db) = (
-        pa.parent().unwrap_or(Path::new(".")),
-        pb.parent().unwrap_or(Path::new(".")),
-    );
+    // Outputs are read only beside each manifest (`manifest::verify`).
+    let (da, db) = match (canonical_dir(&pa), canonical_dir(&pb)) {
+        (Ok(x), Ok(y)) => (x, y),
+        (Err(e), _) | (_, Err(e)) => return super::usage_error(e),
+    };
     for o in &ca.outputs {
-        let (Ok(x), Ok(y)) = (
-            std::fs::read(da.join(&o.path)),
-            std::fs::read(db.join(&o.path)),
-        ) else {
-            continue;
+        let read = |dir: &Path| verify::published(dir, &o.path, MAX_DIFF_BYTES);
+        let (x, y) = match (read(&da), read(&db)) {
+            (Ok(Published::Bytes(x)), Ok(Published::Bytes(y))) => (x, y),
+            (Err(p), _) | (_, Err(p)) => {
+                report_plain(&[p]);
+                return EXIT_USAGE;
+            }
+            (Ok(Published::TooLarge(n)), _) | (_, Ok(Published::TooLarge(n))) => {
+                println!(
+                    "output {}: not compared ({n} bytes, more than the limit of {MAX_DIFF_BYTES})",
+                    o.path
+                );
+                differ = true;
+                continue;
+            }
+            _ => continue,
         };
         let d = diff_csv(&x, &y);
         if d.identical() {
@@ -278,7 +292,7 @@ pub(crate) fn cmd_diff(a: &Path, b: &Path) -> i32 {
         differ = true;
         println!("output {}:", o.path);
         for s in &d.shape {
-            println!("  {s}");
+            println!("  {}", sh(s));
         }
         if !d.columns.is_empty() {
             let w = d
@@ -295,12 +309,12 @@ pub(crate) fn cmd_diff(a: &Path, b: &Path) -> i32 {
             for c in &d.columns {
                 println!(
                     "  {:<w$}  {:>12.4e}  {:>12.4e}  {:>14}",
-                    c.name,
+                    sh(&c.name),
                     c.max_abs,
                     c.max_rel,
                     c.first_age
                         .as_deref()
-                        .map(|a| format!("{a} Ga"))
+                        .map(|a| format!("{} Ga", sh(a)))
                         .unwrap_or_default()
                 );
             }

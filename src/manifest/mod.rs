@@ -9,15 +9,21 @@
 //! particular run (platform, where the project root was, which stages came
 //! from the cache, wall time) and is never compared.
 //!
+//! A manifest may come from someone else: `verify` ([`verify::open`])
+//! confines every path it names to its project root and reruns from the
+//! very bytes whose hashes it checked.
+//!
 //! Invariant: this module reads and compares files and manifests; it runs
 //! the pipeline only through `pipeline::execute`.
 
-use std::path::{Component, Path, PathBuf};
+use std::path::{Component, Path};
 
 use serde::{Deserialize, Serialize};
 
 use crate::model::Model;
 use crate::pipeline::Outcome;
+
+pub mod verify;
 
 pub const FORMAT: &str = "hadal-manifest-1";
 
@@ -304,36 +310,11 @@ impl Manifest {
         v
     }
 
+    /// Read a manifest: a regular file of at most
+    /// [`verify::MAX_MANIFEST_BYTES`], never a pipe or a device. To verify
+    /// one, use [`verify::open`], which also confines its paths.
     pub fn read(path: &Path) -> Result<Manifest, String> {
-        let bytes = std::fs::read(path).map_err(|e| crate::check::io_words(&e))?;
-        let m: Manifest =
-            serde_json::from_slice(&bytes).map_err(|e| format!("not a hadal manifest: {e}"))?;
-        if m.format != FORMAT {
-            return Err(format!(
-                "manifest format `{}`, expected `{FORMAT}`",
-                m.format
-            ));
-        }
-        Ok(m)
-    }
-
-    /// Find the project root for this manifest: where it was recorded, else
-    /// the nearest directory above the manifest that holds the scenario.
-    pub fn locate_root(&self, manifest_path: &Path) -> Option<PathBuf> {
-        let dir = manifest_path.parent().unwrap_or(Path::new("."));
-        let recorded = dir.join(&self.run.project_root_from_manifest);
-        if recorded.join(&self.compared.scenario.path).is_file() {
-            return Some(recorded);
-        }
-        let abs = std::fs::canonicalize(dir).ok()?;
-        let mut cur = Some(abs.as_path());
-        while let Some(d) = cur {
-            if d.join(&self.compared.scenario.path).is_file() {
-                return Some(d.to_owned());
-            }
-            cur = d.parent();
-        }
-        None
+        verify::read_manifest(path)
     }
 }
 
