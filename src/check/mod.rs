@@ -147,26 +147,12 @@ pub fn read_text(path: &Path) -> Result<String, String> {
     read_limited(path, MAX_SOURCE_BYTES)
 }
 
+/// Read a regular file of at most `limit` bytes as text (UTF-8, byte-order
+/// mark blanked). Pipes, devices and sockets are refused unread: opening a
+/// pipe with no writer would block forever (see
+/// [`crate::fsutil::read_bounded`]).
 pub(crate) fn read_limited(path: &Path, limit: u64) -> Result<String, String> {
-    use std::io::Read;
-    let meta = std::fs::metadata(path).map_err(|e| io_words(&e))?;
-    if meta.is_dir() {
-        return Err("is a directory, not a file".into());
-    }
-    let too_big = |n: u64| format!("is {n} bytes, more than the limit of {limit} bytes");
-    if meta.len() > limit {
-        return Err(too_big(meta.len()));
-    }
-    // Devices and pipes report no length: read at most one byte past the
-    // limit, so an endless stream is refused rather than read forever.
-    let file = std::fs::File::open(path).map_err(|e| io_words(&e))?;
-    let mut bytes = Vec::with_capacity(meta.len() as usize);
-    file.take(limit + 1)
-        .read_to_end(&mut bytes)
-        .map_err(|e| io_words(&e))?;
-    if bytes.len() as u64 > limit {
-        return Err(format!("is more than the limit of {limit} bytes"));
-    }
+    let bytes = crate::fsutil::read_bounded(path, limit).map_err(|e| e.to_string())?;
     let mut text = String::from_utf8(bytes).map_err(|e| {
         format!(
             "is not UTF-8 text (bad byte at offset {})",
@@ -180,23 +166,8 @@ pub(crate) fn read_limited(path: &Path, limit: u64) -> Result<String, String> {
     Ok(text)
 }
 
-/// Read an included file or a table: as [`read_limited`], and only a
-/// regular file. A pipe or a device would block or never end; the
-/// scenario named on the command line may still be one (`<(...)`).
-pub(crate) fn read_project_file(path: &Path, limit: u64) -> Result<String, String> {
-    let meta = std::fs::metadata(path).map_err(|e| io_words(&e))?;
-    if !meta.is_file() && !meta.is_dir() {
-        return Err("is not a regular file (a pipe or a device)".into());
-    }
-    read_limited(path, limit)
-}
-
 pub(crate) fn io_words(e: &std::io::Error) -> String {
-    match e.kind() {
-        std::io::ErrorKind::NotFound => "no such file".into(),
-        std::io::ErrorKind::PermissionDenied => "permission denied".into(),
-        _ => e.to_string(),
-    }
+    crate::fsutil::io_words(e)
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -683,7 +654,7 @@ impl Checker {
             );
             return;
         }
-        let text = match read_project_file(&path, MAX_SOURCE_BYTES)
+        let text = match read_limited(&path, MAX_SOURCE_BYTES)
             .and_then(|t| self.take_bytes(t.len()).map(|_| t))
         {
             Ok(t) => t,

@@ -49,7 +49,7 @@ impl Checker {
             return id;
         };
         table.path = file_path.clone();
-        let text = match super::read_project_file(&file_path, super::MAX_FILE_BYTES)
+        let text = match super::read_limited(&file_path, super::MAX_FILE_BYTES)
             .and_then(|t| self.take_bytes(t.len()).map(|_| t))
         {
             Ok(t) => t,
