@@ -301,6 +301,24 @@ pub(crate) fn usage_error(msg: impl std::fmt::Display) -> i32 {
     EXIT_USAGE
 }
 
+/// Most worker threads `--threads` may ask for. A fixed number, not a
+/// multiple of this machine's cores, so that a command line valid on one
+/// machine is valid on every other; results never depend on the thread
+/// count, and more threads than cores only cost memory (a stack each) and
+/// start-up time, so a value past this is a typing mistake.
+pub const MAX_THREADS: usize = 1024;
+
+/// The stage cache (`HADAL_CACHE`), or exit 2 when its folder is a file.
+pub(crate) fn open_store() -> Result<crate::cache::Store, i32> {
+    let store = crate::cache::Store::new(crate::cache::Store::default_location());
+    match store.check_root() {
+        Ok(()) => Ok(store),
+        Err(e) => Err(usage_error(format!(
+            "{e}; set HADAL_CACHE to a directory, or run with --no-cache"
+        ))),
+    }
+}
+
 fn cmd_check(files: &[PathBuf], json: bool) -> i32 {
     let files = match expand(files) {
         Ok(f) => f,
