@@ -265,11 +265,22 @@ pub(crate) fn cmd_diff(a: &Path, b: &Path) -> i32 {
         pb.parent().unwrap_or(Path::new(".")),
     );
     for o in &ca.outputs {
-        let (Ok(x), Ok(y)) = (
-            std::fs::read(da.join(&o.path)),
-            std::fs::read(db.join(&o.path)),
-        ) else {
-            continue;
+        // Bounded and only regular files: an output swapped for a pipe or
+        // a huge file is an error, never a hang or gigabytes of memory. A
+        // missing output is left to the manifests' hashes above.
+        let read = |dir: &Path| {
+            let p = dir.join(&o.path);
+            crate::fsutil::read_bounded(&p, crate::fsutil::MAX_OUTPUT_BYTES).map_err(|e| {
+                (
+                    e.is_not_found(),
+                    format!("cannot read {}: {e}", p.display()),
+                )
+            })
+        };
+        let (x, y) = match (read(da), read(db)) {
+            (Ok(x), Ok(y)) => (x, y),
+            (Err((false, e)), _) | (_, Err((false, e))) => return super::usage_error(e),
+            _ => continue,
         };
         let d = diff_csv(&x, &y);
         if d.identical() {
