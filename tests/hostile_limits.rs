@@ -532,3 +532,19 @@ fn shards_whose_files_are_pipes_are_refused_not_waited_on() {
         std::fs::read(env.path("m3/members.csv")).unwrap()
     );
 }
+
+#[test]
+fn a_folder_with_links_to_itself_is_searched_once() {
+    // `check DIR` searches DIR for scenarios; following the two links
+    // would visit 2^depth folders.
+    let env = Env::new();
+    std::fs::create_dir(env.path("d")).unwrap();
+    std::fs::copy(env.path("s.hadal"), env.path("d/s.hadal")).unwrap();
+    std::os::unix::fs::symlink(".", env.path("d/again")).unwrap();
+    std::os::unix::fs::symlink("..", env.path("d/up")).unwrap();
+    std::os::unix::fs::symlink("s.hadal", env.path("d/linked.hadal")).unwrap();
+    let r = env.run(&["check", "d"]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let oks: Vec<&str> = r.stdout.lines().filter(|l| l.starts_with("ok ")).collect();
+    assert_eq!(oks.len(), 2, "{}", r.stdout);
+}

@@ -239,8 +239,11 @@ fn expand(paths: &[PathBuf]) -> Result<Vec<PathBuf>, String> {
 
 fn walk(dir: &Path, out: &mut Vec<PathBuf>) -> std::io::Result<()> {
     for entry in std::fs::read_dir(dir)? {
-        let path = entry?.path();
-        if path.is_dir() {
+        let entry = entry?;
+        let path = entry.path();
+        // Links to folders are not followed: two links to `.` would make
+        // the walk exponential, never ending. (A link to a file is kept.)
+        if entry.file_type()?.is_dir() {
             walk(&path, out)?;
         } else if path.extension().is_some_and(|e| e == "hadal") {
             out.push(path);
