@@ -523,6 +523,54 @@ mod tests {
     }
 
     #[test]
+    fn a_header_claiming_an_impossible_length_is_corrupt_not_a_panic() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = Store::new(dir.path());
+        let key = *blake3::hash(b"k").as_bytes();
+        for claimed in [u64::MAX, u64::MAX - 40, 1 << 40] {
+            let mut bytes = MAGIC.to_vec();
+            bytes.extend_from_slice(&key);
+            bytes.extend_from_slice(&claimed.to_le_bytes());
+            bytes.extend_from_slice(&[0u8; CHECKSUM]);
+            assert!(decode(&bytes, Some(&key))
+                .unwrap_err()
+                .starts_with("truncated or padded"));
+            let path = store.path(&key);
+            std::fs::create_dir_all(path.parent().unwrap()).unwrap();
+            std::fs::write(&path, &bytes).unwrap();
+            let err = store.get(&key).unwrap_err();
+            assert!(err.why.starts_with("truncated or padded"), "{}", err.why);
+            assert!(!path.exists(), "a corrupt entry is removed");
+        }
+    }
+
+    #[cfg(unix)]
+    #[test]
+    fn entries_that_are_links_or_not_files_are_corrupt() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = Store::new(dir.path());
+        let key = *blake3::hash(b"k").as_bytes();
+        store.put(&key, b"payload").unwrap();
+        let path = store.path(&key);
+        let kept = dir.path().join("kept");
+        std::fs::rename(&path, &kept).unwrap();
+        std::os::unix::fs::symlink(&kept, &path).unwrap();
+        let (n, bad) = store.verify();
+        assert_eq!((n, bad.len()), (1, 1));
+        assert_eq!(bad[0].why, "is a symbolic link, not a file");
+        assert_eq!(store.get(&key).unwrap_err().why, bad[0].why);
+        assert_eq!(store.get(&key), Ok(None), "the link was removed");
+        assert!(kept.exists(), "not what it pointed to");
+        // A folder that is a file.
+        let file = dir.path().join("file");
+        std::fs::write(&file, b"x").unwrap();
+        assert!(Store::new(&file).check_root().is_err());
+        assert!(Store::new(file.join("sub")).check_root().is_err());
+        assert!(Store::new(dir.path().join("absent")).check_root().is_ok());
+        assert!(store.check_root().is_ok());
+    }
+
+    #[test]
     fn hex_of_a_u64_is_the_hex_of_its_big_endian_bytes() {
         for v in [
             0,
