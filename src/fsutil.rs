@@ -5,8 +5,12 @@
 //! killed mid-write leaves only such a temporary file, never a half-written
 //! target; [`remove_stale_temps`] clears them (the next `hadal run` does so
 //! in its output directory, `hadal cache gc` in the cache).
+//!
+//! Every file is read through [`read_bounded`] (or [`open_regular`]): only
+//! regular files, never more than a stated number of bytes, so a pipe, a
+//! device or a huge file can neither hang a process nor exhaust memory.
 
-use std::io::Write;
+use std::io::{Read, Write};
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::OnceLock;
@@ -257,9 +261,249 @@ pub fn remove_stale_temps(dir: &Path) -> u64 {
     removed
 }
 
+/// Largest output file of a run or an ensemble (`series.csv`,
+/// `members.csv`, ...) read back whole by `diff`, `plot` and `report`:
+/// they parse it into memory, at several times its size.
+pub const MAX_OUTPUT_BYTES: u64 = 256 * 1024 * 1024;
+/// Largest JSON file read back (`summary.json`, `manifest.json`) and
+/// largest hint file of the cache.
+pub const MAX_JSON_BYTES: u64 = 64 * 1024 * 1024;
+
+/// Why a file could not be read by [`read_bounded`] or [`open_regular`].
+#[derive(Debug)]
+pub enum ReadError {
+    /// A directory where a file was expected.
+    Directory,
+    /// A pipe, a device or a socket: reading one may block forever or
+    /// never end, so it is refused before any byte is read.
+    NotRegular,
+    /// A symbolic link where the caller accepts none (cache entries).
+    Symlink,
+    /// More bytes than the limit: `len` is the file's length, `None` when it
+    /// grew past the limit while being read.
+    TooLarge {
+        len: Option<u64>,
+        limit: u64,
+    },
+    Io(std::io::Error),
+}
+
+impl ReadError {
+    pub fn is_not_found(&self) -> bool {
+        matches!(self, ReadError::Io(e) if e.kind() == std::io::ErrorKind::NotFound)
+    }
+}
+
+impl std::fmt::Display for ReadError {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            ReadError::Directory => f.write_str("is a directory, not a file"),
+            ReadError::NotRegular => f.write_str("is not a regular file (a pipe or a device)"),
+            ReadError::Symlink => f.write_str("is a symbolic link, not a file"),
+            ReadError::TooLarge {
+                len: Some(n),
+                limit,
+            } => write!(f, "is {n} bytes, more than the limit of {limit} bytes"),
+            ReadError::TooLarge { len: None, limit } => {
+                write!(f, "is more than the limit of {limit} bytes")
+            }
+            ReadError::Io(e) => f.write_str(&io_words(e)),
+        }
+    }
+}
+
+impl std::error::Error for ReadError {}
+
+/// Plain words for an I/O error.
+pub fn io_words(e: &std::io::Error) -> String {
+    match e.kind() {
+        std::io::ErrorKind::NotFound => "no such file".into(),
+        std::io::ErrorKind::PermissionDenied => "permission denied".into(),
+        _ => e.to_string(),
+    }
+}
+
+fn kind_error(t: std::fs::FileType) -> Option<ReadError> {
+    if t.is_file() {
+        None
+    } else if t.is_dir() {
+        Some(ReadError::Directory)
+    } else if t.is_symlink() {
+        Some(ReadError::Symlink)
+    } else {
+        Some(ReadError::NotRegular)
+    }
+}
+
+/// Open `path` for reading only if it is a regular file; returns the file
+/// and its length. With `follow` false a symbolic link is refused too.
+///
+/// The type is checked before opening (opening a pipe with no writer
+/// blocks), and again on the open file: on unix the file is opened with
+/// `O_NONBLOCK` (and `O_NOFOLLOW` when not following), so a file swapped
+/// for a pipe between the two checks is still never waited on.
+pub fn open_regular(path: &Path, follow: bool) -> Result<(std::fs::File, u64), ReadError> {
+    let meta = if follow {
+        std::fs::metadata(path)
+    } else {
+        std::fs::symlink_metadata(path)
+    }
+    .map_err(ReadError::Io)?;
+    if let Some(e) = kind_error(meta.file_type()) {
+        return Err(e);
+    }
+    let file = open_nonblocking(path, follow)?;
+    let meta = file.metadata().map_err(ReadError::Io)?;
+    if let Some(e) = kind_error(meta.file_type()) {
+        return Err(e);
+    }
+    Ok((file, meta.len()))
+}
+
+#[cfg(unix)]
+fn open_nonblocking(path: &Path, follow: bool) -> Result<std::fs::File, ReadError> {
+    use std::os::unix::fs::OpenOptionsExt;
+    let mut flags = libc::O_NONBLOCK;
+    if !follow {
+        flags |= libc::O_NOFOLLOW;
+    }
+    std::fs::OpenOptions::new()
+        .read(true)
+        .custom_flags(flags)
+        .open(path)
+        .map_err(|e| {
+            if !follow && e.raw_os_error() == Some(libc::ELOOP) {
+                ReadError::Symlink
+            } else {
+                ReadError::Io(e)
+            }
+        })
+}
+
+#[cfg(not(unix))]
+fn open_nonblocking(path: &Path, _follow: bool) -> Result<std::fs::File, ReadError> {
+    std::fs::File::open(path).map_err(ReadError::Io)
+}
+
+/// Read all of `file` (of length `len` when opened), at most `limit`
+/// bytes: a file longer than that, or one that grows past it while being
+/// read, is refused.
+pub fn read_to_limit(file: std::fs::File, len: u64, limit: u64) -> Result<Vec<u8>, ReadError> {
+    if len > limit {
+        return Err(ReadError::TooLarge {
+            len: Some(len),
+            limit,
+        });
+    }
+    let mut bytes = Vec::with_capacity(usize::try_from(len).unwrap_or(0));
+    file.take(limit.saturating_add(1))
+        .read_to_end(&mut bytes)
+        .map_err(ReadError::Io)?;
+    if bytes.len() as u64 > limit {
+        return Err(ReadError::TooLarge { len: None, limit });
+    }
+    Ok(bytes)
+}
+
+/// The bytes of the regular file at `path` (symbolic links followed), at
+/// most `limit` of them; see [`open_regular`] and [`read_to_limit`].
+pub fn read_bounded(path: &Path, limit: u64) -> Result<Vec<u8>, ReadError> {
+    let (file, len) = open_regular(path, true)?;
+    read_to_limit(file, len, limit)
+}
+
+/// Copy the regular file `from` to `to` atomically (see [`write_atomic`]),
+/// streaming: memory does not depend on the file's size.
+pub fn copy_atomic(from: &Path, to: &Path) -> Result<(), String> {
+    let (mut src, _) = open_regular(from, true).map_err(|e| format!("{}: {e}", from.display()))?;
+    let tmp = temp_path(to);
+    let result = (|| {
+        let mut dst = std::fs::File::create(&tmp)?;
+        std::io::copy(&mut src, &mut dst)?;
+        dst.sync_all()?;
+        std::fs::rename(&tmp, to)
+    })();
+    result.map_err(|e| {
+        let _ = std::fs::remove_file(&tmp);
+        format!("cannot write {}: {e}", to.display())
+    })
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn bounded_reads_take_regular_files_up_to_the_limit() {
+        let dir = tempfile::tempdir().unwrap();
+        let f = dir.path().join("f");
+        std::fs::write(&f, b"12345").unwrap();
+        assert_eq!(read_bounded(&f, 5).unwrap(), b"12345");
+        let e = read_bounded(&f, 4).unwrap_err();
+        assert_eq!(e.to_string(), "is 5 bytes, more than the limit of 4 bytes");
+        assert!(matches!(
+            read_bounded(dir.path(), 10),
+            Err(ReadError::Directory)
+        ));
+        let missing = read_bounded(&dir.path().join("nope"), 10).unwrap_err();
+        assert!(missing.is_not_found());
+        assert_eq!(missing.to_string(), "no such file");
+    }
+
+    #[cfg(unix)]
+    #[test]
+    fn devices_pipes_and_unwanted_links_are_refused_unread() {
+        let dir = tempfile::tempdir().unwrap();
+        let fifo = dir.path().join("p");
+        let ok = std::process::Command::new("mkfifo")
+            .arg(&fifo)
+            .status()
+            .unwrap()
+            .success();
+        assert!(ok);
+        // Would block forever if it were opened without O_NONBLOCK.
+        assert!(matches!(
+            read_bounded(&fifo, 10),
+            Err(ReadError::NotRegular)
+        ));
+        assert!(matches!(
+            read_bounded(Path::new("/dev/zero"), 10),
+            Err(ReadError::NotRegular)
+        ));
+        let target = dir.path().join("t");
+        std::fs::write(&target, b"x").unwrap();
+        let link = dir.path().join("l");
+        std::os::unix::fs::symlink(&target, &link).unwrap();
+        assert_eq!(read_bounded(&link, 10).unwrap(), b"x");
+        assert!(matches!(
+            open_regular(&link, false),
+            Err(ReadError::Symlink)
+        ));
+        let zero = dir.path().join("z");
+        std::os::unix::fs::symlink("/dev/zero", &zero).unwrap();
+        assert!(matches!(
+            open_regular(&zero, false),
+            Err(ReadError::Symlink)
+        ));
+        assert!(matches!(
+            read_bounded(&zero, 10),
+            Err(ReadError::NotRegular)
+        ));
+    }
+
+    #[test]
+    fn copies_stream_and_refuse_what_is_not_a_file() {
+        let dir = tempfile::tempdir().unwrap();
+        let a = dir.path().join("a");
+        std::fs::write(&a, vec![7u8; 100_000]).unwrap();
+        copy_atomic(&a, &dir.path().join("b")).unwrap();
+        assert_eq!(
+            std::fs::read(dir.path().join("b")).unwrap(),
+            vec![7u8; 100_000]
+        );
+        assert!(copy_atomic(dir.path(), &dir.path().join("c")).is_err());
+        assert!(!dir.path().join("c").exists());
+    }
 
     #[test]
     fn temp_names_carry_their_writer() {

@@ -22,6 +22,11 @@ const MAGIC: &[u8; 8] = b"HADALC2\n";
 const LAYOUT: &str = "v2";
 /// Bytes of an entry's checksum.
 const CHECKSUM: usize = 16;
+/// Largest entry written or read, bytes. An entry is read whole into
+/// memory before its checksum is known, so a damaged or planted file may
+/// cost at most this much; a stage whose results are larger is recomputed
+/// instead of cached.
+pub const MAX_ENTRY_BYTES: u64 = 1024 * 1024 * 1024;
 
 pub type Key = [u8; 32];
 
@@ -89,6 +94,19 @@ impl Store {
         &self.root
     }
 
+    /// Whether the store's folder can be one: absent (it is created on
+    /// first write) or a directory. A file there is an I/O problem to
+    /// report up front, not an entry that could not be read.
+    pub fn check_root(&self) -> Result<(), String> {
+        let bad = || format!("the cache {} is not a directory", self.root.display());
+        match std::fs::metadata(&self.root) {
+            Ok(m) if m.is_dir() => Ok(()),
+            Ok(_) => Err(bad()),
+            Err(e) if e.kind() == std::io::ErrorKind::NotADirectory => Err(bad()),
+            Err(_) => Ok(()),
+        }
+    }
+
     /// Where the entry of `key` lives (present or not).
     pub fn path(&self, key: &Key) -> PathBuf {
         let hex = key_hex(key);
@@ -107,31 +125,26 @@ impl Store {
     /// without an intermediate buffer); `Ok(false)` when absent. On any
     /// error `out` is left as it was.
     pub fn get_into(&self, key: &Key, out: &mut Vec<u8>) -> Result<bool, Corrupt> {
-        use std::io::Read;
         let path = self.path(key);
-        let corrupt = |e: std::io::Error, path: PathBuf| Corrupt {
-            path,
-            why: e.to_string(),
-        };
-        let mut file = match std::fs::File::open(&path) {
-            Ok(f) => f,
-            Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(false),
-            Err(e) => return Err(corrupt(e, path)),
-        };
-        let meta = file.metadata().ok();
         let base = out.len();
-        out.reserve(meta.as_ref().map_or(0, |m| m.len() as usize));
-        if let Err(e) = file.read_to_end(out) {
-            out.truncate(base);
-            return Err(corrupt(e, path));
-        }
+        let file = match read_entry(&path, out) {
+            Ok(Some(f)) => f,
+            Ok(None) => return Ok(false),
+            Err(why) => {
+                out.truncate(base);
+                let _ = std::fs::remove_file(&path);
+                return Err(Corrupt { path, why });
+            }
+        };
         match decode(&out[base..], Some(key)).map(|p| p.len()) {
             Ok(len) => {
                 // Mark as recently used, for `gc --max-size`, through the
                 // open file (it fails harmlessly where we are not the
                 // owner); at most once a minute per entry.
                 let now = SystemTime::now();
-                let stale = meta
+                let stale = file
+                    .metadata()
+                    .ok()
                     .and_then(|m| m.modified().ok())
                     .and_then(|t| now.duration_since(t).ok())
                     .is_none_or(|age| age > Duration::from_secs(60));
@@ -155,6 +168,12 @@ impl Store {
     /// Store `payload` under `key`, atomically.
     pub fn put(&self, key: &Key, payload: &[u8]) -> std::io::Result<()> {
         let path = self.path(key);
+        let total = (payload.len() as u64).saturating_add((HEADER + CHECKSUM) as u64);
+        if total > MAX_ENTRY_BYTES {
+            return Err(std::io::Error::other(format!(
+                "an entry of {total} bytes is more than the limit of {MAX_ENTRY_BYTES} bytes"
+            )));
+        }
         if let Some(dir) = path.parent() {
             std::fs::create_dir_all(dir)?;
         }
@@ -206,8 +225,10 @@ impl Store {
                 .map(|s| s.to_string_lossy().into_owned())
                 .unwrap_or_default();
             let expected = parse_hex(&name);
-            match std::fs::read(&p) {
-                Ok(bytes) => {
+            let mut bytes = Vec::new();
+            match read_entry(&p, &mut bytes) {
+                Ok(None) => n -= 1, // removed since it was listed
+                Ok(Some(_)) => {
                     if let Err(why) = decode(&bytes, expected.as_ref()) {
                         bad.push(Corrupt { path: p, why });
                     } else if expected.is_none() {
@@ -217,10 +238,7 @@ impl Store {
                         });
                     }
                 }
-                Err(e) => bad.push(Corrupt {
-                    path: p,
-                    why: e.to_string(),
-                }),
+                Err(why) => bad.push(Corrupt { path: p, why }),
             }
         }
         (n, bad)
@@ -304,7 +322,7 @@ impl Store {
             }
         }
         if let Some(max) = max_size {
-            let mut total: u64 = keep.iter().map(|k| k.1).sum();
+            let mut total: u64 = keep.iter().fold(0u64, |t, k| t.saturating_add(k.1));
             for (_, len, p) in &keep {
                 if total <= max {
                     break;
@@ -312,7 +330,7 @@ impl Store {
                 if std::fs::remove_file(p).is_ok() {
                     removed += 1;
                     freed += len;
-                    total -= len;
+                    total = total.saturating_sub(*len);
                 }
             }
         }
@@ -353,6 +371,53 @@ fn entry_checksum(key: &[u8], payload: &[u8]) -> [u8; CHECKSUM] {
 /// Magic, key and payload length.
 const HEADER: usize = MAGIC.len() + 32 + 8;
 
+/// The length an entry must have, from its header; `None` when the
+/// recorded payload length cannot be (it overflows).
+fn entry_len(header: &[u8]) -> Option<u64> {
+    let mut len = [0u8; 8];
+    len.copy_from_slice(header.get(MAGIC.len() + 32..HEADER)?);
+    u64::from_le_bytes(len).checked_add((HEADER + CHECKSUM) as u64)
+}
+
+/// Append the bytes of the entry file at `path` to `out`; `Ok(None)` when
+/// there is none, else the open file (to mark it used). Only a regular
+/// file is opened, never through a symbolic link (a link to a device
+/// would be read forever), and a file whose length differs from the one
+/// its header records is refused before its payload is read.
+fn read_entry(path: &Path, out: &mut Vec<u8>) -> Result<Option<std::fs::File>, String> {
+    use std::io::Read;
+    let (file, len) = match crate::fsutil::open_regular(path, false) {
+        Ok(f) => f,
+        Err(e) if e.is_not_found() => return Ok(None),
+        Err(e) => return Err(e.to_string()),
+    };
+    if len > MAX_ENTRY_BYTES {
+        return Err(format!(
+            "is {len} bytes, more than the limit of {MAX_ENTRY_BYTES} bytes"
+        ));
+    }
+    let base = out.len();
+    let mut reader = (&file).take(HEADER as u64);
+    reader.read_to_end(out).map_err(|e| e.to_string())?;
+    if out.len() - base == HEADER && out[base..base + MAGIC.len()] == MAGIC[..] {
+        match entry_len(&out[base..]) {
+            Some(want) if want == len => {}
+            want => {
+                let want = want.map_or_else(|| "more than 2^64".into(), |w| w.to_string());
+                return Err(format!("truncated or padded: {len} bytes, expected {want}"));
+            }
+        }
+    }
+    out.reserve(usize::try_from(len).unwrap_or(0).saturating_sub(HEADER));
+    // The length may change while reading: never read more than it said.
+    let rest = len.saturating_sub((out.len() - base) as u64);
+    (&file)
+        .take(rest.saturating_add(1))
+        .read_to_end(out)
+        .map_err(|e| e.to_string())?;
+    Ok(Some(file))
+}
+
 fn decode<'a>(bytes: &'a [u8], key: Option<&Key>) -> Result<&'a [u8], String> {
     let header = HEADER;
     if bytes.len() < header + CHECKSUM {
@@ -367,16 +432,15 @@ fn decode<'a>(bytes: &'a [u8], key: Option<&Key>) -> Result<&'a [u8], String> {
             return Err("the entry's key does not match its file name".into());
         }
     }
-    let mut len = [0u8; 8];
-    len.copy_from_slice(&bytes[MAGIC.len() + 32..header]);
-    let len = u64::from_le_bytes(len) as usize;
-    if bytes.len() != header + len + CHECKSUM {
+    let want = entry_len(bytes);
+    if want != Some(bytes.len() as u64) {
+        let want = want.map_or_else(|| "more than 2^64".into(), |w| w.to_string());
         return Err(format!(
-            "truncated or padded: {} bytes, expected {}",
-            bytes.len(),
-            header + len + CHECKSUM
+            "truncated or padded: {} bytes, expected {want}",
+            bytes.len()
         ));
     }
+    let len = bytes.len() - header - CHECKSUM;
     let payload = &bytes[header..header + len];
     if entry_checksum(stored_key, payload) != bytes[header + len..] {
         return Err("checksum mismatch (the entry was altered)".into());
@@ -384,7 +448,9 @@ fn decode<'a>(bytes: &'a [u8], key: Option<&Key>) -> Result<&'a [u8], String> {
     Ok(payload)
 }
 
-/// Parse a duration such as `30d`, `12h`, `90m`, `45s`, `2w`.
+/// Parse a duration such as `30d`, `12h`, `90m`, `45s`, `2w`. `None` for
+/// anything else, including a negative, non-finite or too long duration
+/// (more than `u64::MAX` seconds).
 pub fn parse_duration(s: &str) -> Option<Duration> {
     let s = s.trim();
     let (num, unit) = s.split_at(s.find(|c: char| !c.is_ascii_digit() && c != '.')?);
@@ -397,10 +463,12 @@ pub fn parse_duration(s: &str) -> Option<Duration> {
         "w" => 7.0 * 86400.0,
         _ => return None,
     };
-    (n >= 0.0).then(|| Duration::from_secs_f64(n * secs))
+    // `from_secs_f64` panics past its range; the checked form does not.
+    Duration::try_from_secs_f64(n * secs).ok()
 }
 
-/// Parse a size such as `500M`, `2G`, `100k`, `1234` (bytes).
+/// Parse a size such as `500M`, `2G`, `100k`, `1234` (bytes). `None` for
+/// anything else, including a size past `u64::MAX` bytes.
 pub fn parse_size(s: &str) -> Option<u64> {
     let s = s.trim();
     let split = s
@@ -415,7 +483,12 @@ pub fn parse_size(s: &str) -> Option<u64> {
         "G" => 1024.0 * 1024.0 * 1024.0,
         _ => return None,
     };
-    (n >= 0.0).then_some((n * mul) as u64)
+    let bytes = n * mul;
+    // 2^64 is the first value that does not fit (an `as` cast would
+    // silently saturate).
+    (0.0..18_446_744_073_709_551_616.0)
+        .contains(&bytes)
+        .then_some(bytes as u64)
 }
 
 #[cfg(test)]
@@ -447,6 +520,54 @@ mod tests {
         let bytes = std::fs::read(&path).unwrap();
         std::fs::write(&path, &bytes[..bytes.len() - 5]).unwrap();
         assert!(store.get(&key).unwrap_err().why.contains("truncated"));
+    }
+
+    #[test]
+    fn a_header_claiming_an_impossible_length_is_corrupt_not_a_panic() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = Store::new(dir.path());
+        let key = *blake3::hash(b"k").as_bytes();
+        for claimed in [u64::MAX, u64::MAX - 40, 1 << 40] {
+            let mut bytes = MAGIC.to_vec();
+            bytes.extend_from_slice(&key);
+            bytes.extend_from_slice(&claimed.to_le_bytes());
+            bytes.extend_from_slice(&[0u8; CHECKSUM]);
+            assert!(decode(&bytes, Some(&key))
+                .unwrap_err()
+                .starts_with("truncated or padded"));
+            let path = store.path(&key);
+            std::fs::create_dir_all(path.parent().unwrap()).unwrap();
+            std::fs::write(&path, &bytes).unwrap();
+            let err = store.get(&key).unwrap_err();
+            assert!(err.why.starts_with("truncated or padded"), "{}", err.why);
+            assert!(!path.exists(), "a corrupt entry is removed");
+        }
+    }
+
+    #[cfg(unix)]
+    #[test]
+    fn entries_that_are_links_or_not_files_are_corrupt() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = Store::new(dir.path());
+        let key = *blake3::hash(b"k").as_bytes();
+        store.put(&key, b"payload").unwrap();
+        let path = store.path(&key);
+        let kept = dir.path().join("kept");
+        std::fs::rename(&path, &kept).unwrap();
+        std::os::unix::fs::symlink(&kept, &path).unwrap();
+        let (n, bad) = store.verify();
+        assert_eq!((n, bad.len()), (1, 1));
+        assert_eq!(bad[0].why, "is a symbolic link, not a file");
+        assert_eq!(store.get(&key).unwrap_err().why, bad[0].why);
+        assert_eq!(store.get(&key), Ok(None), "the link was removed");
+        assert!(kept.exists(), "not what it pointed to");
+        // A folder that is a file.
+        let file = dir.path().join("file");
+        std::fs::write(&file, b"x").unwrap();
+        assert!(Store::new(&file).check_root().is_err());
+        assert!(Store::new(file.join("sub")).check_root().is_err());
+        assert!(Store::new(dir.path().join("absent")).check_root().is_ok());
+        assert!(store.check_root().is_ok());
     }
 
     #[test]
@@ -531,5 +652,20 @@ mod tests {
         assert_eq!(parse_size("500M"), Some(500 * 1024 * 1024));
         assert_eq!(parse_size("1234"), Some(1234));
         assert_eq!(parse_size("3Q"), None);
+        // Past the range: refused, never a panic or a silent saturation.
+        assert_eq!(parse_duration("18446744073709551615s"), None);
+        assert_eq!(parse_duration("99999999999999999999w"), None);
+        assert_eq!(parse_duration("0s"), Some(Duration::ZERO));
+        for bad in [
+            "", "-1d", "d", ".d", "1..2d", "inf", "NaNs", "1e3s", "３d", "1 d",
+        ] {
+            assert_eq!(parse_duration(bad), None, "{bad:?}");
+        }
+        assert_eq!(parse_size("18446744073709551615"), None);
+        assert_eq!(parse_size("99999999999G"), None);
+        assert_eq!(parse_size("0"), Some(0));
+        for bad in ["", "-1M", "M", "inf", "NaN", "1e3", "５M"] {
+            assert_eq!(parse_size(bad), None, "{bad:?}");
+        }
     }
 }

@@ -938,7 +938,40 @@ impl Checker {
                 _ => {}
             }
         }
+        self.check_design_size(&spec);
         Some(spec)
+    }
+
+    /// The grid and list axes multiply into the design's member count; it
+    /// is computed with checked arithmetic (a product past 64 bits must not
+    /// wrap to a small number) and held to [`MAX_MEMBERS`] like `members`.
+    fn check_design_size(&mut self, spec: &EnsembleSpec) {
+        // `None` once the product passes 64 bits.
+        let mut product = Some(1u64);
+        let mut crossed = None;
+        for v in &spec.vary {
+            let Some(len) = v.dist.axis_len() else {
+                continue;
+            };
+            product = product.and_then(|p| p.checked_mul(len));
+            if crossed.is_none() && product.is_none_or(|p| p > MAX_MEMBERS) {
+                crossed = Some(v.span);
+            }
+        }
+        let Some(span) = crossed else {
+            return;
+        };
+        let size = product.map_or_else(|| format!("more than {}", u64::MAX), |p| p.to_string());
+        self.error(
+            Problem::error(
+                "H0413",
+                format!(
+                    "the grid and list axes make a design of {size} members; at most {MAX_MEMBERS} are allowed"
+                ),
+            )
+            .label(span, "the design passes the limit here")
+            .help("use fewer points per axis, or draw the parameters at random (`uniform`, `normal`, ...)"),
+        );
     }
 
     fn check_vary(

@@ -159,26 +159,12 @@ pub fn read_text(path: &Path) -> Result<String, String> {
     read_limited(path, MAX_SOURCE_BYTES)
 }
 
+/// Read a regular file of at most `limit` bytes as text (UTF-8, byte-order
+/// mark blanked). Pipes, devices and sockets are refused unread: opening a
+/// pipe with no writer would block forever (see
+/// [`crate::fsutil::read_bounded`]).
 pub(crate) fn read_limited(path: &Path, limit: u64) -> Result<String, String> {
-    use std::io::Read;
-    let meta = std::fs::metadata(path).map_err(|e| io_words(&e))?;
-    if meta.is_dir() {
-        return Err("is a directory, not a file".into());
-    }
-    let too_big = |n: u64| format!("is {n} bytes, more than the limit of {limit} bytes");
-    if meta.len() > limit {
-        return Err(too_big(meta.len()));
-    }
-    // Devices and pipes report no length: read at most one byte past the
-    // limit, so an endless stream is refused rather than read forever.
-    let file = std::fs::File::open(path).map_err(|e| io_words(&e))?;
-    let mut bytes = Vec::with_capacity(meta.len() as usize);
-    file.take(limit + 1)
-        .read_to_end(&mut bytes)
-        .map_err(|e| io_words(&e))?;
-    if bytes.len() as u64 > limit {
-        return Err(format!("is more than the limit of {limit} bytes"));
-    }
+    let bytes = crate::fsutil::read_bounded(path, limit).map_err(|e| e.to_string())?;
     decode_source(bytes)
 }
 
@@ -246,23 +232,8 @@ pub fn check_text_with_inputs(
     check_text_from(name, path, text, root_dir, options, Some(inputs.clone()))
 }
 
-/// Read an included file or a table: as [`read_limited`], and only a
-/// regular file. A pipe or a device would block or never end; the
-/// scenario named on the command line may still be one (`<(...)`).
-pub(crate) fn read_project_file(path: &Path, limit: u64) -> Result<String, String> {
-    let meta = std::fs::metadata(path).map_err(|e| io_words(&e))?;
-    if !meta.is_file() && !meta.is_dir() {
-        return Err("is not a regular file (a pipe or a device)".into());
-    }
-    read_limited(path, limit)
-}
-
 pub(crate) fn io_words(e: &std::io::Error) -> String {
-    match e.kind() {
-        std::io::ErrorKind::NotFound => "no such file".into(),
-        std::io::ErrorKind::PermissionDenied => "permission denied".into(),
-        _ => e.to_string(),
-    }
+    crate::fsutil::io_words(e)
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -552,7 +523,7 @@ impl Checker {
     pub(crate) fn read_input(&self, path: &Path, limit: u64) -> Result<String, String> {
         match &self.inputs {
             Some(inputs) => inputs.text(path, limit),
-            None => read_project_file(path, limit),
+            None => read_limited(path, limit),
         }
     }
 

@@ -6,7 +6,6 @@ use std::time::Instant;
 
 use super::run::load;
 use super::{usage_error, EXIT_INVALID, EXIT_OK};
-use crate::cache::Store;
 use crate::ensemble::{self, Options};
 
 fn parse_shard(s: &str) -> Result<(u64, u64), String> {
@@ -40,9 +39,29 @@ pub(crate) fn cmd_ensemble(
     if members == Some(0) {
         return usage_error("--members must be at least 1");
     }
+    if let Some(m) = members.filter(|&m| m > crate::check::MAX_MEMBERS) {
+        return usage_error(format!(
+            "--members {m} is more than the limit of {}; split the study into shards (--shard K/N)",
+            crate::check::MAX_MEMBERS
+        ));
+    }
     if threads == Some(0) {
         return usage_error("--threads must be at least 1");
     }
+    if let Some(t) = threads.filter(|&t| t > super::MAX_THREADS) {
+        return usage_error(format!(
+            "--threads {t} is more than the limit of {}; results do not depend on the thread count, and more threads than cores only cost memory",
+            super::MAX_THREADS
+        ));
+    }
+    let store = if use_cache {
+        match super::open_store() {
+            Ok(s) => Some(s),
+            Err(code) => return code,
+        }
+    } else {
+        None
+    };
     let checked = match load(file, &[]) {
         Ok(c) => c,
         Err(code) => return code,
@@ -69,7 +88,7 @@ pub(crate) fn cmd_ensemble(
         shard,
         threads,
         keep_series,
-        store: use_cache.then(|| Store::new(Store::default_location())),
+        store,
         progress: std::io::stderr().is_terminal(),
     };
     let state = match ensemble::run(model, &opts, &dir) {

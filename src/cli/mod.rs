@@ -239,8 +239,11 @@ fn expand(paths: &[PathBuf]) -> Result<Vec<PathBuf>, String> {
 
 fn walk(dir: &Path, out: &mut Vec<PathBuf>) -> std::io::Result<()> {
     for entry in std::fs::read_dir(dir)? {
-        let path = entry?.path();
-        if path.is_dir() {
+        let entry = entry?;
+        let path = entry.path();
+        // Links to folders are not followed: two links to `.` would make
+        // the walk exponential, never ending. (A link to a file is kept.)
+        if entry.file_type()?.is_dir() {
             walk(&path, out)?;
         } else if path.extension().is_some_and(|e| e == "hadal") {
             out.push(path);
@@ -299,6 +302,24 @@ fn problems_json(sources: &Sources, problems: &[Problem]) -> Vec<serde_json::Val
 pub(crate) fn usage_error(msg: impl std::fmt::Display) -> i32 {
     eprintln!("error: {msg}");
     EXIT_USAGE
+}
+
+/// Most worker threads `--threads` may ask for. A fixed number, not a
+/// multiple of this machine's cores, so that a command line valid on one
+/// machine is valid on every other; results never depend on the thread
+/// count, and more threads than cores only cost memory (a stack each) and
+/// start-up time, so a value past this is a typing mistake.
+pub const MAX_THREADS: usize = 1024;
+
+/// The stage cache (`HADAL_CACHE`), or exit 2 when its folder is a file.
+pub(crate) fn open_store() -> Result<crate::cache::Store, i32> {
+    let store = crate::cache::Store::new(crate::cache::Store::default_location());
+    match store.check_root() {
+        Ok(()) => Ok(store),
+        Err(e) => Err(usage_error(format!(
+            "{e}; set HADAL_CACHE to a directory, or run with --no-cache"
+        ))),
+    }
 }
 
 fn cmd_check(files: &[PathBuf], json: bool) -> i32 {

@@ -4,7 +4,6 @@ use std::path::{Path, PathBuf};
 use std::time::Instant;
 
 use super::{report, usage_error, EXIT_INVALID, EXIT_OK, EXIT_USAGE};
-use crate::cache::Store;
 use crate::check::{self, CheckError, CheckOptions};
 use crate::diagnostic::Problem;
 use crate::model::Model;
@@ -79,7 +78,14 @@ pub(crate) fn cmd_run(
     };
     let model = &checked.model;
     let name = model.name.clone().unwrap_or_default();
-    let store = use_cache.then(|| Store::new(Store::default_location()));
+    let store = if use_cache {
+        match super::open_store() {
+            Ok(s) => Some(s),
+            Err(code) => return code,
+        }
+    } else {
+        None
+    };
     let outcome = match pipeline::execute(model, store.as_ref()) {
         Ok(o) => o,
         Err(p) => {
@@ -460,7 +466,10 @@ fn fmt_time(t: Option<std::time::SystemTime>) -> String {
 }
 
 pub(crate) fn cmd_cache_stats() -> i32 {
-    let store = Store::new(Store::default_location());
+    let store = match super::open_store() {
+        Ok(s) => s,
+        Err(code) => return code,
+    };
     let s = store.stats();
     println!("cache {}", store.root().display());
     println!("  entries  {}", s.entries);
@@ -475,7 +484,10 @@ pub(crate) fn cmd_cache_stats() -> i32 {
 }
 
 pub(crate) fn cmd_cache_verify() -> i32 {
-    let store = Store::new(Store::default_location());
+    let store = match super::open_store() {
+        Ok(s) => s,
+        Err(code) => return code,
+    };
     let (n, bad) = store.verify();
     for b in &bad {
         eprintln!("corrupt: {}: {}", b.path.display(), b.why);
@@ -496,7 +508,8 @@ pub(crate) fn cmd_cache_gc(older: Option<&str>, max: Option<&str>) -> i32 {
     let older = match older.map(|s| (s, crate::cache::parse_duration(s))) {
         Some((s, None)) => {
             return usage_error(format!(
-                "`--older-than {s}`: write a duration such as 30d, 12h or 90m"
+                "`--older-than {s}`: write a duration such as 30d, 12h or 90m (at most {} s)",
+                u64::MAX
             ))
         }
         Some((_, d)) => d,
@@ -504,7 +517,9 @@ pub(crate) fn cmd_cache_gc(older: Option<&str>, max: Option<&str>) -> i32 {
     };
     let max = match max.map(|s| (s, crate::cache::parse_size(s))) {
         Some((s, None)) => {
-            return usage_error(format!("`--max-size {s}`: write a size such as 500M or 2G"))
+            return usage_error(format!(
+                "`--max-size {s}`: write a size such as 500M or 2G (less than 2^64 bytes)"
+            ))
         }
         Some((_, m)) => m,
         None => None,
@@ -512,7 +527,10 @@ pub(crate) fn cmd_cache_gc(older: Option<&str>, max: Option<&str>) -> i32 {
     if older.is_none() && max.is_none() {
         return usage_error("say what to remove: --older-than DUR or --max-size SIZE");
     }
-    let store = Store::new(Store::default_location());
+    let store = match super::open_store() {
+        Ok(s) => s,
+        Err(code) => return code,
+    };
     let temps = store.remove_stale_temps();
     if temps > 0 {
         println!("removed {temps} temporary files left by killed writers");

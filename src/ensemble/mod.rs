@@ -91,7 +91,14 @@ pub fn design(model: &Model, members: Option<u64>) -> (u64, Vec<u64>) {
     let axes: Vec<u64> = spec
         .map(|e| e.vary.iter().filter_map(|v| v.dist.axis_len()).collect())
         .unwrap_or_default();
-    let product = axes.iter().product::<u64>().max(1);
+    // Checked: a product past 64 bits must not wrap to a small design. The
+    // checker refuses designs past `MAX_MEMBERS` (H0413); a model built
+    // another way gets a count that `run` refuses.
+    let product = axes
+        .iter()
+        .try_fold(1u64, |p, &a| p.checked_mul(a))
+        .unwrap_or(u64::MAX)
+        .max(1);
     let n = members
         .or(spec.and_then(|e| e.members))
         .unwrap_or(if axes.is_empty() {
@@ -127,13 +134,13 @@ pub fn member_values(model: &Model, seed: u64, i: u64) -> Result<Vec<f64>, Strin
         let value = match &v.dist {
             Dist::List(values) => {
                 let k = (i / stride) % axes[axis];
-                stride *= axes[axis];
+                stride = stride.saturating_mul(axes[axis]);
                 axis += 1;
                 values[k as usize]
             }
             Dist::Grid { lo, hi, n } => {
                 let k = (i / stride) % axes[axis];
-                stride *= axes[axis];
+                stride = stride.saturating_mul(axes[axis]);
                 axis += 1;
                 lo + (hi - lo) * k as f64 / (*n - 1) as f64
             }
@@ -395,8 +402,13 @@ pub fn run(model: &Model, opts: &Options, dir: &Path) -> Result<EnsembleState, S
         ));
     }
     let (k, n) = opts.shard;
-    let from = (k - 1) * total / n;
-    let to = k * total / n;
+    if k == 0 || k > n {
+        return Err(format!("shard {k}/{n} is not K/N with 1 <= K <= N"));
+    }
+    // In 128 bits: K and N may be any 64-bit numbers, and K * total would
+    // overflow 64 bits. Both quotients are at most `total`.
+    let bound = |k: u64| (u128::from(k) * u128::from(total) / u128::from(n)) as u64;
+    let (from, to) = (bound(k - 1), bound(k));
     std::fs::create_dir_all(dir).map_err(|e| format!("cannot create {}: {e}", dir.display()))?;
     // Temporary files of an earlier run that was killed.
     crate::fsutil::remove_stale_temps(dir);
@@ -1090,37 +1102,62 @@ pub fn write_outputs(state: &EnsembleState, dir: &Path) -> Result<Vec<PathBuf>, 
     Ok(out)
 }
 
+/// Write the shards' `members.csv` files, in member order, as one file at
+/// `to` (the header once), streaming: memory does not depend on their size.
+fn concat_members(dirs: &[PathBuf], to: &Path) -> Result<(), String> {
+    use std::io::{BufRead, BufReader, Read};
+    let tmp = crate::fsutil::temp_path(to);
+    let result = (|| {
+        let mut dst = std::io::BufWriter::new(
+            std::fs::File::create(&tmp)
+                .map_err(|e| format!("cannot write {}: {e}", to.display()))?,
+        );
+        for (i, d) in dirs.iter().enumerate() {
+            let path = d.join("members.csv");
+            let (file, _) = crate::fsutil::open_regular(&path, true)
+                .map_err(|e| format!("{}: {e}", path.display()))?;
+            let mut src = BufReader::new(file);
+            if i > 0 {
+                // Skip the header line, reading at most a header's worth.
+                let mut header = Vec::new();
+                (&mut src)
+                    .take(crate::fsutil::MAX_JSON_BYTES)
+                    .read_until(b'\n', &mut header)
+                    .map_err(|e| format!("{}: {e}", path.display()))?;
+            }
+            std::io::copy(&mut src, &mut dst).map_err(|e| format!("{}: {e}", path.display()))?;
+        }
+        let f = dst
+            .into_inner()
+            .map_err(|e| format!("cannot write {}: {e}", to.display()))?;
+        f.sync_all()
+            .and_then(|()| std::fs::rename(&tmp, to))
+            .map_err(|e| format!("cannot write {}: {e}", to.display()))
+    })();
+    if result.is_err() {
+        let _ = std::fs::remove_file(&tmp);
+    }
+    result
+}
+
 /// Merge shard directories into `out`: members.csv concatenated in member
 /// order and the summaries recomputed from the merged state.
 pub fn merge_dirs(dirs: &[PathBuf], out: &Path) -> Result<EnsembleState, String> {
     let mut states = Vec::new();
     for d in dirs {
-        let b = std::fs::read(d.join("ensemble.state"))
-            .map_err(|e| format!("{}: {e}", d.join("ensemble.state").display()))?;
+        let path = d.join("ensemble.state");
+        let b = crate::fsutil::read_bounded(&path, crate::fsutil::MAX_OUTPUT_BYTES)
+            .map_err(|e| format!("{}: {e}", path.display()))?;
         let s = EnsembleState::from_bytes(&b).map_err(|e| format!("{}: {e}", d.display()))?;
         states.push((s, d.clone()));
     }
     states.sort_by_key(|(s, _)| s.from);
-    let mut members = Vec::new();
-    for (i, (_, d)) in states.iter().enumerate() {
-        let text = std::fs::read(d.join("members.csv"))
-            .map_err(|e| format!("{}: {e}", d.join("members.csv").display()))?;
-        let body = if i == 0 {
-            &text[..]
-        } else {
-            let nl = text
-                .iter()
-                .position(|&c| c == b'\n')
-                .map_or(text.len(), |p| p + 1);
-            &text[nl..]
-        };
-        members.extend_from_slice(body);
-    }
+    let shard_dirs: Vec<PathBuf> = states.iter().map(|(_, d)| d.clone()).collect();
     let merged = EnsembleState::merge(states.into_iter().map(|(s, _)| s).collect())?;
     std::fs::create_dir_all(out).map_err(|e| format!("cannot create {}: {e}", out.display()))?;
     crate::fsutil::remove_stale_temps(out);
     crate::fsutil::remove_stale_temps(&out.join("series"));
-    crate::fsutil::write_atomic(&out.join("members.csv"), &members).map_err(|e| e.to_string())?;
+    concat_members(&shard_dirs, &out.join("members.csv"))?;
     for dir in dirs {
         let series = dir.join("series");
         if series.is_dir() {
@@ -1129,9 +1166,7 @@ pub fn merge_dirs(dirs: &[PathBuf], out: &Path) -> Result<EnsembleState, String>
                 .map_err(|e| e.to_string())?
                 .flatten()
             {
-                let b = std::fs::read(e.path()).map_err(|e| e.to_string())?;
-                crate::fsutil::write_atomic(&out.join("series").join(e.file_name()), &b)
-                    .map_err(|e| e.to_string())?;
+                crate::fsutil::copy_atomic(&e.path(), &out.join("series").join(e.file_name()))?;
             }
         }
     }

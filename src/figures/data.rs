@@ -72,11 +72,11 @@ impl TextTable {
     /// Read `dir/name`; `Ok(None)` when the file does not exist.
     pub fn read_optional(dir: &Path, name: &str) -> Result<Option<TextTable>, String> {
         let path = dir.join(name);
-        match std::fs::read(&path) {
+        match crate::fsutil::read_bounded(&path, crate::fsutil::MAX_OUTPUT_BYTES) {
             Ok(b) => TextTable::parse(&b)
                 .map(Some)
                 .map_err(|e| format!("{}: {e}", path.display())),
-            Err(e) if e.kind() == std::io::ErrorKind::NotFound => Ok(None),
+            Err(e) if e.is_not_found() => Ok(None),
             Err(e) => Err(format!("cannot read {}: {e}", path.display())),
         }
     }
@@ -224,9 +224,10 @@ impl RunData {
             Some(t) => read_events(&t),
             None => Vec::new(),
         };
-        let manifest = std::fs::read(dir.join("manifest.json"))
-            .ok()
-            .and_then(|b| serde_json::from_slice(&b).ok());
+        let manifest =
+            crate::fsutil::read_bounded(&dir.join("manifest.json"), crate::fsutil::MAX_JSON_BYTES)
+                .ok()
+                .and_then(|b| serde_json::from_slice(&b).ok());
         Ok(RunData {
             ages,
             columns: cols,

@@ -253,7 +253,10 @@ impl EnsembleData {
             .ok_or_else(|| format!("{} has no quantiles.csv", dir.display()))?;
         let variables = parse_quantiles(&q).map_err(|e| format!("{}/{e}", dir.display()))?;
         let members = TextTable::read_optional(dir, "members.csv")?.map(|t| parse_members(&t));
-        let summary: Option<serde_json::Value> = match std::fs::read(dir.join("summary.json")) {
+        let summary: Option<serde_json::Value> = match crate::fsutil::read_bounded(
+            &dir.join("summary.json"),
+            crate::fsutil::MAX_JSON_BYTES,
+        ) {
             Ok(b) => Some(
                 serde_json::from_slice(&b)
                     .map_err(|e| format!("{}/summary.json: {e}", dir.display()))?,

@@ -509,12 +509,14 @@ pub fn report(dir: &Path) -> Result<String, String> {
             dir.display()
         )
     })?;
-    let manifest: Option<serde_json::Value> = std::fs::read(dir.join("manifest.json"))
-        .ok()
-        .and_then(|b| serde_json::from_slice(&b).ok());
-    let summary: Option<serde_json::Value> = std::fs::read(dir.join("summary.json"))
-        .ok()
-        .and_then(|b| serde_json::from_slice(&b).ok());
+    let manifest: Option<serde_json::Value> =
+        crate::fsutil::read_bounded(&dir.join("manifest.json"), crate::fsutil::MAX_JSON_BYTES)
+            .ok()
+            .and_then(|b| serde_json::from_slice(&b).ok());
+    let summary: Option<serde_json::Value> =
+        crate::fsutil::read_bounded(&dir.join("summary.json"), crate::fsutil::MAX_JSON_BYTES)
+            .ok()
+            .and_then(|b| serde_json::from_slice(&b).ok());
     let m = manifest.as_ref();
     let name = str_at(m, "/compared/scenario/name")
         .or_else(|| str_at(summary.as_ref(), "/scenario"))

@@ -220,7 +220,7 @@ pub fn build(
     for t in &model.tables {
         let rel = relative(&t.path, &root);
         if let Some(i) = inputs.iter_mut().find(|i| i.path == rel) {
-            if let Ok(b) = std::fs::read(&t.path) {
+            if let Ok(b) = crate::fsutil::read_bounded(&t.path, crate::check::MAX_FILE_BYTES) {
                 i.blake3 = hash_bytes(&b);
                 i.bytes = b.len() as u64;
             }

@@ -11,7 +11,6 @@
 //!
 //! Codes H0801 to H0808 are documented in docs/errors.md.
 
-use std::io::Read;
 use std::path::{Path, PathBuf};
 
 use super::{hash_bytes, Manifest};
@@ -98,56 +97,12 @@ fn unusable(manifest: &Path, why: &str) -> Problem {
     ))
 }
 
-/// Read at most `limit` bytes of a regular file. Pipes, devices and
-/// folders are refused from their metadata, before opening; the file is
-/// opened without blocking (a pipe put in its place meanwhile cannot
-/// hang the read) and checked again once open.
+/// Read at most `limit` bytes of a regular file through the one bounded
+/// reader (`fsutil::open_regular`): pipes, devices and folders are refused
+/// unread, and with `follow` false a symbolic link is refused too.
 pub(crate) fn read_regular(path: &Path, limit: u64, follow: bool) -> Result<Vec<u8>, String> {
-    let meta = if follow {
-        std::fs::metadata(path)
-    } else {
-        std::fs::symlink_metadata(path)
-    }
-    .map_err(|e| check::io_words(&e))?;
-    let not_regular = |m: &std::fs::Metadata| {
-        if m.is_dir() {
-            "is a directory, not a file".to_owned()
-        } else if m.file_type().is_symlink() {
-            "is a symbolic link".to_owned()
-        } else {
-            "is not a regular file (a pipe or a device)".to_owned()
-        }
-    };
-    if !meta.is_file() {
-        return Err(not_regular(&meta));
-    }
-    if meta.len() > limit {
-        return Err(format!(
-            "is {} bytes, more than the limit of {limit} bytes",
-            meta.len()
-        ));
-    }
-    let mut options = std::fs::OpenOptions::new();
-    options.read(true);
-    #[cfg(unix)]
-    {
-        use std::os::unix::fs::OpenOptionsExt;
-        let nofollow = if follow { 0 } else { libc::O_NOFOLLOW };
-        options.custom_flags(libc::O_NONBLOCK | nofollow);
-    }
-    let file = options.open(path).map_err(|e| check::io_words(&e))?;
-    let meta = file.metadata().map_err(|e| check::io_words(&e))?;
-    if !meta.is_file() {
-        return Err(not_regular(&meta));
-    }
-    let mut bytes = Vec::with_capacity(meta.len().min(limit) as usize);
-    file.take(limit + 1)
-        .read_to_end(&mut bytes)
-        .map_err(|e| check::io_words(&e))?;
-    if bytes.len() as u64 > limit {
-        return Err(format!("is more than the limit of {limit} bytes"));
-    }
-    Ok(bytes)
+    let (file, len) = crate::fsutil::open_regular(path, follow).map_err(|e| e.to_string())?;
+    crate::fsutil::read_to_limit(file, len, limit).map_err(|e| e.to_string())
 }
 
 /// Read and parse a manifest, size-limited; only a regular file.

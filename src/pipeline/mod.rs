@@ -491,7 +491,11 @@ struct Trace {
 impl Trace {
     fn read(path: &std::path::Path) -> Trace {
         Trace {
-            text: std::fs::read_to_string(path).unwrap_or_default(),
+            // A hint only: anything but a small regular UTF-8 file is ignored.
+            text: crate::fsutil::read_bounded(path, crate::fsutil::MAX_JSON_BYTES)
+                .ok()
+                .and_then(|b| String::from_utf8(b).ok())
+                .unwrap_or_default(),
         }
     }
 
