@@ -2,11 +2,11 @@
 //! general-purpose ODE library.
 //!
 //! Source of the reference: scipy's `solve_ivp` with the Radau method at
-//! rtol 1e-10 (the numerical reference named in
-//! /work/shared/reference-values.md), run once by the committed script
-//! `tools/scipy_reference.py` on the equations of
-//! `scenarios/hot_start.hadal` written out by hand, stage by stage. Its
-//! output is committed as `tests/data/hot_start_scipy.csv` (every 100 Myr).
+//! rtol 1e-10 (the numerical reference listed in docs/sources.md), run
+//! once by the committed script `tools/scipy_reference.py` on the
+//! equations of `scenarios/hot_start.hadal` written out by hand, stage by
+//! stage. Its output is committed as `tests/data/hot_start_scipy.csv`
+//! (every 100 Myr).
 //! Regenerate with `pip install scipy numpy && python3 tools/scipy_reference.py`.
 
 use std::path::{Path, PathBuf};

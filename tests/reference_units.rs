@@ -16,7 +16,7 @@ mod scenario;
 use scenario::{hypsometry_csv, ka, rel, sphere_area, Project};
 
 /// Ocean area implied by the published volume and mean depth, rounded as
-/// reference-values.md gives it (derived from Charette & Smith 2010).
+/// docs/sources.md gives it (derived from Charette & Smith 2010).
 const OCEAN_AREA: f64 = 3.617e14;
 /// IUGG mean radius of the reference planet, m.
 const RADIUS: f64 = 6371.0e3;
@@ -96,7 +96,7 @@ expect implied_area at 30 ka in 3.614e14 m^2 to 3.620e14 m^2
 expect seawater_ocean_mass at 30 ka in 1.3e21 kg to 1.5e21 kg
 # Common practice (global equivalent layer): about 2.7 km of water.
 expect global_layer at 30 ka in 2.6 km to 2.8 km
-# IPCC AR5 WG1 uses 362 Gt per mm; reference-values.md: about 360 to 362 Gt.
+# IPCC AR5 WG1 uses 362 Gt per mm; docs/sources.md: about 360 to 362 Gt.
 expect mass_per_mm at 30 ka in 360 Gt/mm to 362 Gt/mm
 # Morlighem et al. 2020, Nature Geoscience: 57.9 +- 0.9 m.
 expect sle_south at 30 ka in 57.0 m to 58.8 m
@@ -121,7 +121,7 @@ fn ocean_volume_and_mean_depth_give_the_ocean_area() {
     assert_eq!(r.unit("implied_area"), "m2");
     // Unit conversion km^3 / m -> m^2 is exact to rounding: 1.332e18 / 3682.2.
     assert!(rel(area, 1.332e18 / 3682.2) < 1e-14, "{area:e}");
-    // Charette & Smith 2010, Oceanography 23(2), rounded in reference-values.md
+    // Charette & Smith 2010, Oceanography 23(2), rounded in docs/sources.md
     // to about 3.617e14 m^2: the rounding is 1.1e-4, so 5e-4.
     assert!(rel(area, 3.617e14) < 5e-4, "{area:e}");
     r.expectation("expect implied_area");
@@ -174,12 +174,12 @@ fn the_published_ocean_fills_the_basins_to_sea_level() {
 fn mass_per_millimetre_of_sea_level_through_the_hypsometry() {
     let r = solved();
     let gt = r.at("mass_per_mm", ka(30.0));
-    // IPCC AR5 WG1: 362 Gt per mm; reference-values.md: about 360 to 362 Gt.
+    // IPCC AR5 WG1: 362 Gt per mm; docs/sources.md: about 360 to 362 Gt.
     // Measured: 361.7 Gt (3.617e14 m^2 of fresh water, 1 mm deep).
     assert!((360.0..=362.0).contains(&gt), "{gt} Gt/mm");
     assert!(rel(gt, 361.7) < 1e-6, "{gt} Gt/mm");
     // The inverse, through sea_level: 1 km^3 of water raises the sea by
-    // about 2.78 um (reference-values.md, over 3.6e14 m^2); over 3.617e14 m^2
+    // about 2.78 um (docs/sources.md, over 3.6e14 m^2); over 3.617e14 m^2
     // it is 2.765 um, 0.6 % less, so 1 %.
     let um = r.at("rise_per_km3", ka(30.0)) * 1e3;
     assert!(rel(um, 2.78) < 0.01, "{um} um");
