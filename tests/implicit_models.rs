@@ -194,3 +194,29 @@ fn every_state_gets_an_absolute_scale_even_at_zero() {
     let n = start.0.len();
     assert_eq!(ctl.scale[n - 2..], [2.0e21, 2.0e21]);
 }
+
+#[test]
+fn the_unit_of_a_zero_start_enters_the_stage_fingerprint() {
+    // `0 km` and `0 m` are the same start value in the same canonical text,
+    // but different scales, so different results: the cache must not hand
+    // one's stage to the other.
+    let dir = tempfile::tempdir().unwrap();
+    let key = |unit: &str| {
+        let text = quorvane(
+            "implicit",
+            &OPEN_MANTLE.replace("0 km,", &format!("0 {unit},")),
+        );
+        let m = model_in(dir.path(), &text);
+        let g = hadal::graph::DepGraph::build(&m);
+        let start = hadal::solve::initial_state(&m);
+        (
+            hadal::pipeline::stage_key(&m, &g, 0, &start, &[]),
+            hadal::solve::stage_control(&m, 0, &start).scale[component(&m, "crust")],
+        )
+    };
+    let (km, km_scale) = key("km");
+    let (m, m_scale) = key("m");
+    assert_eq!((km_scale, m_scale), (1000.0, 1.0));
+    assert_ne!(km, m);
+    assert_eq!(km, key("km").0, "the key is a function of the text");
+}

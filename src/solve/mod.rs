@@ -378,8 +378,10 @@ pub fn stage_control(model: &Model, s: usize, start: &State) -> Control {
 }
 
 /// The size of a state that is exactly zero: the unit its start value is
-/// written in, or 1 in internal units (kg, m, yr, K) without one.
-fn zero_scale(def: &crate::model::Def) -> f64 {
+/// written in, or 1 in internal units (kg, m, yr, K) without one. The unit
+/// is not part of a definition's canonical text, so the stage fingerprint
+/// (`pipeline`) records this value with the state layout.
+pub fn zero_scale(def: &crate::model::Def) -> f64 {
     def.display_unit
         .as_ref()
         .map(|(_, u)| u.scale.abs())
