@@ -627,7 +627,6 @@ fn jacobian(
         for r in 0..n {
             w.jac[r * n + c] = (w.fz[r] - f0[r]) / d;
         }
-
         w.z[c] = keep;
     }
     w.lu_h = f64::NAN;
@@ -648,9 +647,11 @@ enum StepOutcome {
 const NEWTON_ITERS: usize = 8;
 
 /// Newton stops when its estimated remaining error, in the weighted norm in
-/// which the error tolerance is 1, is below this: Hairer & Wanner's choice
-/// for Radau IIA, max(10 eps / rtol, min(0.03, sqrt(rtol))) (Solving ODEs
-/// II, section IV.8).
+/// which the error tolerance is 1, is below this. The stopping rule
+/// (increment times theta / (1 - theta)) is that of Hairer & Wanner, Solving
+/// ODEs II, section IV.8; the bound max(10 eps / rtol, min(0.03, sqrt(rtol)))
+/// is the default of their Radau IIA code: tighter for tighter rtol, where
+/// the stage values must be more exact.
 fn newton_tol(rtol: f64) -> f64 {
     (10.0 * f64::EPSILON / rtol).max(0.03f64.min(libm::sqrt(rtol)))
 }

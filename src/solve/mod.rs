@@ -722,18 +722,19 @@ fn limiting_term(
     };
     let f0 = values(sys, t, y);
     let total: f64 = f0.iter().map(|v| v.abs()).sum();
-    // Along the reservoir: an increment of sqrt(eps) of its size.
+    // Along the reservoir: an increment of sqrt(eps) of its size (of 1 kg
+    // when it is empty, so that the difference is not rounding noise).
     let mut z = y.to_vec();
-    let dr = 1.5e-8 * y[i].abs().max(1e-300);
+    let dr = 1.5e-8 * y[i].abs().max(1.0);
     z[i] += dr;
     let f_r = values(sys, t, &z);
     // Along the solution: the time in which no component moves more than
-    // sqrt(eps) of its size.
+    // sqrt(eps) of its size (or of one internal unit, when it is zero).
     let mut dy = vec![0.0; y.len()];
     let moving = sys.rhs(t, y, &mut dy);
     let tau = (0..prog.n_state)
         .filter(|&j| dy[j] != 0.0)
-        .map(|j| 1.5e-8 * y[j].abs().max(1e-300) / dy[j].abs())
+        .map(|j| 1.5e-8 * y[j].abs().max(1.0) / dy[j].abs())
         .fold(f64::INFINITY, f64::min);
     let f_t = if moving && tau.is_finite() && tau > 0.0 {
         for j in 0..y.len() {
