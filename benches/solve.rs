@@ -96,7 +96,7 @@ fn main() {
         let mut y = solve::initial_state(&model).0;
         for (s, prog) in programs.iter().enumerate() {
             let st = &model.stages[s];
-            let ctl = solve::stage_control(&model, s, &State(y.clone()));
+            let mut ctl = solve::stage_control(&model, s, &State(y.clone()));
             let mut sys = solve::Sys::new(&model, prog);
             let mut stats = Stats::default();
             methods::integrate(
@@ -104,7 +104,7 @@ fn main() {
                 model.start_age - st.start_age,
                 model.start_age - st.end_age,
                 &mut y,
-                &ctl,
+                &mut ctl,
                 &mut NoRows,
                 &mut stats,
             )

@@ -301,3 +301,52 @@ fn not_a_number_into_a_table_or_a_hypsometry_is_a_diagnostic_not_a_panic() {
         }
     }
 }
+
+#[test]
+fn a_collapse_under_the_implicit_method_names_the_limiting_rate_and_does_not_advise_implicit() {
+    // T blows up after 1 kyr (dT/dt = T^2 / (K Myr) from 1000 K); S is a
+    // quiet, stiffer-looking relaxation beside it.
+    for method in ["implicit", "explicit"] {
+        let (p, span) = solve_err(&format!(
+            "{HEAD}solver method = {method}\nreservoir ocean = 1e21 kg\n\
+             state S = 5 K, rate = -(S - 5 K) / 1 kyr\n\
+             state T = 1000 K, rate = T * T / 1 K / 1 Myr\n\
+             stage all from 2 Ga to 0 Ga\n"
+        ));
+        assert_eq!(p.code, "H0603", "{method}: {}", p.message);
+        assert!(
+            p.message.contains("the error in `T` limits the step"),
+            "{method}: {}",
+            p.message
+        );
+        assert_eq!(span, "T * T / 1 K / 1 Myr", "{method}");
+        let help = p.help.as_deref().unwrap_or("");
+        if method == "implicit" {
+            assert!(!help.contains("method = implicit"), "{help}");
+            assert!(help.contains("already steps implicitly"), "{help}");
+        } else {
+            assert!(help.contains("solver method = implicit"), "{help}");
+        }
+    }
+}
+
+#[test]
+fn a_collapse_in_a_reservoir_names_the_flux_that_limits_it() {
+    // `pool` is fed by a flux growing as pool^2 (infinite after 1 Myr) and
+    // drained by a slow linear leak: the runaway flux is to blame.
+    for method in ["implicit", "explicit"] {
+        let (p, span) = solve_err(&format!(
+            "{HEAD}solver method = {method}\nreservoir ocean = 1.2e21 kg\nreservoir pool = 1e18 kg\n\
+             flux leak: pool -> ocean = pool / 1 Gyr\n\
+             flux runaway: outside -> pool = pool * pool / 1e18 kg / 1 Myr\n\
+             stage all from 2 Ga to 0 Ga\n"
+        ));
+        assert_eq!(p.code, "H0603", "{method}: {}", p.message);
+        assert!(
+            p.message.contains("the error in `pool` limits the step"),
+            "{method}: {}",
+            p.message
+        );
+        assert_eq!(span, "pool * pool / 1e18 kg / 1 Myr", "{method}");
+    }
+}

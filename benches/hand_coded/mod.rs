@@ -341,19 +341,19 @@ impl Observer for Quiet {
 /// ledger, by the start value for the state.
 pub fn control(stage: usize, start: &[f64]) -> Control {
     let mass_scale = start[..N_RES].iter().map(|v| v.abs()).sum::<f64>().max(1.0);
-    let atol = (0..DIM)
+    let scale = (0..DIM)
         .map(|i| {
-            let scale = if !(N_RES..N_STATE).contains(&i) {
+            if !(N_RES..N_STATE).contains(&i) {
                 mass_scale
             } else {
                 start[i].abs().max(1e-300)
-            };
-            ATOL * scale
+            }
         })
         .collect();
     Control {
         rtol: RTOL,
-        atol,
+        atol: ATOL,
+        scale,
         n_err: N_STATE,
         max_step: stage_params(stage).max_step,
         initial_step: None,
@@ -367,7 +367,7 @@ pub fn run_hand_coded_with_stats() -> (Vec<f64>, Vec<Stats>) {
     let mut y = initial_state();
     let mut all = Vec::new();
     for (s, &(from, to)) in STAGE_AGES.iter().enumerate() {
-        let ctl = control(s, &y);
+        let mut ctl = control(s, &y);
         let mut sys = HandCoded::new(s);
         let mut stats = Stats::default();
         methods::integrate(
@@ -375,7 +375,7 @@ pub fn run_hand_coded_with_stats() -> (Vec<f64>, Vec<Stats>) {
             START_AGE - from,
             START_AGE - to,
             &mut y,
-            &ctl,
+            &mut ctl,
             &mut Quiet,
             &mut stats,
         )

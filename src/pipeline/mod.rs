@@ -140,9 +140,19 @@ struct RunWide {
 
 impl RunWide {
     fn new(model: &Model) -> RunWide {
-        let layout: Vec<&str> = compile::state_order(model)
+        // A state's scale at zero (the unit of its start value) steers the
+        // solve, but no canonical text holds it.
+        let layout: Vec<String> = compile::state_order(model)
             .iter()
-            .map(|&d| model.defs[d].name.as_str())
+            .map(|&d| {
+                let def = &model.defs[d];
+                match def.kind {
+                    DefKind::State { .. } => {
+                        format!("{} at zero {}", def.name, bits(solve::zero_scale(def)))
+                    }
+                    _ => def.name.clone(),
+                }
+            })
             .collect();
         RunWide {
             report_ages: solve::report_ages(model),

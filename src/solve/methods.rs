@@ -7,7 +7,9 @@
 //! Alexander (1977), stiffly accurate, with an embedded second-order
 //! solution for the error estimate, filtered through the iteration matrix
 //! (Hairer & Wanner, Solving ODEs II) so that stiff components do not
-//! inflate it. Newton iterations use a finite-difference Jacobian.
+//! inflate it. Newton iterations use a finite-difference Jacobian, norms
+//! weighted like the error norm, a convergence-rate test, a Jacobian
+//! refresh when convergence is slow and step halving when it fails.
 //!
 //! Both are written here rather than taken from a crate so that the order of
 //! every floating-point operation is fixed and results are bit-identical on
@@ -29,8 +31,14 @@ pub trait System {
 #[derive(Debug, Clone)]
 pub struct Control {
     pub rtol: f64,
-    /// Absolute tolerance per component.
-    pub atol: Vec<f64>,
+    /// Dimensionless absolute tolerance: component i's absolute tolerance
+    /// is `atol * scale[i]`.
+    pub atol: f64,
+    /// Absolute scale per component. `integrate` raises it to the largest
+    /// |y_i| of every accepted step, so a state that starts at zero gains an
+    /// absolute tolerance as soon as it moves; pass the same `Control` to
+    /// every segment of a stage so the scale carries over.
+    pub scale: Vec<f64>,
     /// Components that enter the error norm.
     pub n_err: usize,
     pub max_step: f64,
@@ -69,10 +77,18 @@ impl Stats {
 pub enum Failure {
     /// A derivative was NaN or infinite at the accepted state at time t.
     NonFinite { t: f64 },
-    /// The step size fell below what the time axis can resolve.
-    StepCollapse { t: f64, h: f64 },
-    /// More steps than `max_steps`.
-    Budget { t: f64 },
+    /// The step size fell below what the time axis can resolve. `worst`
+    /// is the component that limited the last attempt (largest weighted
+    /// error or Newton increment), if one was measured; `implicit` says
+    /// which method was stepping.
+    StepCollapse {
+        t: f64,
+        h: f64,
+        worst: Option<usize>,
+        implicit: bool,
+    },
+    /// More steps than `max_steps`; `implicit` says which method was stepping.
+    Budget { t: f64, implicit: bool },
 }
 
 /// An interpolant over the last accepted step.
@@ -201,15 +217,32 @@ fn sdirk() -> Sdirk {
     }
 }
 
-fn err_norm(e: &[f64], y0: &[f64], y1: &[f64], ctl: &Control) -> f64 {
+/// Weighted RMS norm of `e`: component i is measured against
+/// `atol * scale_i + rtol * max(|a_i|, |b_i|)`. Also returns the component
+/// with the largest weighted value (the one that limits the step).
+fn err_norm(e: &[f64], a: &[f64], b: &[f64], ctl: &Control) -> (f64, Option<usize>) {
     let mut s = 0.0;
+    let mut worst = (0.0, None);
     let n = ctl.n_err;
     for i in 0..n {
-        let sc = ctl.atol[i] + ctl.rtol * y0[i].abs().max(y1[i].abs());
+        let sc = ctl.atol * ctl.scale[i] + ctl.rtol * a[i].abs().max(b[i].abs());
         let r = e[i] / sc;
+        // A NaN ratio is the worst.
+        if r.is_nan() || r.abs() > worst.0 {
+            worst = (r.abs(), Some(i));
+        }
         s += r * r;
     }
-    libm::sqrt(s / n.max(1) as f64)
+    (libm::sqrt(s / n.max(1) as f64), worst.1)
+}
+
+/// Raise each component's scale to the size it has reached.
+fn grow_scale(ctl: &mut Control, y: &[f64]) {
+    for (s, v) in ctl.scale.iter_mut().zip(y) {
+        if v.abs() > *s {
+            *s = v.abs();
+        }
+    }
 }
 
 /// Integrate from t0 to t1 (t1 > t0), advancing `y` in place.
@@ -218,7 +251,7 @@ pub fn integrate(
     t0: f64,
     t1: f64,
     y: &mut [f64],
-    ctl: &Control,
+    ctl: &mut Control,
     obs: &mut dyn Observer,
     stats: &mut Stats,
 ) -> Result<(), Failure> {
@@ -242,11 +275,13 @@ pub fn integrate(
     let mut jac_fresh = false;
     let mut have_jac = false;
     let mut last_rejected = false;
+    // The component that limited the last measured attempt.
+    let mut worst: Option<usize> = None;
     let min_h = |t: f64| 64.0 * f64::EPSILON * t.abs().max(span);
     let sd = sdirk();
     loop {
         if stats.accepted + stats.rejected >= ctl.max_steps {
-            return Err(Failure::Budget { t });
+            return Err(Failure::Budget { t, implicit });
         }
         let mut last = false;
         if t + h >= t1 - 1e-12 * span || t + 1.01 * h >= t1 {
@@ -254,16 +289,25 @@ pub fn integrate(
             last = true;
         }
         if h < min_h(t) {
-            return Err(Failure::StepCollapse { t, h });
+            return Err(Failure::StepCollapse {
+                t,
+                h,
+                worst,
+                implicit,
+            });
         }
         if !implicit {
             // ---- Dormand–Prince step ----
             let ok = dopri_step(sys, t, h, y, &f0, &mut w, stats);
-            let err = if ok {
+            let (err, limit) = if ok {
                 err_norm(&w.err, y, &w.y1, ctl)
             } else {
-                f64::INFINITY
+                (f64::INFINITY, None)
             };
+            // Steps can also shrink while every one is accepted (a rate
+            // that grows without bound), so every attempt counts; a trial
+            // that overflowed names no component and keeps the last one.
+            worst = limit.or(worst);
             if err <= 1.0 {
                 stats.accepted += 1;
                 stats.explicit_steps += 1;
@@ -318,6 +362,7 @@ pub fn integrate(
                 }
                 y.copy_from_slice(&w.y1);
                 f0.copy_from_slice(&w.k[6]);
+                grow_scale(ctl, y);
                 t = tn;
                 if last {
                     return Ok(());
@@ -343,7 +388,7 @@ pub fn integrate(
         } else {
             // ---- SDIRK step ----
             if !have_jac || (last_rejected && !jac_fresh) {
-                if !jacobian(sys, t, y, &f0, &mut w, ctl, stats) {
+                if !jacobian(sys, t, h, y, &mut w, ctl, stats) {
                     return Err(Failure::NonFinite { t });
                 }
                 have_jac = true;
@@ -351,7 +396,8 @@ pub fn integrate(
             }
             let outcome = sdirk_step(sys, t, h, y, &mut w, ctl, &sd, stats);
             match outcome {
-                StepOutcome::Accepted(err) => {
+                StepOutcome::Accepted(err, limit) => {
+                    worst = limit.or(worst);
                     stats.accepted += 1;
                     stats.implicit_steps += 1;
                     let tn = if last { t1 } else { t + h };
@@ -371,13 +417,15 @@ pub fn integrate(
                     }
                     y.copy_from_slice(&w.y1);
                     f0.copy_from_slice(&w.k[2]);
+                    grow_scale(ctl, y);
                     t = tn;
                     if last {
                         return Ok(());
                     }
                     jac_fresh = false;
-                    // Refresh the Jacobian every few steps.
-                    if stats.implicit_steps.is_multiple_of(8) {
+                    // Refresh the Jacobian every few steps, and at once
+                    // when Newton converged slowly with the current one.
+                    if stats.implicit_steps.is_multiple_of(8) || w.slow {
                         have_jac = false;
                     }
                     let fac = if err == 0.0 {
@@ -389,18 +437,22 @@ pub fn integrate(
                     last_rejected = false;
                     h = (h * fac).min(hmax);
                 }
-                StepOutcome::Rejected(err) => {
+                StepOutcome::Rejected(err, limit) => {
                     stats.rejected += 1;
                     last_rejected = true;
+                    worst = limit.or(worst);
                     h *= (0.9 * crate::numeric::pow(err, -1.0 / 3.0)).clamp(0.2, 1.0);
                 }
-                StepOutcome::NewtonFailed => {
+                StepOutcome::NewtonFailed(limit) => {
                     stats.rejected += 1;
                     last_rejected = true;
+                    worst = limit.or(worst);
+                    // With a Jacobian from an earlier point, first retry
+                    // the same step with a fresh one (taken at the loop's
+                    // top); with a fresh one, halve the step.
                     if jac_fresh {
-                        h *= 0.25;
+                        h *= 0.5;
                     }
-                    have_jac = false;
                 }
             }
         }
@@ -421,6 +473,8 @@ struct Work {
     fz: Vec<f64>,
     delta: Vec<f64>,
     rhs_base: Vec<f64>,
+    /// The last Newton iteration converged slowly: refresh the Jacobian.
+    slow: bool,
 }
 
 impl Work {
@@ -440,6 +494,7 @@ impl Work {
             fz: v(),
             delta: v(),
             rhs_base: v(),
+            slow: false,
         }
     }
 }
@@ -448,7 +503,7 @@ fn initial_step(y: &[f64], f: &[f64], ctl: &Control, hmax: f64) -> f64 {
     let mut dn = 0.0;
     let mut fnorm = 0.0;
     for i in 0..ctl.n_err {
-        let sc = ctl.atol[i] + ctl.rtol * y[i].abs();
+        let sc = ctl.atol * ctl.scale[i] + ctl.rtol * y[i].abs();
         let a = y[i] / sc;
         dn += a * a;
         let b = f[i] / sc;
@@ -522,21 +577,36 @@ fn dopri_step(
 }
 
 /// Finite-difference Jacobian at (t, y), row-major: jac[r*n + c] = d f_r / d y_c.
+/// The increment of component c is sqrt(eps) * max(|y_c|, scale_c, |h f_c|):
+/// relative to the component's size, never below its tolerance scale (so
+/// a state at zero is still perturbed measurably), nor below what it moves
+/// in one step.
+///
+/// The differences are taken from f evaluated here, not from the slope
+/// kept from the last step: after an implicit step that slope is f at the
+/// last Newton iterate, which differs from y by the iteration's residual,
+/// and a stiff rate turns that tiny offset into a large error of the
+/// Jacobian (and so into slow Newton convergence).
 fn jacobian(
     sys: &mut dyn System,
     t: f64,
+    h: f64,
     y: &[f64],
-    f0: &[f64],
     w: &mut Work,
     ctl: &Control,
     stats: &mut Stats,
 ) -> bool {
     let n = y.len();
     stats.jacobians += 1;
+    stats.rhs_evals += 1;
+    if !sys.rhs(t, y, &mut w.tmp) {
+        return false;
+    }
+    let f0 = &w.tmp;
     w.z.copy_from_slice(y);
     for c in 0..n {
-        let scale = ctl.atol[c.min(ctl.atol.len() - 1)] / ctl.rtol.max(1e-16);
-        let delta = libm::sqrt(f64::EPSILON) * y[c].abs().max(scale.max(1e-300));
+        let size = y[c].abs().max(ctl.scale[c]).max((h * f0[c]).abs());
+        let delta = libm::sqrt(f64::EPSILON) * size.max(1e-300);
         let keep = w.z[c];
         w.z[c] = keep + delta;
         let d = w.z[c] - keep;
@@ -564,9 +634,26 @@ fn jacobian(
 }
 
 enum StepOutcome {
-    Accepted(f64),
-    Rejected(f64),
-    NewtonFailed,
+    /// The error norm and the component that limits it.
+    Accepted(f64, Option<usize>),
+    /// The error norm and the component that limits it.
+    Rejected(f64, Option<usize>),
+    /// Newton did not converge; the component with the largest weighted
+    /// increment, if any was computed.
+    NewtonFailed(Option<usize>),
+}
+
+/// Most Newton iterations per stage equation.
+const NEWTON_ITERS: usize = 8;
+
+/// Newton stops when its estimated remaining error, in the weighted norm in
+/// which the error tolerance is 1, is below this. The stopping rule
+/// (increment times theta / (1 - theta)) is that of Hairer & Wanner, Solving
+/// ODEs II, section IV.8; the bound max(10 eps / rtol, min(0.03, sqrt(rtol)))
+/// is the default of their Radau IIA code: tighter for tighter rtol, where
+/// the stage values must be more exact.
+fn newton_tol(rtol: f64) -> f64 {
+    (10.0 * f64::EPSILON / rtol).max(0.03f64.min(libm::sqrt(rtol)))
 }
 
 #[allow(clippy::too_many_arguments)]
@@ -583,10 +670,12 @@ fn sdirk_step(
     let n = y.len();
     if w.lu_h != h {
         if !w.lu.factor_shifted(&w.jac, h * GAMMA) {
-            return StepOutcome::NewtonFailed;
+            return StepOutcome::NewtonFailed(None);
         }
         w.lu_h = h;
     }
+    let kappa = newton_tol(ctl.rtol);
+    w.slow = false;
     for s in 0..3 {
         // Explicit part of the stage equation.
         for i in 0..n {
@@ -603,42 +692,62 @@ fn sdirk_step(
         }
         let mut converged = false;
         let mut prev_norm = f64::INFINITY;
-        for _iter in 0..8 {
+        // Until a rate is measured, only an increment already below the
+        // tolerance counts as converged: the new solution sums the stage
+        // slopes, which multiply a stiff component's leftover Newton error
+        // by h |lambda|, so a rate guessed from an earlier solve is not
+        // enough.
+        let mut eta = 1.0;
+        for iter in 0..NEWTON_ITERS {
             stats.rhs_evals += 1;
             if !sys.rhs(t + sd.c[s] * h, &w.z, &mut w.fz) {
-                return StepOutcome::NewtonFailed;
+                return StepOutcome::NewtonFailed(None);
             }
             for i in 0..n {
                 w.delta[i] = w.rhs_base[i] + h * GAMMA * w.fz[i] - w.z[i];
             }
             w.lu.solve(&mut w.delta);
-            let mut norm = 0.0;
-            for i in 0..ctl.n_err {
-                let sc = ctl.atol[i] + ctl.rtol * w.z[i].abs();
-                let d = w.delta[i] / sc;
-                norm += d * d;
-            }
-            let norm = libm::sqrt(norm / ctl.n_err.max(1) as f64);
             for i in 0..n {
                 w.z[i] += w.delta[i];
             }
-            if !norm.is_finite() || (norm > prev_norm && norm > 1e-3) {
-                return StepOutcome::NewtonFailed;
+            // Weighted like the error: a component at zero is measured
+            // against the size of its new iterate, not against nothing.
+            let (norm, limit) = err_norm(&w.delta, y, &w.z, ctl);
+            if !norm.is_finite() {
+                return StepOutcome::NewtonFailed(limit);
             }
-            prev_norm = norm;
-            if norm < 1e-3 {
+            if iter > 0 {
+                let theta = norm / prev_norm;
+                if theta >= 1.0 {
+                    if norm <= kappa {
+                        // Increments at rounding level have stopped shrinking.
+                        converged = true;
+                        break;
+                    }
+                    return StepOutcome::NewtonFailed(limit);
+                }
+                if theta > 0.5 {
+                    w.slow = true;
+                }
+                eta = theta / (1.0 - theta);
+            }
+            if eta * norm <= kappa {
                 converged = true;
                 break;
             }
+            prev_norm = norm;
+            if iter + 1 == NEWTON_ITERS {
+                return StepOutcome::NewtonFailed(limit);
+            }
         }
         if !converged {
-            return StepOutcome::NewtonFailed;
+            return StepOutcome::NewtonFailed(None);
         }
         stats.rhs_evals += 1;
         let (before, after) = w.k.split_at_mut(s);
         let _ = &before;
         if !sys.rhs(t + sd.c[s] * h, &w.z, &mut after[0]) {
-            return StepOutcome::NewtonFailed;
+            return StepOutcome::NewtonFailed(None);
         }
     }
     // New solution from the stage slopes (keeps linear invariants such as the
@@ -649,13 +758,13 @@ fn sdirk_step(
     }
     w.lu.solve(&mut w.err);
     if !w.y1.iter().all(|v| v.is_finite()) {
-        return StepOutcome::NewtonFailed;
+        return StepOutcome::NewtonFailed(None);
     }
-    let err = err_norm(&w.err, y, &w.y1, ctl);
+    let (err, limit) = err_norm(&w.err, y, &w.y1, ctl);
     if err <= 1.0 {
-        StepOutcome::Accepted(err)
+        StepOutcome::Accepted(err, limit)
     } else {
-        StepOutcome::Rejected(err)
+        StepOutcome::Rejected(err, limit)
     }
 }
 
@@ -693,7 +802,8 @@ mod tests {
     fn ctl(method: Method) -> Control {
         Control {
             rtol: 1e-10,
-            atol: vec![1e-14],
+            atol: 1e-14,
+            scale: vec![1.0],
             n_err: 1,
             max_step: f64::INFINITY,
             initial_step: None,
@@ -713,7 +823,7 @@ mod tests {
                 0.0,
                 5.0,
                 &mut y,
-                &ctl(m),
+                &mut ctl(m),
                 &mut rows,
                 &mut stats,
             )
@@ -725,6 +835,40 @@ mod tests {
                 let e = (-0.7 * t).exp();
                 assert!((v - e).abs() < 1e-7, "{m:?} at {t}: {v} vs {e}");
             }
+        }
+    }
+
+    #[test]
+    fn a_component_that_starts_at_zero_gains_the_scale_it_reaches() {
+        // (c, s) = (cos t, -sin t): s starts at zero and swings to 1.
+        struct Circle;
+        impl System for Circle {
+            fn dim(&self) -> usize {
+                2
+            }
+            fn rhs(&mut self, _t: f64, y: &[f64], dy: &mut [f64]) -> bool {
+                dy[0] = y[1];
+                dy[1] = -y[0];
+                true
+            }
+        }
+        for m in [Method::Explicit, Method::Implicit] {
+            let mut c = ctl(m);
+            c.rtol = 1e-8;
+            c.scale = vec![1.0, 1e-300];
+            c.n_err = 2;
+            let mut y = [1.0, 0.0];
+            let mut stats = Stats::default();
+            let mut rows = Rows(Vec::new(), Vec::new());
+            integrate(&mut Circle, 0.0, 2.0, &mut y, &mut c, &mut rows, &mut stats).unwrap();
+            // The largest |sin| on [0, 2] is 1, at pi / 2; the scale follows
+            // the ends of accepted steps, which come near it.
+            assert!(
+                c.scale[1] > 0.99 && c.scale[1] <= 1.0,
+                "{m:?}: {:?}",
+                c.scale
+            );
+            assert_eq!(c.scale[0], 1.0, "{m:?}");
         }
     }
 
@@ -745,9 +889,9 @@ mod tests {
         let mut stats = Stats::default();
         let mut c = ctl(Method::Auto);
         c.rtol = 1e-6;
-        c.atol = vec![1e-9];
+        c.atol = 1e-9;
         let mut rows = Rows(Vec::new(), Vec::new());
-        integrate(&mut Stiff, 0.0, 10.0, &mut y, &c, &mut rows, &mut stats).unwrap();
+        integrate(&mut Stiff, 0.0, 10.0, &mut y, &mut c, &mut rows, &mut stats).unwrap();
         assert!(stats.switched_at.is_some(), "auto mode should switch");
         assert!(stats.accepted < 5000, "{stats:?}");
         assert!((y[0] - 10f64.cos()).abs() < 1e-5, "{}", y[0]);

@@ -10,14 +10,17 @@ use std::time::{Duration, Instant};
 
 use crate::compile::{self, Program, Regs, Wants};
 use crate::diagnostic::Problem;
-use crate::model::{DefId, DefKind, Method, Model};
+use crate::model::{DefId, DefKind, Endpoint, Method, Model};
 use methods::{Control, Dense, Failure, Observer, Stats, Stop, System};
 
 /// Version of the numeric engine: bump whenever a change to compile or
 /// solve can change any result bit, so cached stages are not reused.
 /// 2: exp and pow from `numeric::elementary` instead of `libm`.
 /// 3: fluxes summed in the order of their names, not of their declarations.
-pub const ENGINE_VERSION: u32 = 3;
+/// 4: per-component absolute scales (a state at zero measured in its unit,
+/// scales growing to the largest size reached); Newton with weighted norms,
+/// a convergence-rate test, a fresh f for the Jacobian and step halving.
+pub const ENGINE_VERSION: u32 = 4;
 
 /// The state carried between stages: every reservoir and state component,
 /// then the ledger of water delivered from outside and lost to outside.
@@ -332,38 +335,59 @@ fn water_total(model: &Model, y: &[f64]) -> f64 {
     y[..n_res].iter().sum::<f64>() + y[n - 1] - y[n - 2]
 }
 
-/// The integrator settings of stage `s` starting from `start`: absolute
-/// tolerances scale with the total water for reservoirs and the ledger, and
-/// with each state's starting size for states.
+/// The integrator settings of stage `s` starting from `start`. Absolute
+/// tolerances are `atol` times a scale per component: the total water at
+/// the stage start for reservoirs and the ledger (so a reservoir that starts
+/// empty is measured against the water it can receive); for a state, its
+/// size at the stage start or, when that is exactly zero, the unit its
+/// start value is written in (`state crust = 0 km`: 1 km; 1 in internal
+/// units without one), so that it has an absolute tolerance from the first
+/// step. The integrator then raises every scale to the largest size the
+/// component reaches in the stage.
 pub fn stage_control(model: &Model, s: usize, start: &State) -> Control {
     let st = &model.stages[s];
     let n = start.0.len();
     let n_state = n - 2;
     let n_res = model.reservoirs().count();
+    let order = compile::state_order(model);
     let mass_scale = start.0[..n_res]
         .iter()
         .map(|v| v.abs())
         .sum::<f64>()
         .max(1.0);
-    let atol = (0..n)
+    let scale = (0..n)
         .map(|i| {
-            let scale = if i < n_res || i >= n_state {
+            if i < n_res || i >= n_state {
                 mass_scale
+            } else if start.0[i] != 0.0 {
+                start.0[i].abs()
             } else {
-                start.0[i].abs().max(1e-300)
-            };
-            st.solver.atol * scale
+                zero_scale(&model.defs[order[i]])
+            }
         })
         .collect();
     Control {
         rtol: st.solver.rtol,
-        atol,
+        atol: st.solver.atol,
+        scale,
         n_err: n_state,
         max_step: st.solver.max_step.unwrap_or(f64::INFINITY),
         initial_step: st.solver.initial_step,
         max_steps: st.solver.max_steps,
         method: st.solver.method,
     }
+}
+
+/// The size of a state that is exactly zero: the unit its start value is
+/// written in, or 1 in internal units (kg, m, yr, K) without one. The unit
+/// is not part of a definition's canonical text, so the stage fingerprint
+/// (`pipeline`) records this value with the state layout.
+pub fn zero_scale(def: &crate::model::Def) -> f64 {
+    def.display_unit
+        .as_ref()
+        .map(|(_, u)| u.scale.abs())
+        .filter(|s| s.is_finite() && *s > 0.0)
+        .unwrap_or(1.0)
 }
 
 /// Integrate stage `s` from state `start`. `events_done` says which events
@@ -434,7 +458,8 @@ pub fn run_stage(
         .max(1.0);
     let span_t0 = model.start_age - st.start_age;
     let span_t1 = model.start_age - st.end_age;
-    let ctl = stage_control(model, s, start);
+    // One control for all segments: the states' scales grow across them.
+    let mut ctl = stage_control(model, s, start);
     let mut y = start.0.clone();
     let ages = report_ages(model);
     let rows = stage_rows(model, s, &ages);
@@ -498,7 +523,7 @@ pub fn run_stage(
             continue;
         }
         let mut seg = Stats::default();
-        let r = methods::integrate(&mut sys, t, cut, &mut y, &ctl, &mut obs, &mut seg);
+        let r = methods::integrate(&mut sys, t, cut, &mut y, &mut ctl, &mut obs, &mut seg);
         stats.add(&seg);
         if let Err(f) = r {
             return Err(failure_problem(model, s, prog, &mut sys, f, &obs, &y));
@@ -565,7 +590,7 @@ fn failure_problem(
     // ahead when the step size collapsed before reaching it.
     let culprit = match f {
         Failure::NonFinite { t } => nonfinite_culprit(sys, t, y).map(|c| (t, c)),
-        Failure::StepCollapse { t, h } => [0.0, 1.0, 4.0, 16.0, 64.0]
+        Failure::StepCollapse { t, h, .. } => [0.0, 1.0, 4.0, 16.0, 64.0]
             .iter()
             .find_map(|k| nonfinite_culprit(sys, t + k * h, y).map(|c| (t + k * h, c))),
         Failure::Budget { .. } => None,
@@ -600,23 +625,40 @@ fn failure_problem(
         )
         .label(model.stages[s].span, "in this stage")
         .help("a rate grows without bound; check exponents and divisions in the fluxes"),
-        Failure::StepCollapse { t, h } => {
-            // With no state of its own (only the ledger), name the stage.
-            let (span, text) = match stiffest(model, prog, sys, t, y) {
-                Some((name, span)) => (span, format!("the fastest-changing term: `{name}`")),
-                None => (model.stages[s].span, "in this stage".to_owned()),
+        Failure::StepCollapse {
+            t,
+            h,
+            worst,
+            implicit,
+        } => {
+            // Name the term whose error limited the last attempt; without
+            // one (a non-finite trial), the stiffest state; with no state of
+            // its own (only the ledger), the stage.
+            let limiting = worst.and_then(|i| limiting_term(model, prog, sys, t, y, i));
+            let (span, text, limited_by) = match limiting {
+                Some(l) => (l.span, l.label, format!("; the error in `{}` limits the step", l.component)),
+                None => match stiffest(model, prog, sys, t, y) {
+                    Some((name, span)) => (span, format!("the fastest-changing term: `{name}`"), String::new()),
+                    None => (model.stages[s].span, "in this stage".to_owned(), String::new()),
+                },
+            };
+            let help = if implicit {
+                // Advising the implicit method to a stage that uses it helps no one.
+                "the stage already steps implicitly: bound a rate that grows without limit, smooth a term that jumps or bends sharply (`min`, `max`, `clamp`, `excess`; e.g. with `smoothstep`), or loosen `solver rtol`"
+            } else {
+                "if this term relaxes quickly, set `solver method = implicit` in the stage; if it jumps, smooth it (e.g. `smoothstep`)"
             };
             Problem::error(
                 "H0603",
                 format!(
-                    "the step size collapsed to {h:.3e} yr at {} in stage `{stage}`",
+                    "the step size collapsed to {h:.3e} yr at {} in stage `{stage}`{limited_by}",
                     ga(model.start_age - t)
                 ),
             )
             .label(span, text)
-            .help("if this term relaxes quickly, set `solver method = implicit` in the stage; if it jumps, smooth it (e.g. `smoothstep`)")
+            .help(help)
         }
-        Failure::Budget { t } => Problem::error(
+        Failure::Budget { t, implicit } => Problem::error(
             "H0604",
             format!(
                 "stage `{stage}` used its budget of {} steps by {}",
@@ -625,8 +667,112 @@ fn failure_problem(
             ),
         )
         .label(model.stages[s].span, "this stage")
-        .help("raise `solver max_steps`, loosen `solver rtol`, or use `solver method = implicit` for stiff stages"),
+        .help(if implicit {
+            "raise `solver max_steps` or loosen `solver rtol`; the stage already steps implicitly, so look for a term that changes abruptly and smooth it"
+        } else {
+            "raise `solver max_steps`, loosen `solver rtol`, or use `solver method = implicit` for stiff stages"
+        }),
     }
+}
+
+/// The term to blame for a collapsed step.
+struct Limiting {
+    /// The state component whose error limited the step.
+    component: String,
+    span: crate::span::Span,
+    label: String,
+}
+
+/// The term behind component `i`'s error: for a state, its rate; for a
+/// reservoir, the flux in or out of it with the shortest time scale at
+/// (t, y): the larger of |dF/dR| (how strongly it pulls the reservoir, which
+/// is what makes a relaxation stiff) and |dF/dt| / S (how fast it changes
+/// along the solution, S being the sum of the reservoir's flux magnitudes).
+fn limiting_term(
+    model: &Model,
+    prog: &Program,
+    sys: &mut Sys,
+    t: f64,
+    y: &[f64],
+    i: usize,
+) -> Option<Limiting> {
+    let id = *prog.state_defs.get(i)?;
+    let def = &model.defs[id];
+    if let DefKind::State { .. } = def.kind {
+        let probe = prog.rate_probes.iter().find(|p| p.def == id)?;
+        return Some(Limiting {
+            component: def.name.clone(),
+            span: probe.span,
+            label: format!("the rate of `{}` limits the step", def.name),
+        });
+    }
+    let touches = |e: &Endpoint| matches!(e, Endpoint::Reservoir(r) if *r == id);
+    let candidates: Vec<&compile::Probe> = prog
+        .flux_probes
+        .iter()
+        .filter(|p| {
+            matches!(&model.defs[p.def].kind, DefKind::Flux { from, to, .. } if touches(from) || touches(to))
+        })
+        .collect();
+    let values = |sys: &mut Sys, t: f64, z: &[f64]| -> Vec<f64> {
+        prog.eval(&mut sys.regs, z, t, sys.start_age - t);
+        candidates
+            .iter()
+            .map(|p| prog.value(&sys.regs, p.reg))
+            .collect()
+    };
+    let f0 = values(sys, t, y);
+    let total: f64 = f0.iter().map(|v| v.abs()).sum();
+    // Along the reservoir: an increment of sqrt(eps) of its size (of 1 kg
+    // when it is empty, so that the difference is not rounding noise).
+    let mut z = y.to_vec();
+    let dr = 1.5e-8 * y[i].abs().max(1.0);
+    z[i] += dr;
+    let f_r = values(sys, t, &z);
+    // Along the solution: the time in which no component moves more than
+    // sqrt(eps) of its size (or of one internal unit, when it is zero).
+    let mut dy = vec![0.0; y.len()];
+    let moving = sys.rhs(t, y, &mut dy);
+    let tau = (0..prog.n_state)
+        .filter(|&j| dy[j] != 0.0)
+        .map(|j| 1.5e-8 * y[j].abs().max(1.0) / dy[j].abs())
+        .fold(f64::INFINITY, f64::min);
+    let f_t = if moving && tau.is_finite() && tau > 0.0 {
+        for j in 0..y.len() {
+            z[j] = y[j] + tau * dy[j];
+        }
+        Some(values(sys, t + tau, &z))
+    } else {
+        None
+    };
+    let mut best: Option<(f64, usize)> = None;
+    for k in 0..candidates.len() {
+        let pull = ((f_r[k] - f0[k]) / dr).abs();
+        let change = f_t.as_ref().map_or(0.0, |f| {
+            ((f[k] - f0[k]) / tau).abs() / total.max(f64::MIN_POSITIVE)
+        });
+        let score = pull.max(change);
+        // A NaN score wins; of equal ones, the first.
+        if best.is_none_or(|(b, _)| score.is_nan() || score > b) {
+            best = Some((score, k));
+        }
+    }
+    Some(match best {
+        Some((_, k)) => Limiting {
+            component: def.name.clone(),
+            span: candidates[k].span,
+            label: format!(
+                "the fastest flux of `{}`: `{}`",
+                def.name, model.defs[candidates[k].def].name
+            ),
+        },
+        // No active flux touches it: name the reservoir itself.
+        None => Limiting {
+            component: def.name.clone(),
+            span: def.span,
+            label: format!("`{}` limits the step", def.name),
+        },
+    })
 }
 
 fn nonfinite_culprit(sys: &mut Sys, t: f64, y: &[f64]) -> Option<(DefId, crate::span::Span, f64)> {
