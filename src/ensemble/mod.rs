@@ -306,7 +306,9 @@ fn solve_member(
 ) -> Result<MemberOutput, Problem> {
     let event_ids = solve::event_defs(model);
     let mut events: Vec<Option<f64>> = vec![None; event_ids.len()];
-    let mut stages: Vec<StageRun> = shared.to_vec();
+    // The shared stages' rows are read where they are, not copied for
+    // every member.
+    let mut stages: Vec<StageRun> = shared.iter().map(StageRun::without_rows).collect();
     for sr in &stages {
         for (k, e) in sr.events.iter().enumerate() {
             if events[k].is_none() {
@@ -320,6 +322,7 @@ fn solve_member(
         None => solve::initial_state(&with_params(model, params)),
     };
     for s in from_stage..model.stages.len() {
+        crate::cancel::check()?;
         let done: Vec<bool> = events.iter().map(Option::is_some).collect();
         let sp = progs.stages[s]
             .as_ref()
@@ -338,7 +341,13 @@ fn solve_member(
         event_defs: event_ids,
         events,
     };
-    report::series_values_into(model, &run, &progs.report, params, &mut series)?;
+    report::series_values_of(
+        model,
+        shared.iter().chain(&run.stages[shared.len()..]),
+        &progs.report,
+        params,
+        &mut series,
+    )?;
     let csv = keep_series.then(|| {
         let columns = report::columns(model);
         let mut csv = report::header_csv(&columns);
@@ -478,15 +487,33 @@ pub fn run(model: &Model, opts: &Options, dir: &Path) -> Result<EnsembleState, S
     // about 64 MiB.
     let threads = pool.current_num_threads().max(1) as u64;
     let nv = state.variables.len();
-    // A member's series as doubles, and as CSV text (about 20 bytes a
-    // value) when it is kept.
-    let per_value = if opts.keep_series { 8 + 20 } else { 8 };
-    let member_bytes = (ages.len() * (nv + 1) * per_value).max(1) as u64;
-    let chunk = ((64 << 20) / member_bytes).clamp(threads, 256 * threads);
+    // A member's series as doubles, and as CSV text (at most 25 bytes a
+    // value) when it is kept; and its report rows (the age and every state
+    // component) while its series is made.
+    let per_value = if opts.keep_series { 8 + 25 } else { 8 };
+    let row_values = solve::initial_state(model).0.len() + 1;
+    let member_bytes = (ages.len() * ((nv + 1) * per_value + row_values * 8)).max(1) as u64;
+    // Fewer members at once than threads when members are large: the
+    // members in flight stay within half the memory budget of a run.
+    let in_flight = (crate::check::MEMORY_BUDGET / 2 / member_bytes).max(1);
+    let chunk = ((64 << 20) / member_bytes)
+        .clamp(threads, 256 * threads)
+        .min(in_flight);
     let times_per_block = ages.len().div_ceil(4 * threads as usize).max(1);
     let mut spare: Vec<Vec<f64>> = Vec::new();
     let mut start = from;
+    // On a stop request, the members in flight end (their solves look at
+    // the flag) and nothing of theirs is written; members.csv, still under
+    // its temporary name, is removed.
+    let interrupted = |out: std::io::BufWriter<std::fs::File>| {
+        drop(out);
+        let _ = std::fs::remove_file(&tmp);
+        crate::cancel::interrupted().message
+    };
     while start < to {
+        if crate::cancel::requested() {
+            return Err(interrupted(out));
+        }
         let end = (start + chunk).min(to);
         let buffers: Vec<Vec<f64>> = (start..end)
             .map(|_| spare.pop().unwrap_or_default())
@@ -511,6 +538,9 @@ pub fn run(model: &Model, opts: &Options, dir: &Path) -> Result<EnsembleState, S
                 })
                 .collect()
         });
+        if crate::cancel::requested() {
+            return Err(interrupted(out));
+        }
         if nv > 0 {
             pool.install(|| {
                 state
