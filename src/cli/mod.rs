@@ -56,7 +56,7 @@ fn interrupted() -> i32 {
     version,
     about = "Box models of a planet's deep water cycle: check, format and run scenario files",
     long_about = None,
-    after_help = "Exit codes: 0 success, 1 the scenario or result is wrong, 2 usage or I/O problem.\nSee docs/language.md for the scenario language and docs/errors.md for every diagnostic."
+    after_help = "Exit codes: 0 success, 1 the scenario or result is wrong, 2 usage or I/O problem, 130 stopped by Ctrl-C.\nSee docs/language.md for the scenario language and docs/errors.md for every diagnostic."
 )]
 struct Cli {
     #[command(subcommand)]
