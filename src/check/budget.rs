@@ -43,8 +43,19 @@ pub const SERIES_BYTES_PER_STATE_VALUE: u64 = 8;
 pub const SERIES_BYTES_PER_COLUMN_VALUE: u64 = 26;
 
 /// Bytes per series value (after the age) of an ensemble: two quantile
-/// sketches of about 90 bytes each, and room for their bucket counts.
-pub const SKETCH_BYTES_PER_VALUE: u64 = 512;
+/// sketches (`ensemble::sketch`) of about 90 bytes each and their bucket
+/// counts, 4 bytes a bucket of 0.4 % width over the range of the value
+/// across members: about 1,000 buckets, so that the estimate holds for
+/// values that differ by a factor of up to about 50 between members at
+/// every report age (`tests/memory.rs` measured about 2,800 bytes for a
+/// factor of about 30 at the end of the span).
+pub const SKETCH_BYTES_PER_VALUE: u64 = 8192;
+
+/// The memory of an ensemble's members in flight (their series, rows and
+/// the buffers they reuse): `ensemble::run` sizes its chunks of members to
+/// stay within it, down to one member at a time (which the per-run
+/// estimate covers).
+pub const ENSEMBLE_IN_FLIGHT_BYTES: u64 = 128 << 20;
 
 /// The size of a model's report.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -91,19 +102,33 @@ impl ReportSize {
         let series = SERIES_BYTES_PER_ROW
             .saturating_add(SERIES_BYTES_PER_STATE_VALUE.saturating_mul(self.state_values))
             .saturating_add(SERIES_BYTES_PER_COLUMN_VALUE.saturating_mul(self.columns));
-        let sketches = if self.ensemble {
-            SKETCH_BYTES_PER_VALUE.saturating_mul(self.columns - 1)
-        } else {
-            0
-        };
-        self.rows
-            .saturating_mul(solve.max(series).saturating_add(sketches))
+        let run = self.rows.saturating_mul(solve.max(series));
+        if !self.ensemble {
+            return run;
+        }
+        let sketches = self
+            .rows
+            .saturating_mul(SKETCH_BYTES_PER_VALUE.saturating_mul(self.columns - 1));
+        sketches.saturating_add(run.max(ENSEMBLE_IN_FLIGHT_BYTES))
     }
 
     /// The most rows that fit in the budget with these columns.
     pub fn rows_in_budget(&self) -> u64 {
-        let one = ReportSize { rows: 1, ..*self };
-        MEMORY_BUDGET / one.bytes().max(1)
+        let fits = |rows: u64| ReportSize { rows, ..*self }.bytes() <= MEMORY_BUDGET;
+        // Bytes grow with rows (an ensemble's with an offset): bisect.
+        let (mut lo, mut hi) = (0u64, self.rows.max(1));
+        while fits(hi) && hi < u64::MAX / 2 {
+            hi *= 2;
+        }
+        while hi - lo > 1 {
+            let mid = lo + (hi - lo) / 2;
+            if fits(mid) {
+                lo = mid;
+            } else {
+                hi = mid;
+            }
+        }
+        lo
     }
 }
 

@@ -4,7 +4,7 @@
 //! Invariant: this module never evaluates the model over time; it only reads
 //! files (scenario, includes, tables) and reasons about names and units.
 
-mod budget;
+pub mod budget;
 mod expr;
 mod tables;
 

@@ -494,8 +494,8 @@ pub fn run(model: &Model, opts: &Options, dir: &Path) -> Result<EnsembleState, S
     let row_values = solve::initial_state(model).0.len() + 1;
     let member_bytes = (ages.len() * ((nv + 1) * per_value + row_values * 8)).max(1) as u64;
     // Fewer members at once than threads when members are large: the
-    // members in flight stay within half the memory budget of a run.
-    let in_flight = (crate::check::MEMORY_BUDGET / 2 / member_bytes).max(1);
+    // members in flight stay within the check's allowance for them.
+    let in_flight = (crate::check::budget::ENSEMBLE_IN_FLIGHT_BYTES / member_bytes).max(1);
     let chunk = ((64 << 20) / member_bytes)
         .clamp(threads, 256 * threads)
         .min(in_flight);
