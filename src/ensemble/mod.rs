@@ -599,6 +599,37 @@ pub fn run(model: &Model, opts: &Options, dir: &Path) -> Result<EnsembleState, S
     Ok(state)
 }
 
+/// `members.csv` of shards (in member order) into one file, the header
+/// once, streamed into a temporary file renamed when complete: millions of
+/// members need not fit in memory.
+fn concat_members(shards: &[PathBuf], path: &Path) -> Result<(), String> {
+    use std::io::BufRead;
+    let tmp = crate::fsutil::temp_path(path);
+    let result = (|| -> Result<(), String> {
+        let file = std::fs::File::create(&tmp)
+            .map_err(|e| format!("cannot write {}: {e}", tmp.display()))?;
+        let mut out = std::io::BufWriter::new(file);
+        for (i, shard) in shards.iter().enumerate() {
+            let f = std::fs::File::open(shard).map_err(|e| format!("{}: {e}", shard.display()))?;
+            let mut r = std::io::BufReader::new(f);
+            if i > 0 {
+                // Every shard after the first without its header line.
+                let mut header = Vec::new();
+                r.read_until(b'\n', &mut header)
+                    .map_err(|e| format!("{}: {e}", shard.display()))?;
+            }
+            std::io::copy(&mut r, &mut out).map_err(|e| format!("{}: {e}", shard.display()))?;
+        }
+        let file = out.into_inner().map_err(|e| e.to_string())?;
+        file.sync_all().map_err(|e| e.to_string())?;
+        std::fs::rename(&tmp, path).map_err(|e| e.to_string())
+    })();
+    if result.is_err() {
+        let _ = std::fs::remove_file(&tmp);
+    }
+    result
+}
+
 fn write_csv_row(out: &mut impl Write, cells: &[String]) -> std::io::Result<()> {
     let mut w = csv::WriterBuilder::new()
         .terminator(csv::Terminator::Any(b'\n'))
@@ -806,45 +837,59 @@ impl EnsembleState {
         let mut it = parts.into_iter();
         let mut acc = it.next().ok_or("nothing to merge")?;
         for p in it {
-            if p.canonical_hash != acc.canonical_hash
-                || p.seed != acc.seed
-                || p.total_members != acc.total_members
-            {
-                return Err(format!(
-                    "shards of different ensembles: scenario {} seed {} members {} against scenario {} seed {} members {}",
-                    &acc.canonical_hash[..12], acc.seed, acc.total_members, &p.canonical_hash[..12], p.seed, p.total_members
-                ));
-            }
-            if p.from != acc.to {
-                return Err(format!(
-                    "members {} to {} are missing or covered twice",
-                    acc.to, p.from
-                ));
-            }
-            acc.to = p.to;
-            acc.accepted += p.accepted;
-            acc.failed += p.failed;
-            for (a, b) in acc.ranges.iter_mut().zip(&p.ranges) {
-                a[0] = a[0].min(b[0]);
-                a[1] = a[1].max(b[1]);
-                a[2] = a[2].min(b[2]);
-                a[3] = a[3].max(b[3]);
-            }
-            for (a, b) in acc.passes.iter_mut().zip(&p.passes) {
-                *a += b;
-            }
-            for (a, b) in acc.sketches.iter_mut().zip(&p.sketches) {
-                a.0.merge(&b.0);
-                a.1.merge(&b.1);
-            }
+            acc.absorb(&p)?;
         }
+        acc.complete()?;
+        Ok(acc)
+    }
+
+    /// Add the shard that follows this state's members.
+    fn absorb(&mut self, p: &EnsembleState) -> Result<(), String> {
+        let acc = self;
+        if p.canonical_hash != acc.canonical_hash
+            || p.seed != acc.seed
+            || p.total_members != acc.total_members
+        {
+            return Err(format!(
+                "shards of different ensembles: scenario {} seed {} members {} against scenario {} seed {} members {}",
+                &acc.canonical_hash[..12], acc.seed, acc.total_members, &p.canonical_hash[..12], p.seed, p.total_members
+            ));
+        }
+        if p.from != acc.to {
+            return Err(format!(
+                "members {} to {} are missing or covered twice",
+                acc.to, p.from
+            ));
+        }
+        acc.to = p.to;
+        acc.accepted += p.accepted;
+        acc.failed += p.failed;
+        for (a, b) in acc.ranges.iter_mut().zip(&p.ranges) {
+            a[0] = a[0].min(b[0]);
+            a[1] = a[1].max(b[1]);
+            a[2] = a[2].min(b[2]);
+            a[3] = a[3].max(b[3]);
+        }
+        for (a, b) in acc.passes.iter_mut().zip(&p.passes) {
+            *a += b;
+        }
+        for (a, b) in acc.sketches.iter_mut().zip(&p.sketches) {
+            a.0.merge(&b.0);
+            a.1.merge(&b.1);
+        }
+        Ok(())
+    }
+
+    /// `Err` unless the merged shards cover every member.
+    fn complete(&self) -> Result<(), String> {
+        let acc = self;
         if acc.from != 0 || acc.to != acc.total_members {
             return Err(format!(
                 "the shards cover members {} to {} of {}",
                 acc.from, acc.to, acc.total_members
             ));
         }
-        Ok(acc)
+        Ok(())
     }
 
     pub fn members(&self) -> u64 {
@@ -1086,34 +1131,34 @@ pub fn write_outputs(state: &EnsembleState, dir: &Path) -> Result<Vec<PathBuf>, 
 /// Merge shard directories into `out`: members.csv concatenated in member
 /// order and the summaries recomputed from the merged state.
 pub fn merge_dirs(dirs: &[PathBuf], out: &Path) -> Result<EnsembleState, String> {
-    let mut states = Vec::new();
-    for d in dirs {
+    let read_state = |d: &Path| -> Result<EnsembleState, String> {
         let b = std::fs::read(d.join("ensemble.state"))
             .map_err(|e| format!("{}: {e}", d.join("ensemble.state").display()))?;
-        let s = EnsembleState::from_bytes(&b).map_err(|e| format!("{}: {e}", d.display()))?;
-        states.push((s, d.clone()));
+        EnsembleState::from_bytes(&b).map_err(|e| format!("{}: {e}", d.display()))
+    };
+    // Shards are read one at a time, twice (first for their order), so
+    // that merging holds one shard's sketches beside the sum rather than
+    // every shard's at once.
+    let mut order = Vec::with_capacity(dirs.len());
+    for d in dirs {
+        order.push((read_state(d)?.from, d.clone()));
     }
-    states.sort_by_key(|(s, _)| s.from);
-    let mut members = Vec::new();
-    for (i, (_, d)) in states.iter().enumerate() {
-        let text = std::fs::read(d.join("members.csv"))
-            .map_err(|e| format!("{}: {e}", d.join("members.csv").display()))?;
-        let body = if i == 0 {
-            &text[..]
-        } else {
-            let nl = text
-                .iter()
-                .position(|&c| c == b'\n')
-                .map_or(text.len(), |p| p + 1);
-            &text[nl..]
-        };
-        members.extend_from_slice(body);
+    order.sort_by_key(|(from, _)| *from);
+    let mut merged: Option<EnsembleState> = None;
+    for (_, d) in &order {
+        let s = read_state(d)?;
+        match &mut merged {
+            None => merged = Some(s),
+            Some(acc) => acc.absorb(&s)?,
+        }
     }
-    let merged = EnsembleState::merge(states.into_iter().map(|(s, _)| s).collect())?;
+    let merged = merged.ok_or("nothing to merge")?;
+    merged.complete()?;
     std::fs::create_dir_all(out).map_err(|e| format!("cannot create {}: {e}", out.display()))?;
     crate::fsutil::remove_stale_temps(out);
     crate::fsutil::remove_stale_temps(&out.join("series"));
-    crate::fsutil::write_atomic(&out.join("members.csv"), &members).map_err(|e| e.to_string())?;
+    let shards: Vec<PathBuf> = order.iter().map(|(_, d)| d.join("members.csv")).collect();
+    concat_members(&shards, &out.join("members.csv"))?;
     for dir in dirs {
         let series = dir.join("series");
         if series.is_dir() {
