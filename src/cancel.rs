@@ -1,12 +1,13 @@
 //! A process-wide request to stop long work (Ctrl-C).
 //!
 //! The library never installs a signal handler: the command line does, and
-//! its handler only sets [`flag`]. The solver looks at it after every
-//! accepted step and every few thousand report rows, the pipeline between
-//! stages and an ensemble before each member, and each turns a request into
-//! an [`interrupted`] error, so whatever was already written (cache entries,
-//! complete output files) stays valid and nothing half-written is renamed
-//! into place.
+//! its handler only sets [`flag`]. The solver looks at it at the start of
+//! every stage, after every accepted step and every few thousand report
+//! rows, the report every few thousand rows, and an ensemble before every
+//! stage of a member and every chunk of members; each turns a request into
+//! an [`interrupted`] error, so whatever was already written (cache
+//! entries, complete output files) stays valid and nothing half-written is
+//! renamed into place.
 
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::{Arc, OnceLock};

@@ -186,3 +186,30 @@ fn ctrl_c_stops_an_ensemble_after_its_members_in_flight() {
     assert!(written.is_empty(), "{written:?}");
     assert_clean(dir.path());
 }
+
+/// The library's side, in this process (the other tests here run the
+/// binary, so the process-wide flag stays theirs to ignore): once a stop
+/// is requested, solving and running return H0608 and write nothing.
+#[test]
+fn a_requested_stop_is_the_interrupted_error() {
+    let dir = project();
+    let path = dir.path().join("long.hadal");
+    let text = long_run("4.49 Ga");
+    std::fs::write(&path, &text).unwrap();
+    let model = hadal::check::check_text(
+        "long.hadal",
+        &path,
+        &text,
+        dir.path(),
+        &hadal::check::CheckOptions::default(),
+    )
+    .unwrap()
+    .model;
+    hadal::cancel::request();
+    let p = hadal::solve::solve(&model).unwrap_err();
+    assert_eq!((p.code, p.message.as_str()), ("H0608", "interrupted"));
+    let store = hadal::cache::Store::new(dir.path().join("cache"));
+    let p = hadal::pipeline::execute(&model, Some(&store)).unwrap_err();
+    assert_eq!(p.code, "H0608");
+    assert!(files_under(&dir.path().join("cache")).is_empty());
+}

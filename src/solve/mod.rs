@@ -824,3 +824,32 @@ pub fn method_word(m: Method) -> &'static str {
         Method::Implicit => "implicit",
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn rows_that_cannot_be_allocated_are_a_diagnostic() {
+        // More values than an address space holds: the allocator refuses,
+        // and the refusal is H0607, not an abort.
+        let mut rows = Rows::new(6);
+        let p = rows.try_reserve(usize::MAX / 4).unwrap_err();
+        assert_eq!(p.code, "H0607");
+        assert!(
+            p.message
+                .starts_with("not enough memory for the report rows"),
+            "{}",
+            p.message
+        );
+        assert!(p.help.as_deref().unwrap().contains("report every"));
+        // What can be allocated is, and rows read back as pushed.
+        rows.try_reserve(2).unwrap();
+        rows.push(4.5e9, &[1.0, 2.0, 3.0, 4.0, 5.0]);
+        rows.push(4.4e9, &[-0.0, 2.5, 3.5, 4.5, 5.5]);
+        let back: Vec<(f64, Vec<f64>)> = rows.iter().map(|(a, y)| (a, y.to_vec())).collect();
+        assert_eq!(back[1], (4.4e9, vec![-0.0, 2.5, 3.5, 4.5, 5.5]));
+        assert_eq!((rows.len(), rows.width()), (2, 6));
+        assert!(Rows::from_values(6, vec![0.0; 7]).is_none());
+    }
+}
