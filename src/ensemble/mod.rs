@@ -348,12 +348,18 @@ fn solve_member(
         params,
         &mut series,
     )?;
-    let csv = keep_series.then(|| {
+    let csv = if keep_series {
         let columns = report::columns(model);
         let mut csv = report::header_csv(&columns);
+        let bound = (series.len() / columns.len().max(1))
+            .saturating_mul(report::csv_row_bound(columns.len()));
+        csv.try_reserve_exact(bound)
+            .map_err(|_| solve::out_of_memory("series", bound))?;
         report::rows_csv(series.chunks(columns.len().max(1)), &mut csv);
-        csv
-    });
+        Some(csv)
+    } else {
+        None
+    };
     let exp = report::expectations_with(model, &run, &progs.report, params);
     Ok((series, csv, exp))
 }

@@ -302,10 +302,13 @@ pub fn rows_key(stage_key: &Key) -> Key {
 
 /// A stage's result as two payloads: the head (row count, probes, end
 /// state, statistics, events) and the report rows.
-fn encode_stage(r: &StageRun) -> (Vec<u8>, Vec<u8>) {
+fn encode_stage(r: &StageRun) -> std::io::Result<(Vec<u8>, Vec<u8>)> {
     let n = r.end.0.len();
     // The same bytes as `write_rows` of (age, state) pairs.
-    let mut rows = W(Vec::with_capacity(24 + r.rows.values().len() * 8));
+    let mut rows = W(Vec::new());
+    rows.0
+        .try_reserve_exact(24 + r.rows.values().len() * 8)
+        .map_err(|e| std::io::Error::new(std::io::ErrorKind::OutOfMemory, e))?;
     rows.u64(PAYLOAD_VERSION);
     rows.u64(n as u64);
     rows.u64(r.rows.len() as u64);
@@ -350,13 +353,15 @@ fn encode_stage(r: &StageRun) -> (Vec<u8>, Vec<u8>) {
             None => w.u64(0),
         }
     }
-    (w.0, rows.0)
+    Ok((w.0, rows.0))
 }
 
 /// Store a stage result: its rows first, then its head, so that a head
 /// found is (but for a power cut) a stage whose rows can be read.
 pub fn put_stage(store: &Store, key: &Key, r: &StageRun) -> std::io::Result<()> {
-    let (head, rows) = encode_stage(r);
+    // Memory for the encoded rows may be refused: then the stage is not
+    // cached (the H0702 warning), and the run goes on.
+    let (head, rows) = encode_stage(r)?;
     store.put(&rows_key(key), &rows)?;
     store.put(key, &head)
 }
@@ -880,9 +885,9 @@ mod tests {
             r.rows = decode_rows(rows, r.end.0.len(), count)?;
             Some(r)
         };
-        let (head, rows) = encode_stage(&r);
+        let (head, rows) = encode_stage(&r).unwrap();
         let d = decode_stage(2, &head, &rows).unwrap();
-        assert_eq!(encode_stage(&d), (head.clone(), rows.clone()));
+        assert_eq!(encode_stage(&d).unwrap(), (head.clone(), rows.clone()));
         assert_eq!(
             d.rows.iter().next().unwrap().1[2].to_bits(),
             (-0.0f64).to_bits()
@@ -907,6 +912,6 @@ mod tests {
         let mut fewer = r.clone();
         fewer.rows = Rows::new(4);
         fewer.rows.push(4.5e9, &[1.0, f64::MIN_POSITIVE, -0.0]);
-        assert!(decode_stage(2, &head, &encode_stage(&fewer).1).is_none());
+        assert!(decode_stage(2, &head, &encode_stage(&fewer).unwrap().1).is_none());
     }
 }
