@@ -817,7 +817,7 @@ pub fn execute(model: &Model, store: Option<&Store>) -> Result<Outcome, Problem>
             }
         }
         // The series holds the rows from here on.
-        sr.rows = Rows::default();
+        sr.rows = Rows::new(sr.rows.width());
     }
     if let Some(store) = store {
         // A hint file: rewritten only when it changed.

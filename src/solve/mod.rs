@@ -34,10 +34,17 @@ impl State {
 /// (`width` values in all). One buffer rather than a vector per row: a
 /// vector per row cost about 40 bytes of bookkeeping beside the row's own
 /// values.
-#[derive(Debug, Clone, Default, PartialEq)]
+#[derive(Debug, Clone, PartialEq)]
 pub struct Rows {
+    /// At least 1.
     width: usize,
     data: Vec<f64>,
+}
+
+impl Default for Rows {
+    fn default() -> Rows {
+        Rows::new(1)
+    }
 }
 
 impl Rows {
@@ -851,5 +858,7 @@ mod tests {
         assert_eq!(back[1], (4.4e9, vec![-0.0, 2.5, 3.5, 4.5, 5.5]));
         assert_eq!((rows.len(), rows.width()), (2, 6));
         assert!(Rows::from_values(6, vec![0.0; 7]).is_none());
+        assert!(Rows::from_values(0, Vec::new()).is_none());
+        assert_eq!(Rows::default().len(), 0);
     }
 }
