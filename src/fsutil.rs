@@ -27,7 +27,7 @@ pub const FOREIGN_TEMP_AGE: Duration = Duration::from_secs(3600);
 /// flushed to disk, then renamed over the target. On error the temporary
 /// file is removed and the target is untouched.
 pub fn write_atomic(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
-    write_renamed(path, bytes, true, true)
+    write_renamed(path, &[bytes], true, true)
 }
 
 /// Like [`write_atomic`], flushing the file but not its directory: after a
@@ -35,13 +35,20 @@ pub fn write_atomic(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
 /// content-addressed cache entries, whose loss costs only a recomputation;
 /// it saves one of the two disk flushes per entry.
 pub fn write_atomic_entry(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
-    write_renamed(path, bytes, true, false)
+    write_renamed(path, &[bytes], true, false)
+}
+
+/// [`write_atomic_entry`] of the concatenation of `parts`, without making
+/// it in memory first (a large payload between a small head and tail would
+/// otherwise be held twice).
+pub fn write_atomic_entry_parts(path: &Path, parts: &[&[u8]]) -> std::io::Result<()> {
+    write_renamed(path, parts, true, false)
 }
 
 /// Like [`write_atomic`] without flushing to disk: a reader still sees a
 /// whole file or none, but a power cut may lose it. For hint files only.
 pub fn write_atomic_unsynced(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
-    write_renamed(path, bytes, false, false)
+    write_renamed(path, &[bytes], false, false)
 }
 
 /// This machine's name as it appears in temporary file names (no `-`).
@@ -110,13 +117,15 @@ fn parent(path: &Path) -> &Path {
     }
 }
 
-/// Write `bytes` to a new temporary file for `path`; on error nothing is
-/// left behind.
-fn write_temp(path: &Path, bytes: &[u8], sync: bool) -> std::io::Result<PathBuf> {
+/// Write `parts`, one after the other, to a new temporary file for `path`;
+/// on error nothing is left behind.
+fn write_temp(path: &Path, parts: &[&[u8]], sync: bool) -> std::io::Result<PathBuf> {
     let tmp = temp_path(path);
     let result = (|| {
         let mut f = std::fs::File::create(&tmp)?;
-        f.write_all(bytes)?;
+        for bytes in parts {
+            f.write_all(bytes)?;
+        }
         if sync {
             f.sync_all()?;
         }
@@ -138,8 +147,13 @@ fn sync_dir(dir: &Path) {
     }
 }
 
-fn write_renamed(path: &Path, bytes: &[u8], sync: bool, sync_parent: bool) -> std::io::Result<()> {
-    let tmp = write_temp(path, bytes, sync)?;
+fn write_renamed(
+    path: &Path,
+    parts: &[&[u8]],
+    sync: bool,
+    sync_parent: bool,
+) -> std::io::Result<()> {
+    let tmp = write_temp(path, parts, sync)?;
     if let Err(e) = std::fs::rename(&tmp, path) {
         let _ = std::fs::remove_file(&tmp);
         return Err(e);
@@ -162,7 +176,7 @@ pub fn write_group(dir: &Path, files: &[(&str, &[u8])], marker: &str) -> std::io
     let mut temps: Vec<(PathBuf, PathBuf)> = Vec::with_capacity(files.len());
     for (name, bytes) in files {
         let target = dir.join(name);
-        match write_temp(&target, bytes, true) {
+        match write_temp(&target, &[bytes], true) {
             Ok(tmp) => temps.push((tmp, target)),
             Err(e) => {
                 for (tmp, _) in &temps {

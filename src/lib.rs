@@ -6,6 +6,7 @@
 //! model) → [`graph`] (dependencies) → later phases.
 
 pub mod cache;
+pub mod cancel;
 pub mod check;
 pub mod cli;
 pub mod compile;

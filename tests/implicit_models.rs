@@ -98,7 +98,7 @@ fn largest_difference(a: &Run, b: &Run) -> f64 {
     let rows = |r: &Run| -> Vec<(f64, Vec<f64>)> {
         r.stages
             .iter()
-            .flat_map(|s| s.rows.iter().cloned())
+            .flat_map(|s| s.rows.iter().map(|(age, y)| (age, y.to_vec())))
             .collect()
     };
     let (ra, rb) = (rows(a), rows(b));

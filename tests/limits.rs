@@ -72,11 +72,43 @@ fn report_rows_of_a_whole_history_at_one_year_cadence() {
         Some("at most 10000000 rows are written; choose a coarser cadence")
     );
     assert_eq!(MAX_REPORT_ROWS, 1e7);
-    // Exactly at the limit is accepted: 1 Gyr at 100 yr is 1e7 rows.
-    assert_ok(
-        dir.path(),
-        &format!("scenario limits\nspan 1 Ga to 0 Ga\nreport every 100 yr\n{TAIL}"),
+}
+
+#[test]
+fn report_rows_times_values_within_the_memory_budget() {
+    let dir = tempfile::tempdir().unwrap();
+    // 1 Gyr at 200 yr: 5 million rows of two values (the age and `a`) fit.
+    let small = format!("scenario limits\nspan 1 Ga to 0 Ga\nreport every 200 yr\n{TAIL}");
+    assert_ok(dir.path(), &small);
+    // The same rows with eight outputs do not: refused before any work,
+    // with the estimate, the budget and how many rows would fit.
+    let outputs: String = (0..8).map(|k| format!("output o{k} = a * {k}\n")).collect();
+    let (p, file, line) = first_error(dir.path(), &format!("{small}{outputs}"));
+    assert_eq!(p.code, "H0412");
+    assert_eq!(
+        p.message,
+        "the report would have 5000002 rows of 10 values, about 1469 MiB in memory, more than the budget of 1024 MiB"
     );
+    assert_eq!((file.as_str(), line), ("s.hadal", 3));
+    assert_eq!(
+        p.help.as_deref(),
+        Some("choose a coarser `report every`: at most 3486174 rows of 10 values fit")
+    );
+    // An ensemble also keeps quantile sketches of every value.
+    let ensemble = format!(
+        "scenario limits\nspan 1 Ga to 0 Ga\nreport every 10 kyr\nparam k = 1\noutput o = a * k\n\
+         ensemble {{\n  members = 10\n  vary k ~ uniform(1, 2)\n}}\n{TAIL}"
+    );
+    let (p, _, line) = first_error(dir.path(), &ensemble);
+    assert_eq!(p.code, "H0412");
+    assert!(
+        p.message
+            .contains("per member and in the ensemble's quantile sketches"),
+        "{}",
+        p.message
+    );
+    assert_eq!(line, 3);
+    assert_ok(dir.path(), &ensemble.replace("10 kyr", "100 kyr"));
 }
 
 #[test]

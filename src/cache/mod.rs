@@ -177,13 +177,14 @@ impl Store {
         if let Some(dir) = path.parent() {
             std::fs::create_dir_all(dir)?;
         }
-        let mut bytes = Vec::with_capacity(payload.len() + 80);
-        bytes.extend_from_slice(MAGIC);
-        bytes.extend_from_slice(key);
-        bytes.extend_from_slice(&(payload.len() as u64).to_le_bytes());
-        bytes.extend_from_slice(payload);
-        bytes.extend_from_slice(&entry_checksum(key, payload));
-        crate::fsutil::write_atomic_entry(&path, &bytes)
+        // Head, payload and checksum written in turn: the payload (a
+        // stage's rows, its part of the series) is not copied.
+        let mut head = Vec::with_capacity(80);
+        head.extend_from_slice(MAGIC);
+        head.extend_from_slice(key);
+        head.extend_from_slice(&(payload.len() as u64).to_le_bytes());
+        let sum = entry_checksum(key, payload);
+        crate::fsutil::write_atomic_entry_parts(&path, &[&head, payload, &sum])
     }
 
     fn entries(&self) -> Vec<PathBuf> {

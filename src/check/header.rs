@@ -16,6 +16,8 @@ pub(crate) struct Header {
     pub end_age: f64,
     pub cadence: f64,
     pub solver: SolverSettings,
+    /// The `report every` line, for diagnostics about the report's size.
+    pub report_span: Option<Span>,
 }
 
 const SOLVER_KEYS: &[&str] = &[
@@ -176,6 +178,7 @@ impl Checker {
             end_age: 0.0,
             cadence: 0.0,
             solver: SolverSettings::default(),
+            report_span: None,
         };
         let header = std::mem::take(&mut self.header);
         let mut seen: std::collections::HashMap<&'static str, Span> = Default::default();
@@ -322,6 +325,7 @@ impl Checker {
         if span_given && !report_given {
             h.cadence = h.start_age - h.end_age;
         }
+        h.report_span = seen.get("report").copied().or(scenario_span);
         h
     }
 

@@ -4,6 +4,7 @@
 //! Invariant: this module never evaluates the model over time; it only reads
 //! files (scenario, includes, tables) and reasons about names and units.
 
+pub mod budget;
 mod expr;
 mod tables;
 
@@ -17,6 +18,7 @@ use crate::span::{Sources, Span};
 use crate::syntax::{self, Entry, EntryKind, StmtKind};
 use crate::units::Dim;
 
+pub use budget::{ReportSize, MEMORY_BUDGET};
 pub use expr::eval_const;
 pub use header::{MAX_MEMBERS, MAX_REPORT_ROWS};
 pub use tables::MAX_TABLE_ROWS;
@@ -787,7 +789,7 @@ impl Checker {
         for st in &mut stages {
             st.fluxes.sort_unstable();
         }
-        Some(Model {
+        let model = Model {
             name: header.name,
             title: header.title,
             start_age: header.start_age,
@@ -800,7 +802,16 @@ impl Checker {
             expects,
             ensemble,
             sources: self.sources.clone(),
-        })
+        };
+        // Only a model without errors has counts to estimate from.
+        if self.errors == 0 {
+            if let Some(span) = header.report_span {
+                if let Some(p) = budget::report_memory(&model, span) {
+                    self.error(p);
+                }
+            }
+        }
+        Some(model)
     }
 
     fn declare(&mut self) {

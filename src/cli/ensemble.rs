@@ -93,6 +93,7 @@ pub(crate) fn cmd_ensemble(
     };
     let state = match ensemble::run(model, &opts, &dir) {
         Ok(s) => s,
+        Err(_) if crate::cancel::requested() => return super::interrupted(),
         Err(e) => {
             eprintln!("error: {e}");
             return EXIT_INVALID;
@@ -100,6 +101,11 @@ pub(crate) fn cmd_ensemble(
     };
     if let Err(e) = ensemble::write_outputs(&state, &dir) {
         return usage_error(e);
+    }
+    // Stopped after the last member: the outputs are complete, the figures
+    // are left out.
+    if crate::cancel::requested() {
+        return super::interrupted();
     }
     // A shard holds only part of the members: figures come after the merge.
     if plots && shard.1 == 1 {

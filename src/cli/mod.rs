@@ -2,7 +2,8 @@
 //! codes. Everything it does goes through the library's public API.
 //!
 //! Exit codes: 0 success; 1 the scenario or the result is wrong (errors,
-//! drift, `fmt --check` would change a file); 2 usage or I/O problem.
+//! drift, `fmt --check` would change a file); 2 usage or I/O problem; 130
+//! `run` or `ensemble` stopped by Ctrl-C (SIGINT).
 
 use std::io::{IsTerminal, Write};
 use std::path::{Path, PathBuf};
@@ -21,6 +22,33 @@ mod verify;
 pub const EXIT_OK: i32 = 0;
 pub const EXIT_INVALID: i32 = 1;
 pub const EXIT_USAGE: i32 = 2;
+/// Stopped by SIGINT: 128 + the signal's number, as shells report it.
+pub const EXIT_INTERRUPTED: i32 = 130;
+
+/// Let Ctrl-C stop long work cleanly: the handler only sets the library's
+/// flag ([`crate::cancel`]), which the solver, the pipeline and ensembles
+/// look at. A second Ctrl-C ends the process at once.
+fn catch_interrupts() {
+    #[cfg(unix)]
+    {
+        use signal_hook::consts::SIGINT;
+        let flag = crate::cancel::flag();
+        // Registered first, so it runs only on a second signal: the flag is
+        // still false during the first one.
+        let _ = signal_hook::flag::register_conditional_shutdown(
+            SIGINT,
+            EXIT_INTERRUPTED,
+            std::sync::Arc::clone(flag),
+        );
+        let _ = signal_hook::flag::register(SIGINT, std::sync::Arc::clone(flag));
+    }
+}
+
+/// The one line and the exit code of work stopped by Ctrl-C.
+fn interrupted() -> i32 {
+    eprintln!("interrupted");
+    EXIT_INTERRUPTED
+}
 
 #[derive(Parser, Debug)]
 #[command(
@@ -28,7 +56,7 @@ pub const EXIT_USAGE: i32 = 2;
     version,
     about = "Box models of a planet's deep water cycle: check, format and run scenario files",
     long_about = None,
-    after_help = "Exit codes: 0 success, 1 the scenario or result is wrong, 2 usage or I/O problem.\nSee docs/language.md for the scenario language and docs/errors.md for every diagnostic."
+    after_help = "Exit codes: 0 success, 1 the scenario or result is wrong, 2 usage or I/O problem, 130 stopped by Ctrl-C.\nSee docs/language.md for the scenario language and docs/errors.md for every diagnostic."
 )]
 struct Cli {
     #[command(subcommand)]
@@ -182,7 +210,10 @@ pub fn main() -> i32 {
             json,
             no_cache,
             no_plots,
-        } => run::cmd_run(&file, out.as_deref(), &sets, json, !no_cache, !no_plots),
+        } => {
+            catch_interrupts();
+            run::cmd_run(&file, out.as_deref(), &sets, json, !no_cache, !no_plots)
+        }
         Command::Plot { dir, kg } => plot::cmd_plot(&dir, kg),
         Command::Report { dir } => plot::cmd_report(&dir),
         Command::Params { file, sets, json } => run::cmd_params(&file, &sets, json),
@@ -196,17 +227,20 @@ pub fn main() -> i32 {
             keep_series,
             no_cache,
             no_plots,
-        } => ensemble::cmd_ensemble(
-            &file,
-            members,
-            seed,
-            shard.as_deref(),
-            out.as_deref(),
-            threads,
-            keep_series,
-            !no_cache,
-            !no_plots,
-        ),
+        } => {
+            catch_interrupts();
+            ensemble::cmd_ensemble(
+                &file,
+                members,
+                seed,
+                shard.as_deref(),
+                out.as_deref(),
+                threads,
+                keep_series,
+                !no_cache,
+                !no_plots,
+            )
+        }
         Command::Merge { dirs, out } => ensemble::cmd_merge(&dirs, out.as_deref()),
         Command::Verify { manifests, rtol } => verify::cmd_verify(&manifests, rtol),
         Command::Diff { a, b } => verify::cmd_diff(&a, &b),

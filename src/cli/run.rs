@@ -86,8 +86,9 @@ pub(crate) fn cmd_run(
     } else {
         None
     };
-    let outcome = match pipeline::execute(model, store.as_ref()) {
+    let mut outcome = match pipeline::execute(model, store.as_ref()) {
         Ok(o) => o,
+        Err(_) if crate::cancel::requested() => return super::interrupted(),
         Err(p) => {
             report(&model.sources, &[p]);
             return EXIT_INVALID;
@@ -98,7 +99,11 @@ pub(crate) fn cmd_run(
         .map(Path::to_owned)
         .unwrap_or_else(|| PathBuf::from("outputs").join(&name));
     let expectations = rep::expectations(model, &outcome.run);
+    // The series moves into the files rather than being copied: it is most
+    // of a run's memory (see `check::ReportSize`).
+    let series = std::mem::take(&mut outcome.series_csv);
     let mut files = output_files(model, &outcome, &expectations);
+    files[0].1 = series;
     let overrides = parse_sets(sets).unwrap_or_default();
     let wall = clock.elapsed();
     let created = !dir.is_dir();
@@ -116,12 +121,17 @@ pub(crate) fn cmd_run(
     );
     // The manifest is written last: a directory with a manifest is complete.
     files.push(("manifest.json", manifest.to_json()));
+    if crate::cancel::requested() {
+        return super::interrupted();
+    }
     if let Err(e) = write_outputs(&dir, &files, created) {
         return usage_error(e);
     }
+    // Figures read the series back from the file just written.
+    drop(files);
     // Figures are drawn from the files just written (so `hadal plot DIR`
     // redraws the same bytes) and are not listed in the manifest.
-    if plots {
+    if plots && !crate::cancel::requested() {
         if let Err(e) = super::plot::write_figures(&dir, &crate::figures::RunOptions::default()) {
             eprintln!("warning: figures not drawn: {e}");
         }

@@ -338,7 +338,9 @@ fn solve_member(
 ) -> Result<MemberOutput, Problem> {
     let event_ids = solve::event_defs(model);
     let mut events: Vec<Option<f64>> = vec![None; event_ids.len()];
-    let mut stages: Vec<StageRun> = shared.to_vec();
+    // The shared stages' rows are read where they are, not copied for
+    // every member.
+    let mut stages: Vec<StageRun> = shared.iter().map(StageRun::without_rows).collect();
     for sr in &stages {
         for (k, e) in sr.events.iter().enumerate() {
             if events[k].is_none() {
@@ -352,6 +354,7 @@ fn solve_member(
         None => solve::initial_state(&with_params(model, params)),
     };
     for s in from_stage..model.stages.len() {
+        crate::cancel::check()?;
         let done: Vec<bool> = events.iter().map(Option::is_some).collect();
         let sp = progs.stages[s]
             .as_ref()
@@ -370,13 +373,25 @@ fn solve_member(
         event_defs: event_ids,
         events,
     };
-    report::series_values_into(model, &run, &progs.report, params, &mut series)?;
-    let csv = keep_series.then(|| {
+    report::series_values_of(
+        model,
+        shared.iter().chain(&run.stages[shared.len()..]),
+        &progs.report,
+        params,
+        &mut series,
+    )?;
+    let csv = if keep_series {
         let columns = report::columns(model);
         let mut csv = report::header_csv(&columns);
+        let bound = (series.len() / columns.len().max(1))
+            .saturating_mul(report::csv_row_bound(columns.len()));
+        csv.try_reserve_exact(bound)
+            .map_err(|_| solve::out_of_memory("series", bound))?;
         report::rows_csv(series.chunks(columns.len().max(1)), &mut csv);
-        csv
-    });
+        Some(csv)
+    } else {
+        None
+    };
     let exp = report::expectations_with(model, &run, &progs.report, params);
     Ok((series, csv, exp))
 }
@@ -515,15 +530,33 @@ pub fn run(model: &Model, opts: &Options, dir: &Path) -> Result<EnsembleState, S
     // about 64 MiB.
     let threads = pool.current_num_threads().max(1) as u64;
     let nv = state.variables.len();
-    // A member's series as doubles, and as CSV text (about 20 bytes a
-    // value) when it is kept.
-    let per_value = if opts.keep_series { 8 + 20 } else { 8 };
-    let member_bytes = (ages.len() * (nv + 1) * per_value).max(1) as u64;
-    let chunk = ((64 << 20) / member_bytes).clamp(threads, 256 * threads);
+    // A member's series as doubles, and as CSV text (at most 25 bytes a
+    // value) when it is kept; and its report rows (the age and every state
+    // component) while its series is made.
+    let per_value = if opts.keep_series { 8 + 25 } else { 8 };
+    let row_values = solve::initial_state(model).0.len() + 1;
+    let member_bytes = (ages.len() * ((nv + 1) * per_value + row_values * 8)).max(1) as u64;
+    // Fewer members at once than threads when members are large: the
+    // members in flight stay within the check's allowance for them.
+    let in_flight = (crate::check::budget::ENSEMBLE_IN_FLIGHT_BYTES / member_bytes).max(1);
+    let chunk = ((64 << 20) / member_bytes)
+        .clamp(threads, 256 * threads)
+        .min(in_flight);
     let times_per_block = ages.len().div_ceil(4 * threads as usize).max(1);
     let mut spare: Vec<Vec<f64>> = Vec::new();
     let mut start = from;
+    // On a stop request, the members in flight end (their solves look at
+    // the flag) and nothing of theirs is written; members.csv, still under
+    // its temporary name, is removed.
+    let interrupted = |out: std::io::BufWriter<std::fs::File>| {
+        drop(out);
+        let _ = std::fs::remove_file(&tmp);
+        crate::cancel::interrupted().message
+    };
     while start < to {
+        if crate::cancel::requested() {
+            return Err(interrupted(out));
+        }
         let end = (start + chunk).min(to);
         let buffers: Vec<Vec<f64>> = (start..end)
             .map(|_| spare.pop().unwrap_or_default())
@@ -548,6 +581,9 @@ pub fn run(model: &Model, opts: &Options, dir: &Path) -> Result<EnsembleState, S
                 })
                 .collect()
         });
+        if crate::cancel::requested() {
+            return Err(interrupted(out));
+        }
         if nv > 0 {
             pool.install(|| {
                 state
@@ -825,45 +861,59 @@ impl EnsembleState {
         let mut it = parts.into_iter();
         let mut acc = it.next().ok_or("nothing to merge")?;
         for p in it {
-            if p.canonical_hash != acc.canonical_hash
-                || p.seed != acc.seed
-                || p.total_members != acc.total_members
-            {
-                return Err(format!(
-                    "shards of different ensembles: scenario {} seed {} members {} against scenario {} seed {} members {}",
-                    &acc.canonical_hash[..12], acc.seed, acc.total_members, &p.canonical_hash[..12], p.seed, p.total_members
-                ));
-            }
-            if p.from != acc.to {
-                return Err(format!(
-                    "members {} to {} are missing or covered twice",
-                    acc.to, p.from
-                ));
-            }
-            acc.to = p.to;
-            acc.accepted += p.accepted;
-            acc.failed += p.failed;
-            for (a, b) in acc.ranges.iter_mut().zip(&p.ranges) {
-                a[0] = a[0].min(b[0]);
-                a[1] = a[1].max(b[1]);
-                a[2] = a[2].min(b[2]);
-                a[3] = a[3].max(b[3]);
-            }
-            for (a, b) in acc.passes.iter_mut().zip(&p.passes) {
-                *a += b;
-            }
-            for (a, b) in acc.sketches.iter_mut().zip(&p.sketches) {
-                a.0.merge(&b.0);
-                a.1.merge(&b.1);
-            }
+            acc.absorb(&p)?;
         }
+        acc.complete()?;
+        Ok(acc)
+    }
+
+    /// Add the shard that follows this state's members.
+    fn absorb(&mut self, p: &EnsembleState) -> Result<(), String> {
+        let acc = self;
+        if p.canonical_hash != acc.canonical_hash
+            || p.seed != acc.seed
+            || p.total_members != acc.total_members
+        {
+            return Err(format!(
+                "shards of different ensembles: scenario {} seed {} members {} against scenario {} seed {} members {}",
+                &acc.canonical_hash[..12], acc.seed, acc.total_members, &p.canonical_hash[..12], p.seed, p.total_members
+            ));
+        }
+        if p.from != acc.to {
+            return Err(format!(
+                "members {} to {} are missing or covered twice",
+                acc.to, p.from
+            ));
+        }
+        acc.to = p.to;
+        acc.accepted += p.accepted;
+        acc.failed += p.failed;
+        for (a, b) in acc.ranges.iter_mut().zip(&p.ranges) {
+            a[0] = a[0].min(b[0]);
+            a[1] = a[1].max(b[1]);
+            a[2] = a[2].min(b[2]);
+            a[3] = a[3].max(b[3]);
+        }
+        for (a, b) in acc.passes.iter_mut().zip(&p.passes) {
+            *a += b;
+        }
+        for (a, b) in acc.sketches.iter_mut().zip(&p.sketches) {
+            a.0.merge(&b.0);
+            a.1.merge(&b.1);
+        }
+        Ok(())
+    }
+
+    /// `Err` unless the merged shards cover every member.
+    fn complete(&self) -> Result<(), String> {
+        let acc = self;
         if acc.from != 0 || acc.to != acc.total_members {
             return Err(format!(
                 "the shards cover members {} to {} of {}",
                 acc.from, acc.to, acc.total_members
             ));
         }
-        Ok(acc)
+        Ok(())
     }
 
     pub fn members(&self) -> u64 {
@@ -1143,21 +1193,35 @@ fn concat_members(dirs: &[PathBuf], to: &Path) -> Result<(), String> {
 /// Merge shard directories into `out`: members.csv concatenated in member
 /// order and the summaries recomputed from the merged state.
 pub fn merge_dirs(dirs: &[PathBuf], out: &Path) -> Result<EnsembleState, String> {
-    let mut states = Vec::new();
-    for d in dirs {
+    let read_state = |d: &Path| -> Result<EnsembleState, String> {
         let path = d.join("ensemble.state");
         let b = crate::fsutil::read_bounded(&path, crate::fsutil::MAX_OUTPUT_BYTES)
             .map_err(|e| format!("{}: {e}", path.display()))?;
-        let s = EnsembleState::from_bytes(&b).map_err(|e| format!("{}: {e}", d.display()))?;
-        states.push((s, d.clone()));
+        EnsembleState::from_bytes(&b).map_err(|e| format!("{}: {e}", d.display()))
+    };
+    // Shards are read one at a time, twice (first for their order), so
+    // that merging holds one shard's sketches beside the sum rather than
+    // every shard's at once.
+    let mut order = Vec::with_capacity(dirs.len());
+    for d in dirs {
+        order.push((read_state(d)?.from, d.clone()));
     }
-    states.sort_by_key(|(s, _)| s.from);
-    let shard_dirs: Vec<PathBuf> = states.iter().map(|(_, d)| d.clone()).collect();
-    let merged = EnsembleState::merge(states.into_iter().map(|(s, _)| s).collect())?;
+    order.sort_by_key(|(from, _)| *from);
+    let mut merged: Option<EnsembleState> = None;
+    for (_, d) in &order {
+        let s = read_state(d)?;
+        match &mut merged {
+            None => merged = Some(s),
+            Some(acc) => acc.absorb(&s)?,
+        }
+    }
+    let merged = merged.ok_or("nothing to merge")?;
+    merged.complete()?;
     std::fs::create_dir_all(out).map_err(|e| format!("cannot create {}: {e}", out.display()))?;
     crate::fsutil::remove_stale_temps(out);
     crate::fsutil::remove_stale_temps(&out.join("series"));
-    concat_members(&shard_dirs, &out.join("members.csv"))?;
+    let shards: Vec<PathBuf> = order.iter().map(|(_, d)| d.clone()).collect();
+    concat_members(&shards, &out.join("members.csv"))?;
     for dir in dirs {
         let series = dir.join("series");
         if series.is_dir() {

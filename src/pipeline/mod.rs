@@ -24,7 +24,7 @@ use crate::diagnostic::Problem;
 use crate::graph::{self, DepGraph, Node};
 use crate::model::{DefKind, Model};
 use crate::report;
-use crate::solve::{self, methods::Stats, Run, StageRun, State, ENGINE_VERSION};
+use crate::solve::{self, methods::Stats, Rows, Run, StageRun, State, ENGINE_VERSION};
 
 /// Whether a stage was taken from the cache or computed, and why.
 #[derive(Debug, Clone, PartialEq)]
@@ -284,10 +284,10 @@ fn write_rows(w: &mut W, rows: &[(f64, Vec<f64>)]) {
     }
 }
 
-/// Report rows: (age, state) pairs, as in `StageRun::rows`.
-type Rows = Vec<(f64, Vec<f64>)>;
+/// (age, state) pairs, as in `StageRun::probes`.
+type Pairs = Vec<(f64, Vec<f64>)>;
 
-fn read_rows(r: &mut R, n: usize, limit: usize) -> Option<Rows> {
+fn read_rows(r: &mut R, n: usize, limit: usize) -> Option<Pairs> {
     let count = r.len(1 << 28)?;
     let mut rows = Vec::with_capacity(count.min(limit / 8));
     for _ in 0..count {
@@ -312,12 +312,19 @@ pub fn rows_key(stage_key: &Key) -> Key {
 
 /// A stage's result as two payloads: the head (row count, probes, end
 /// state, statistics, events) and the report rows.
-fn encode_stage(r: &StageRun) -> (Vec<u8>, Vec<u8>) {
+fn encode_stage(r: &StageRun) -> std::io::Result<(Vec<u8>, Vec<u8>)> {
     let n = r.end.0.len();
-    let mut rows = W(Vec::with_capacity(16 + r.rows.len() * (n + 1) * 8));
+    // The same bytes as `write_rows` of (age, state) pairs.
+    let mut rows = W(Vec::new());
+    rows.0
+        .try_reserve_exact(24 + r.rows.values().len() * 8)
+        .map_err(|e| std::io::Error::new(std::io::ErrorKind::OutOfMemory, e))?;
     rows.u64(PAYLOAD_VERSION);
     rows.u64(n as u64);
-    write_rows(&mut rows, &r.rows);
+    rows.u64(r.rows.len() as u64);
+    for v in r.rows.values() {
+        rows.f64(*v);
+    }
     let mut w = W(Vec::new());
     w.u64(PAYLOAD_VERSION);
     w.u64(n as u64);
@@ -356,13 +363,15 @@ fn encode_stage(r: &StageRun) -> (Vec<u8>, Vec<u8>) {
             None => w.u64(0),
         }
     }
-    (w.0, rows.0)
+    Ok((w.0, rows.0))
 }
 
 /// Store a stage result: its rows first, then its head, so that a head
 /// found is (but for a power cut) a stage whose rows can be read.
 pub fn put_stage(store: &Store, key: &Key, r: &StageRun) -> std::io::Result<()> {
-    let (head, rows) = encode_stage(r);
+    // Memory for the encoded rows may be refused: then the stage is not
+    // cached (the H0702 warning), and the run goes on.
+    let (head, rows) = encode_stage(r)?;
     store.put(&rows_key(key), &rows)?;
     store.put(key, &head)
 }
@@ -421,11 +430,21 @@ fn get_rows(
 /// The report rows of a stage with `n` state components and `count` rows.
 fn decode_rows(bytes: &[u8], n: usize, count: usize) -> Option<Rows> {
     let mut r = R(bytes);
-    if r.u64()? != PAYLOAD_VERSION || r.len(1 << 24)? != n {
+    if r.u64()? != PAYLOAD_VERSION || r.len(1 << 24)? != n || r.len(1 << 28)? != count {
         return None;
     }
-    let rows = read_rows(&mut r, n, bytes.len())?;
-    (rows.len() == count && r.0.is_empty()).then_some(rows)
+    // The rest is exactly the rows' values.
+    let values = count.checked_mul(n + 1)?;
+    if r.0.len() != values.checked_mul(8)? {
+        return None;
+    }
+    let mut data = Vec::new();
+    data.try_reserve_exact(values).ok()?;
+    data.extend(
+        r.0.chunks_exact(8)
+            .map(|b| f64::from_le_bytes([b[0], b[1], b[2], b[3], b[4], b[5], b[6], b[7]])),
+    );
+    Rows::from_values(n + 1, data)
 }
 
 /// The head of a stage result (`rows` left empty), and its number of rows.
@@ -436,7 +455,7 @@ fn decode_stage_head(stage: usize, bytes: &[u8]) -> Option<(StageRun, usize)> {
     }
     let n = r.len(1 << 24)?;
     let row_count = r.len(1 << 28)?;
-    let rows = Vec::new();
+    let rows = Rows::new(n + 1);
     let probes = read_rows(&mut r, n, bytes.len())?;
     let mut end = Vec::with_capacity(n);
     for _ in 0..n {
@@ -745,6 +764,15 @@ pub fn execute(model: &Model, store: Option<&Store>) -> Result<Outcome, Problem>
         .collect();
     let cols: Rc<str> = cols.join(",").into();
     let mut series_csv = report::header_csv(&columns);
+    // The whole series at most, reserved at once: grown by doubling it
+    // would hold up to three times its size while it moves.
+    let bound = wide
+        .report_ages
+        .len()
+        .saturating_mul(report::csv_row_bound(columns.len()));
+    series_csv
+        .try_reserve_exact(bound)
+        .map_err(|_| solve::out_of_memory("series", bound))?;
     let mut series_reused = true;
     let mut rows = 0;
     for (s, sr) in run.stages.iter_mut().enumerate() {
@@ -796,14 +824,14 @@ pub fn execute(model: &Model, store: Option<&Store>) -> Result<Outcome, Problem>
             }
             series_reused = false;
             rows += sr.rows.len();
-            let c = report::stage_series_csv(model, &columns, sr)?;
+            let from = series_csv.len();
+            report::append_stage_series_csv(model, &columns, sr, &mut series_csv)?;
             if let Some(store) = store {
-                let _ = store.put(&key, &c);
+                let _ = store.put(&key, &series_csv[from..]);
             }
-            series_csv.extend_from_slice(&c);
         }
         // The series holds the rows from here on.
-        sr.rows = Vec::new();
+        sr.rows = Rows::new(sr.rows.width());
     }
     if let Some(store) = store {
         // A hint file: rewritten only when it changed.
@@ -843,12 +871,12 @@ mod tests {
 
     #[test]
     fn stage_payload_roundtrips_bit_for_bit() {
+        let mut rows = Rows::new(4);
+        rows.push(4.5e9, &[1.0, f64::MIN_POSITIVE, -0.0]);
+        rows.push(4.4e9, &[2.0, 3.5e21, 1e-300]);
         let r = StageRun {
             stage: 2,
-            rows: vec![
-                (4.5e9, vec![1.0, f64::MIN_POSITIVE, -0.0]),
-                (4.4e9, vec![2.0, 3.5e21, 1e-300]),
-            ],
+            rows,
             probes: vec![(4.45e9, vec![0.5, 1.5, 2.5])],
             end: State(vec![0.1, 0.2, 0.3]),
             stats: Stats {
@@ -871,17 +899,33 @@ mod tests {
             r.rows = decode_rows(rows, r.end.0.len(), count)?;
             Some(r)
         };
-        let (head, rows) = encode_stage(&r);
+        let (head, rows) = encode_stage(&r).unwrap();
         let d = decode_stage(2, &head, &rows).unwrap();
-        assert_eq!(encode_stage(&d), (head.clone(), rows.clone()));
-        assert_eq!(d.rows[0].1[2].to_bits(), (-0.0f64).to_bits());
+        assert_eq!(encode_stage(&d).unwrap(), (head.clone(), rows.clone()));
+        assert_eq!(
+            d.rows.iter().next().unwrap().1[2].to_bits(),
+            (-0.0f64).to_bits()
+        );
+        // The rows payload keeps its layout: count, then age and state per row.
+        let mut pairs = W(Vec::new());
+        pairs.u64(PAYLOAD_VERSION);
+        pairs.u64(3);
+        write_rows(
+            &mut pairs,
+            &[
+                (4.5e9, vec![1.0, f64::MIN_POSITIVE, -0.0]),
+                (4.4e9, vec![2.0, 3.5e21, 1e-300]),
+            ],
+        );
+        assert_eq!(rows, pairs.0);
         assert_eq!(d.stats, r.stats);
         // Truncated payloads are refused, not misread.
         assert!(decode_stage(2, &head[..head.len() - 1], &rows).is_none());
         assert!(decode_stage(2, &head, &rows[..rows.len() - 1]).is_none());
         // Rows of another stage result (another count) are refused too.
         let mut fewer = r.clone();
-        fewer.rows.pop();
-        assert!(decode_stage(2, &head, &encode_stage(&fewer).1).is_none());
+        fewer.rows = Rows::new(4);
+        fewer.rows.push(4.5e9, &[1.0, f64::MIN_POSITIVE, -0.0]);
+        assert!(decode_stage(2, &head, &encode_stage(&fewer).unwrap().1).is_none());
     }
 }

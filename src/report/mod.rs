@@ -191,20 +191,26 @@ pub fn series_with(
     Ok(Series { columns, rows })
 }
 
-/// The series rows of one stage, in display units, appended to `out` row
-/// after row (`columns.len()` values each).
-fn stage_values(
+/// Evaluate the series rows of one stage, in display units, handing each
+/// row (`columns.len()` values) to `row`. `Err` on a non-finite output
+/// (H0605) or when a stop was requested.
+fn stage_rows_each(
     model: &Model,
     columns: &[Column],
     prog: &compile::Program,
     sr: &crate::solve::StageRun,
     params: &[(DefId, f64)],
-    out: &mut Vec<f64>,
+    mut row: impl FnMut(&[f64]) -> Result<(), Problem>,
 ) -> Result<(), Problem> {
     let mut regs = prog.regs_with(params);
-    for (age, y) in &sr.rows {
-        prog.eval(&mut regs, y, model.start_age - age, *age);
-        out.push(columns[0].display.from_internal(*age));
+    let mut values = Vec::with_capacity(columns.len());
+    for (i, (age, y)) in sr.rows.iter().enumerate() {
+        if i.is_multiple_of(crate::cancel::ROWS_PER_CHECK) {
+            crate::cancel::check()?;
+        }
+        prog.eval(&mut regs, y, model.start_age - age, age);
+        values.clear();
+        values.push(columns[0].display.from_internal(age));
         for (k, &(def, reg)) in prog.observed.iter().enumerate() {
             let v = prog.value(&regs, reg);
             if !v.is_finite() {
@@ -221,8 +227,9 @@ fn stage_values(
                 .label(d.expr.span, "evaluates to a non-finite number")
                 .help("nothing non-finite is written to a CSV; guard the expression (e.g. `max(x, 1e-30 kg)` before dividing)"));
             }
-            out.push(columns[k + 1].display.from_internal(v));
+            values.push(columns[k + 1].display.from_internal(v));
         }
+        row(&values)?;
     }
     Ok(())
 }
@@ -237,37 +244,69 @@ pub fn series_values_into(
     params: &[(DefId, f64)],
     out: &mut Vec<f64>,
 ) -> Result<(), Problem> {
+    series_values_of(model, &run.stages, programs, params, out)
+}
+
+/// [`series_values_into`] over the stages given (in order), which may be
+/// borrowed from different places (an ensemble member's own stages after
+/// the stages all members share).
+pub fn series_values_of<'a>(
+    model: &Model,
+    stages: impl IntoIterator<Item = &'a crate::solve::StageRun> + Clone,
+    programs: &ReportPrograms,
+    params: &[(DefId, f64)],
+    out: &mut Vec<f64>,
+) -> Result<(), Problem> {
     let columns = columns(model);
-    let rows: usize = run.stages.iter().map(|sr| sr.rows.len()).sum();
+    let rows: usize = stages.clone().into_iter().map(|sr| sr.rows.len()).sum();
     out.clear();
-    out.reserve(rows * columns.len());
-    for sr in &run.stages {
-        stage_values(
+    let values = rows.saturating_mul(columns.len());
+    out.try_reserve_exact(values)
+        .map_err(|_| crate::solve::out_of_memory("series", values.saturating_mul(8)))?;
+    for sr in stages {
+        stage_rows_each(
             model,
             &columns,
             &programs.outputs[sr.stage],
             sr,
             params,
-            out,
+            |row| {
+                out.extend_from_slice(row);
+                Ok(())
+            },
         )?;
     }
     Ok(())
 }
 
-/// The series CSV lines of one stage's rows (no header): the stage's part
-/// of `series.csv`, which the stage cache keeps per stage.
-pub fn stage_series_csv(
+/// The most bytes a row of `columns` numbers takes as CSV: a shortest
+/// round-trip double is at most 24 characters (`-1.2345678901234567e-308`),
+/// and each is followed by a comma or the line's end.
+pub fn csv_row_bound(columns: usize) -> usize {
+    columns.saturating_mul(25)
+}
+
+/// Append the series CSV lines of one stage's rows (no header) to `out`:
+/// the stage's part of `series.csv`, which the stage cache keeps per stage.
+/// Written row by row, with no table of values in between; `out` grows by
+/// at most [`csv_row_bound`] bytes a row, reserved first so that a lack of
+/// memory is the H0607 error rather than an abort.
+pub fn append_stage_series_csv(
     model: &Model,
     columns: &[Column],
     sr: &crate::solve::StageRun,
-) -> Result<Vec<u8>, Problem> {
+    out: &mut Vec<u8>,
+) -> Result<(), Problem> {
     let outputs: Vec<DefId> = columns.iter().filter_map(|c| c.def).collect();
     let prog = compile_outputs(model, sr.stage, &outputs, &[]);
-    let mut values = Vec::with_capacity(sr.rows.len() * columns.len());
-    stage_values(model, columns, &prog, sr, &[], &mut values)?;
-    let mut out = Vec::with_capacity(values.len() * 20);
-    rows_csv(values.chunks(columns.len().max(1)), &mut out);
-    Ok(out)
+    let bound = sr.rows.len().saturating_mul(csv_row_bound(columns.len()));
+    out.try_reserve(bound)
+        .map_err(|_| crate::solve::out_of_memory("series", bound))?;
+    let mut b = ryu::Buffer::new();
+    stage_rows_each(model, columns, &prog, sr, &[], |row| {
+        push_row(out, &mut b, row);
+        Ok(())
+    })
 }
 
 /// The header line of the series CSV: `name [unit]` per column.
@@ -289,14 +328,18 @@ pub fn header_csv(columns: &[Column]) -> Vec<u8> {
 pub fn rows_csv<'a>(rows: impl IntoIterator<Item = &'a [f64]>, out: &mut Vec<u8>) {
     let mut b = ryu::Buffer::new();
     for row in rows {
-        for (k, v) in row.iter().enumerate() {
-            if k > 0 {
-                out.push(b',');
-            }
-            push_num(out, &mut b, *v);
-        }
-        out.push(b'\n');
+        push_row(out, &mut b, row);
     }
+}
+
+fn push_row(out: &mut Vec<u8>, b: &mut ryu::Buffer, row: &[f64]) {
+    for (k, v) in row.iter().enumerate() {
+        if k > 0 {
+            out.push(b',');
+        }
+        push_num(out, b, *v);
+    }
+    out.push(b'\n');
 }
 
 fn push_num(out: &mut Vec<u8>, b: &mut ryu::Buffer, v: f64) {

@@ -8,6 +8,7 @@ pub mod methods;
 
 use std::time::{Duration, Instant};
 
+use crate::cancel;
 use crate::compile::{self, Program, Regs, Wants};
 use crate::diagnostic::Problem;
 use crate::model::{DefId, DefKind, Endpoint, Method, Model};
@@ -33,12 +34,94 @@ impl State {
     }
 }
 
+/// Report rows, flat: each row is its age, then the state at that age
+/// (`width` values in all). One buffer rather than a vector per row: a
+/// vector per row cost about 40 bytes of bookkeeping beside the row's own
+/// values.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Rows {
+    /// At least 1.
+    width: usize,
+    data: Vec<f64>,
+}
+
+impl Default for Rows {
+    fn default() -> Rows {
+        Rows::new(1)
+    }
+}
+
+impl Rows {
+    /// No rows, each of `width` values (the age and the state).
+    pub fn new(width: usize) -> Rows {
+        Rows {
+            width: width.max(1),
+            data: Vec::new(),
+        }
+    }
+
+    /// Room for `rows` rows, or the H0607 error when memory cannot hold
+    /// them (an allocation failure is a diagnostic, never an abort).
+    pub fn try_reserve(&mut self, rows: usize) -> Result<(), Problem> {
+        let values = rows.saturating_mul(self.width);
+        self.data
+            .try_reserve_exact(values)
+            .map_err(|_| out_of_memory("report rows", values.saturating_mul(8)))
+    }
+
+    pub fn push(&mut self, age: f64, y: &[f64]) {
+        debug_assert_eq!(y.len() + 1, self.width);
+        self.data.push(age);
+        self.data.extend_from_slice(y);
+    }
+
+    /// Values per row: the age and the state.
+    pub fn width(&self) -> usize {
+        self.width
+    }
+
+    pub fn len(&self) -> usize {
+        self.data.len() / self.width
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.data.is_empty()
+    }
+
+    /// The rows as (age, state).
+    pub fn iter(&self) -> impl Iterator<Item = (f64, &[f64])> {
+        self.data.chunks_exact(self.width).map(|r| (r[0], &r[1..]))
+    }
+
+    /// Every value, row after row.
+    pub fn values(&self) -> &[f64] {
+        &self.data
+    }
+
+    /// Rows from values laid out as [`Rows::values`] gives them.
+    pub fn from_values(width: usize, data: Vec<f64>) -> Option<Rows> {
+        (width > 0 && data.len().is_multiple_of(width)).then_some(Rows { width, data })
+    }
+}
+
+/// The H0607 error: `what` needed `bytes` more than memory could give.
+pub fn out_of_memory(what: &str, bytes: usize) -> Problem {
+    Problem::error(
+        "H0607",
+        format!(
+            "not enough memory for the {what}: {} MiB could not be allocated",
+            bytes.div_ceil(1 << 20)
+        ),
+    )
+    .help("choose a coarser `report every`, or free memory for the run")
+}
+
 /// The outcome of one stage.
 #[derive(Debug, Clone)]
 pub struct StageRun {
     pub stage: usize,
-    /// Report rows produced by this stage: (age, state at that age).
-    pub rows: Vec<(f64, Vec<f64>)>,
+    /// Report rows produced by this stage.
+    pub rows: Rows,
     /// States at the ages of expectations that fall in this stage.
     pub probes: Vec<(f64, Vec<f64>)>,
     pub end: State,
@@ -51,6 +134,24 @@ pub struct StageRun {
     /// became true within this stage, if it did.
     pub events: Vec<Option<f64>>,
     pub wall: Duration,
+}
+
+impl StageRun {
+    /// A copy of everything but the report rows (which are most of its
+    /// memory), for runs that share a stage without copying its rows.
+    pub fn without_rows(&self) -> StageRun {
+        StageRun {
+            stage: self.stage,
+            rows: Rows::new(self.rows.width()),
+            probes: self.probes.clone(),
+            end: self.end.clone(),
+            stats: self.stats.clone(),
+            method: self.method.clone(),
+            closure_error: self.closure_error,
+            events: self.events.clone(),
+            wall: self.wall,
+        }
+    }
 }
 
 /// The whole run.
@@ -157,7 +258,7 @@ struct Obs<'a> {
     start_age: f64,
     rows: Vec<f64>,
     next_row: usize,
-    out: Vec<(f64, Vec<f64>)>,
+    out: Rows,
     probe_ages: Vec<f64>,
     next_probe: usize,
     probes: Vec<(f64, Vec<f64>)>,
@@ -167,6 +268,8 @@ struct Obs<'a> {
     floor: f64,
     negative: Option<(usize, f64, f64)>,
     events: Option<EventWatch<'a>>,
+    /// Set when the integration stopped because a stop was requested.
+    interrupted: bool,
 }
 
 /// Event conditions watched over a stage: their program, registers, the
@@ -188,35 +291,43 @@ struct Step<'a, 'd> {
 }
 
 impl Step<'_, '_> {
-    /// Append the state at each age of `ages[*next..]` that this step
+    /// Hand `out` the state at each age of `ages[*next..]` that this step
     /// reaches: the step's end state exactly at its end, the interpolant
-    /// inside it.
+    /// inside it. `Err` when a stop was requested (looked at every
+    /// [`cancel::ROWS_PER_CHECK`] rows: one step may span millions of rows).
     fn capture(
         &self,
         ages: &[f64],
         next: &mut usize,
-        out: &mut Vec<(f64, Vec<f64>)>,
         scratch: &mut [f64],
-    ) {
+        mut out: impl FnMut(f64, &[f64]),
+    ) -> Result<(), Stop> {
         while let Some(&age) = ages.get(*next) {
             let t = self.start_age - age;
             if t > self.t1 + 1e-9 * (self.t1 - self.t0).abs() {
                 break;
             }
-            let y = if (t - self.t1).abs() <= 1e-12 * self.t1.abs().max(1.0) {
-                self.y1.to_vec()
+            if (t - self.t1).abs() <= 1e-12 * self.t1.abs().max(1.0) {
+                out(age, self.y1);
             } else {
                 self.dense.eval(t, scratch);
-                scratch.to_vec()
-            };
-            out.push((age, y));
+                out(age, scratch);
+            }
             *next += 1;
+            if (*next).is_multiple_of(cancel::ROWS_PER_CHECK) && cancel::requested() {
+                return Err(Stop);
+            }
         }
+        Ok(())
     }
 }
 
 impl Observer for Obs<'_> {
     fn accepted(&mut self, t0: f64, t1: f64, y1: &[f64], dense: &Dense) -> Result<(), Stop> {
+        if cancel::requested() {
+            self.interrupted = true;
+            return Err(Stop);
+        }
         let step = Step {
             start_age: self.start_age,
             t0,
@@ -224,18 +335,27 @@ impl Observer for Obs<'_> {
             y1,
             dense,
         };
-        step.capture(
-            &self.probe_ages,
-            &mut self.next_probe,
-            &mut self.probes,
-            &mut self.scratch,
-        );
-        step.capture(
-            &self.rows,
-            &mut self.next_row,
-            &mut self.out,
-            &mut self.scratch,
-        );
+        let probes = &mut self.probes;
+        let captured = step
+            .capture(
+                &self.probe_ages,
+                &mut self.next_probe,
+                &mut self.scratch,
+                |age, y| probes.push((age, y.to_vec())),
+            )
+            .and_then(|()| {
+                let out = &mut self.out;
+                step.capture(
+                    &self.rows,
+                    &mut self.next_row,
+                    &mut self.scratch,
+                    |age, y| out.push(age, y),
+                )
+            });
+        if captured.is_err() {
+            self.interrupted = true;
+            return Err(Stop);
+        }
         if let Some(i) = y1[..self.n_res].iter().position(|&v| v < self.floor) {
             // Locate where it crossed zero on the interpolant.
             let (mut lo, mut hi) = (t0, t1);
@@ -444,6 +564,7 @@ pub fn run_stage(
     start: &State,
     events_done: &[bool],
 ) -> Result<StageRun, Problem> {
+    cancel::check()?;
     let clock = Instant::now();
     let st = &model.stages[s];
     let prog = &progs.rhs;
@@ -463,6 +584,11 @@ pub fn run_stage(
     let mut y = start.0.clone();
     let ages = report_ages(model);
     let rows = stage_rows(model, s, &ages);
+    drop(ages);
+    // All of the stage's rows, allocated once: growing a buffer by
+    // doubling would hold up to three times the rows while it moves.
+    let mut out = Rows::new(n + 1);
+    out.try_reserve(rows.len())?;
     let probe_ages = stage_rows(model, s, &probe_ages(model));
     // Events already true at the very start of the run count at the start.
     let mut first: Vec<Option<f64>> = vec![None; event_prog.observed.len()];
@@ -481,7 +607,7 @@ pub fn run_stage(
         start_age: model.start_age,
         rows,
         next_row: 0,
-        out: Vec::new(),
+        out,
         probe_ages,
         next_probe: 0,
         probes: Vec::new(),
@@ -495,10 +621,11 @@ pub fn run_stage(
             prev,
             first,
         }),
+        interrupted: false,
     };
     // The first row of the run is the initial state itself.
     if s == 0 && obs.rows.first() == Some(&st.start_age) {
-        obs.out.push((st.start_age, y.clone()));
+        obs.out.push(st.start_age, &y);
         obs.next_row = 1;
     }
     if s == 0 && obs.probe_ages.first() == Some(&st.start_age) {
@@ -577,6 +704,9 @@ fn failure_problem(
     y: &[f64],
 ) -> Problem {
     let stage = &model.stages[s].name;
+    if obs.interrupted {
+        return cancel::interrupted();
+    }
     if let Some((i, age, v)) = obs.negative {
         let def = &model.defs[prog.state_defs[i]];
         return Problem::error(
@@ -846,5 +976,36 @@ pub fn method_word(m: Method) -> &'static str {
         Method::Auto => "auto",
         Method::Explicit => "explicit",
         Method::Implicit => "implicit",
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn rows_that_cannot_be_allocated_are_a_diagnostic() {
+        // More values than an address space holds: the allocator refuses,
+        // and the refusal is H0607, not an abort.
+        let mut rows = Rows::new(6);
+        let p = rows.try_reserve(usize::MAX / 4).unwrap_err();
+        assert_eq!(p.code, "H0607");
+        assert!(
+            p.message
+                .starts_with("not enough memory for the report rows"),
+            "{}",
+            p.message
+        );
+        assert!(p.help.as_deref().unwrap().contains("report every"));
+        // What can be allocated is, and rows read back as pushed.
+        rows.try_reserve(2).unwrap();
+        rows.push(4.5e9, &[1.0, 2.0, 3.0, 4.0, 5.0]);
+        rows.push(4.4e9, &[-0.0, 2.5, 3.5, 4.5, 5.5]);
+        let back: Vec<(f64, Vec<f64>)> = rows.iter().map(|(a, y)| (a, y.to_vec())).collect();
+        assert_eq!(back[1], (4.4e9, vec![-0.0, 2.5, 3.5, 4.5, 5.5]));
+        assert_eq!((rows.len(), rows.width()), (2, 6));
+        assert!(Rows::from_values(6, vec![0.0; 7]).is_none());
+        assert!(Rows::from_values(0, Vec::new()).is_none());
+        assert_eq!(Rows::default().len(), 0);
     }
 }
