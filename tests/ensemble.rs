@@ -423,3 +423,42 @@ fn a_member_whose_parameter_is_not_finite_stops_the_run_without_a_members_file()
     let left: Vec<_> = std::fs::read_dir(&out).unwrap().collect();
     assert!(left.is_empty(), "{left:?}");
 }
+
+#[test]
+fn a_file_without_an_ensemble_block_is_held_to_the_ensemble_memory_budget() {
+    // Its check counts a single run (a million rows of a small model fit);
+    // as an ensemble the quantile sketches do not, and before this was
+    // checked the run took more than 2 GiB for four members.
+    let t = tempfile::tempdir().unwrap();
+    let d = t.path();
+    std::fs::write(
+        d.join("s.hadal"),
+        "scenario fine \"a fine cadence\"\nspan 1 Ga to 0 Ga\nreport every 1 kyr\n\
+         reservoir a = 1e21 kg\nreservoir b = 1e20 kg\nflux ab: a -> b = 0.5 / 1 Gyr * a\n\
+         stage all from 1 Ga to 0 Ga\n",
+    )
+    .unwrap();
+    let run = |verb: &[&str]| {
+        Command::new(env!("CARGO_BIN_EXE_hadal"))
+            .current_dir(d)
+            .args(verb)
+            .env("NO_COLOR", "1")
+            .output()
+            .unwrap()
+    };
+    let checked = run(&["check", "s.hadal"]);
+    assert!(checked.status.success(), "{:?}", checked);
+    let o = run(&[
+        "ensemble",
+        "s.hadal",
+        "--members",
+        "4",
+        "--no-cache",
+        "--out",
+        "out",
+    ]);
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert_eq!(o.status.code(), Some(1), "{err}");
+    assert!(err.contains("H0412") && err.contains("coarser"), "{err}");
+    assert!(!d.join("out/members.csv").exists());
+}

@@ -138,7 +138,26 @@ fn mib(bytes: u64) -> u64 {
 
 /// H0412 when the report would need more memory than the budget.
 pub(crate) fn report_memory(model: &Model, report_span: Span) -> Option<Problem> {
-    let size = ReportSize::of(model);
+    let (message, help) = over_budget(ReportSize::of(model))?;
+    Some(
+        Problem::error("H0412", message)
+            .label(report_span, "cadence too fine for the span and the columns")
+            .help(help),
+    )
+}
+
+/// What `hadal ensemble` checks before its first member: the scenario's
+/// report counted as an ensemble's, with quantile sketches, even when the
+/// file has no `ensemble { }` block (its check then counted a single run).
+/// The H0412 message and its help, if the estimate passes the budget.
+pub fn ensemble_over_budget(model: &Model) -> Option<(String, String)> {
+    over_budget(ReportSize {
+        ensemble: true,
+        ..ReportSize::of(model)
+    })
+}
+
+fn over_budget(size: ReportSize) -> Option<(String, String)> {
     let bytes = size.bytes();
     if bytes <= MEMORY_BUDGET {
         return None;
@@ -148,22 +167,18 @@ pub(crate) fn report_memory(model: &Model, report_span: Span) -> Option<Problem>
     } else {
         "in memory"
     };
-    Some(
-        Problem::error(
-            "H0412",
-            format!(
-                "the report would have {} rows of {} values, about {} MiB {what}, more than the budget of {} MiB",
-                size.rows,
-                size.columns,
-                mib(bytes),
-                mib(MEMORY_BUDGET)
-            ),
-        )
-        .label(report_span, "cadence too fine for the span and the columns")
-        .help(format!(
+    Some((
+        format!(
+            "the report would have {} rows of {} values, about {} MiB {what}, more than the budget of {} MiB",
+            size.rows,
+            size.columns,
+            mib(bytes),
+            mib(MEMORY_BUDGET)
+        ),
+        format!(
             "choose a coarser `report every`: at most {} rows of {} values fit",
             size.rows_in_budget(),
             size.columns
-        )),
-    )
+        ),
+    ))
 }

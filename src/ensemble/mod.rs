@@ -408,6 +408,9 @@ pub fn run(model: &Model, opts: &Options, dir: &Path) -> Result<EnsembleState, S
             vary: Vec::new(),
             span: Default::default(),
         });
+    if let Some((message, help)) = crate::check::budget::ensemble_over_budget(model) {
+        return Err(format!("H0412 {message}\nhelp: {help}"));
+    }
     let seed = opts.seed.unwrap_or(spec.seed);
     let (total, _) = design(model, opts.members);
     if total > crate::check::MAX_MEMBERS {
