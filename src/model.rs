@@ -367,15 +367,9 @@ pub enum ExprKind {
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum Builtin {
-    Exp,
-    Ln,
-    Log10,
-    Sqrt,
-    Abs,
-    Min,
-    Max,
-    Clamp,
-    Smoothstep,
+    /// A function of numbers: a row of `builtins::BUILTINS`, which holds its
+    /// name, dimension rule, kernel and compilation.
+    Num(crate::builtins::Func),
     Decay,
     Capacity(DefId),
     Fill(DefId),
@@ -417,7 +411,7 @@ impl Expr {
                     | Builtin::SeaLevelIsostatic(t)
                     | Builtin::LandFraction(t)
                     | Builtin::BasinVolume(t) => out.push(Ref::Table(*t)),
-                    _ => {}
+                    Builtin::Num(_) | Builtin::Decay => {}
                 }
                 for a in args {
                     a.refs(out);
@@ -545,15 +539,7 @@ impl Model {
 
     pub fn builtin_name(&self, f: Builtin) -> String {
         match f {
-            Builtin::Exp => "exp".into(),
-            Builtin::Ln => "ln".into(),
-            Builtin::Log10 => "log10".into(),
-            Builtin::Sqrt => "sqrt".into(),
-            Builtin::Abs => "abs".into(),
-            Builtin::Min => "min".into(),
-            Builtin::Max => "max".into(),
-            Builtin::Clamp => "clamp".into(),
-            Builtin::Smoothstep => "smoothstep".into(),
+            Builtin::Num(f) => f.name().into(),
             Builtin::Decay => "decay".into(),
             Builtin::Capacity(r) => format!("capacity {}", self.defs[r].name),
             Builtin::Fill(r) => format!("fill {}", self.defs[r].name),

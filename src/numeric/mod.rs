@@ -70,6 +70,34 @@ pub fn pow(a: f64, b: f64) -> f64 {
     }
 }
 
+/// The natural logarithm.
+#[inline]
+pub fn ln(x: f64) -> f64 {
+    libm::log(x)
+}
+
+#[inline]
+pub fn log10(x: f64) -> f64 {
+    libm::log10(x)
+}
+
+#[inline]
+pub fn sqrt(x: f64) -> f64 {
+    libm::sqrt(x)
+}
+
+#[inline]
+pub fn abs(x: f64) -> f64 {
+    x.abs()
+}
+
+/// `x` limited to `[lo, hi]`: `min(max(x, lo), hi)` by the rules of
+/// [`max`] and [`min`] (so a NaN `x` gives `lo`, and `lo > hi` gives `hi`).
+#[inline]
+pub fn clamp(x: f64, lo: f64, hi: f64) -> f64 {
+    min(max(x, lo), hi)
+}
+
 /// 0 below `e0`, 1 above `e1`, the cubic Hermite step between.
 #[inline]
 pub fn smoothstep(x: f64, e0: f64, e1: f64) -> f64 {
