@@ -619,4 +619,57 @@ pub(crate) mod tests {
         table.sort();
         assert_eq!(sorted, table, "docs/language.md against src/builtins.rs");
     }
+
+    /// The hypsometry forms of constant arguments fold while checking to
+    /// the bits compiled programs compute (they once did not fold at all,
+    /// so a constant that used one was "not a finite number").
+    #[test]
+    fn hypsometry_constants_fold_when_checking_as_when_compiling() {
+        let dir = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("scenarios");
+        let text = scenario(
+            "table hyps = \"shared/hypsometry_mirrowen.csv\" (m, m^2)\n\
+             const v = 1.2e21 kg / 1027 kg/m^3\n\
+             const s = sea_level(hyps, v)\n\
+             const si = sea_level_isostatic(hyps, v, 1027 kg/m^3, 3300 kg/m^3)\n\
+             const lf = land_fraction(hyps, v)\n\
+             const bv = basin_volume(hyps, 4000 m)\n\
+             flux f: ocean -> mantle = (s + si) / 1 m * lf * bv / 1 m^3 * 1 kg / 1 Gyr",
+        );
+        let checked = check_text(
+            "t.hadal",
+            &dir.join("t.hadal"),
+            &text,
+            &dir,
+            &Default::default(),
+        );
+        let Ok(checked) = checked else {
+            panic!("checks")
+        };
+        let model = checked.model;
+        let names = ["s", "si", "lf", "bv"];
+        let ids: Vec<usize> = names
+            .iter()
+            .map(|n| model.find(n).expect("defined"))
+            .collect();
+        let p = compile(
+            &model,
+            Some(0),
+            &Wants {
+                rhs: false,
+                defs: ids.clone(),
+                exprs: Vec::new(),
+            },
+        );
+        let regs = p.regs();
+        for (name, &d) in names.iter().zip(&ids) {
+            let folded = crate::check::eval_const(&model, &model.defs[d].expr);
+            let reg = p.observed.iter().find(|o| o.0 == d).expect("observed").1;
+            let compiled = p.value(&regs, reg);
+            assert!(
+                compiled.is_finite() && compiled != 0.0,
+                "{name} = {compiled}"
+            );
+            assert_eq!(folded.map(f64::to_bits), Some(compiled.to_bits()), "{name}");
+        }
+    }
 }

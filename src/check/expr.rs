@@ -4,6 +4,7 @@ use super::Checker;
 use crate::builtins::{self, Dims, Form, HypsRead, ReservoirRead};
 use crate::diagnostic::{nearest, Problem};
 use crate::model::{Builtin, DefId, DefKind, Expr, ExprKind, Model};
+use crate::numeric::hyps::Hypsometry;
 use crate::span::Span;
 use crate::syntax::{self, BinOp, UnOp, UnitText};
 use crate::units::{self, Dim, UnitError};
@@ -1115,16 +1116,26 @@ impl<'m> ConstEval<'m> {
                     | Builtin::Capacity(_)
                     | Builtin::Fill(_)
                     | Builtin::Excess(_) => return None,
-                    // Not folded while checking (a hypsometry is built when
-                    // compiling); the compiler folds them.
-                    Builtin::SeaLevel(_)
-                    | Builtin::SeaLevelIsostatic(_)
-                    | Builtin::LandFraction(_)
-                    | Builtin::BasinVolume(_) => return None,
+                    // As compiled programs compute them (`compile::exec`).
+                    Builtin::SeaLevel(t) => hypsometry(&tables[*t])?.sea_level(v[0]),
+                    Builtin::SeaLevelIsostatic(t) => {
+                        hypsometry(&tables[*t])?.sea_level_isostatic(v[0], v[1], v[2])
+                    }
+                    Builtin::LandFraction(t) => hypsometry(&tables[*t])?.land_fraction(v[0]),
+                    Builtin::BasinVolume(t) => hypsometry(&tables[*t])?.basin_volume(v[0]),
                 }
             }
         })
     }
+}
+
+/// The hypsometry of a table, for folding; `None` for a table that failed
+/// to load (already reported), as for a table lookup.
+fn hypsometry(t: &crate::model::Table) -> Option<Hypsometry> {
+    if t.xs.is_empty() {
+        return None;
+    }
+    Some(Hypsometry::new(&t.xs, &t.ys))
 }
 
 fn bool_num(b: bool) -> f64 {

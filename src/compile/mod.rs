@@ -5,12 +5,12 @@
 //! and no hash maps; evaluating one allocates nothing. Names survive only in
 //! side tables used to word diagnostics.
 
-pub mod hyps;
 mod native;
 
 use crate::builtins::{Func, Kernel, Lowering};
 use crate::model::{Builtin, DefId, DefKind, Endpoint, Expr, ExprKind, Model};
 use crate::numeric;
+pub use crate::numeric::hyps;
 use crate::span::Span;
 use crate::syntax::BinOp;
 use hyps::Hypsometry;
@@ -531,8 +531,10 @@ unsafe fn exec(p: &Kernels, r: &mut [f64], ins: Ins) {
         }
         Ins::SeaLevel(d, h, v) => g!(d) = p.hyps.get_unchecked(h as usize).sea_level(g!(v)),
         Ins::SeaLevelIsostatic(d, h, v, rw, rm) => {
-            let f = (g!(rm) - g!(rw)) / g!(rm);
-            g!(d) = p.hyps.get_unchecked(h as usize).sea_level(g!(v) * f);
+            g!(d) = p
+                .hyps
+                .get_unchecked(h as usize)
+                .sea_level_isostatic(g!(v), g!(rw), g!(rm));
         }
         Ins::LandFraction(d, h, v) => g!(d) = p.hyps.get_unchecked(h as usize).land_fraction(g!(v)),
         Ins::BasinVolume(d, h, z) => g!(d) = p.hyps.get_unchecked(h as usize).basin_volume(g!(z)),

@@ -4,6 +4,7 @@
 //! platform.
 
 pub mod elementary;
+pub mod hyps;
 mod tables;
 pub mod truncation;
 
