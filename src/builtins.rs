@@ -129,6 +129,15 @@ pub enum ReservoirRead {
 }
 
 impl ReservoirRead {
+    /// Its name, which is also its row's (and its canonical text's).
+    pub const fn name(self) -> &'static str {
+        match self {
+            ReservoirRead::Capacity => "capacity",
+            ReservoirRead::Fill => "fill",
+            ReservoirRead::Excess => "excess",
+        }
+    }
+
     pub fn result(self) -> Dim {
         match self {
             ReservoirRead::Capacity | ReservoirRead::Excess => Dim::MASS,
@@ -148,6 +157,16 @@ pub enum HypsRead {
 }
 
 impl HypsRead {
+    /// Its name, which is also its row's (and its canonical text's).
+    pub const fn name(self) -> &'static str {
+        match self {
+            HypsRead::SeaLevel => "sea_level",
+            HypsRead::SeaLevelIsostatic => "sea_level_isostatic",
+            HypsRead::LandFraction => "land_fraction",
+            HypsRead::BasinVolume => "basin_volume",
+        }
+    }
+
     /// The dimension of the argument after the table's name.
     pub fn argument(self) -> Dim {
         match self {
@@ -220,8 +239,21 @@ const fn num(name: &'static str, kernel: Kernel, dims: Dims, lowering: Lowering)
     }
 }
 
-const fn special(name: &'static str, form: Form) -> Spec {
-    Spec { name, form }
+/// The name of `decay`, its row's and its canonical text's.
+pub const DECAY: &str = "decay";
+
+const fn reservoir(read: ReservoirRead) -> Spec {
+    Spec {
+        name: read.name(),
+        form: Form::Reservoir(read),
+    }
+}
+
+const fn hypsometry(read: HypsRead) -> Spec {
+    Spec {
+        name: read.name(),
+        form: Form::Hypsometry(read),
+    }
 }
 
 /// Every built-in, in the order error messages list them (and the fuzzer
@@ -281,17 +313,17 @@ pub static BUILTINS: &[Spec] = &[
         Dims::AlikeToNumber,
         Lowering::Call,
     ),
-    special("decay", Form::Decay),
-    special("capacity", Form::Reservoir(ReservoirRead::Capacity)),
-    special("fill", Form::Reservoir(ReservoirRead::Fill)),
-    special("excess", Form::Reservoir(ReservoirRead::Excess)),
-    special("sea_level", Form::Hypsometry(HypsRead::SeaLevel)),
-    special(
-        "sea_level_isostatic",
-        Form::Hypsometry(HypsRead::SeaLevelIsostatic),
-    ),
-    special("land_fraction", Form::Hypsometry(HypsRead::LandFraction)),
-    special("basin_volume", Form::Hypsometry(HypsRead::BasinVolume)),
+    Spec {
+        name: DECAY,
+        form: Form::Decay,
+    },
+    reservoir(ReservoirRead::Capacity),
+    reservoir(ReservoirRead::Fill),
+    reservoir(ReservoirRead::Excess),
+    hypsometry(HypsRead::SeaLevel),
+    hypsometry(HypsRead::SeaLevelIsostatic),
+    hypsometry(HypsRead::LandFraction),
+    hypsometry(HypsRead::BasinVolume),
     // A throwaway function that exists only in the library's unit tests,
     // added the way DEVELOPERS.md says (see `tests::a_throwaway_builtin`).
     #[cfg(test)]

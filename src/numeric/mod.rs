@@ -147,6 +147,17 @@ mod tests {
     }
 
     #[test]
+    fn clamp_inside_outside_and_at_the_edges() {
+        assert_eq!(clamp(0.5, 0.0, 1.0), 0.5);
+        assert_eq!(clamp(-2.0, 0.0, 1.0), 0.0);
+        assert_eq!(clamp(7.0, 0.0, 1.0), 1.0);
+        // As its comment says: a NaN gives the lower edge, crossed edges
+        // the upper one.
+        assert_eq!(clamp(f64::NAN, 0.25, 1.0), 0.25);
+        assert_eq!(clamp(0.5, 2.0, 1.0), 1.0);
+    }
+
+    #[test]
     fn smoothstep_ends_and_middle() {
         assert_eq!(smoothstep(-1.0, 0.0, 2.0), 0.0);
         assert_eq!(smoothstep(1.0, 0.0, 2.0), 0.5);
