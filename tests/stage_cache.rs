@@ -454,3 +454,21 @@ fn a_damaged_shared_stage_warns_under_ensemble_as_under_run() {
     assert_eq!(s, all("reused"));
     assert!(!stderr.contains("H07"), "{stderr}");
 }
+
+/// A cache that cannot be written costs the reuse, not the run, and says
+/// so once: every write of a run goes to the same folder.
+#[test]
+fn an_unwritable_cache_is_one_warning_per_run() {
+    let env = Env::new();
+    let f = env.write(SCENARIO);
+    let (_, a, _) = env.run(&f, "o1", &["--no-cache"]);
+    // The store's layout folder is a file: no entry can be read or written.
+    std::fs::create_dir_all(env.cache()).unwrap();
+    std::fs::write(env.cache().join("v2"), b"").unwrap();
+    let (s, b, stderr) = env.run(&f, "o2", &[]);
+    assert_eq!(s, all("computed"));
+    assert_eq!(a, b);
+    assert_eq!(stderr.matches("H0702").count(), 1, "{stderr}");
+    let plain: String = stderr.split_whitespace().collect::<Vec<_>>().join(" ");
+    assert!(plain.contains("help: check the cache folder"), "{stderr}");
+}

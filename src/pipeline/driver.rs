@@ -470,6 +470,7 @@ fn write_failed(warnings: &mut Vec<Problem>, warned: &mut bool, store: &Store, e
                 "could not write to the cache at {}: {e}",
                 store.root().display()
             ),
-        ));
+        )
+        .help("check the cache folder (`HADAL_CACHE`, default `.hadal-cache`) and the free space, or run with `--no-cache`"));
     }
 }
