@@ -339,12 +339,9 @@ fn solve_member(
     mut series: Vec<f64>,
 ) -> Result<MemberOutput, Problem> {
     // Varied parameters may set the initial inventories.
-    let start = if shared.is_empty() {
+    let mut walk = Walk::after(shared, progs.event_defs.len(), || {
         solve::initial_state(&with_params(model, params))
-    } else {
-        solve::State(Vec::new())
-    };
-    let mut walk = Walk::after(shared, start, progs.event_defs.len());
+    });
     Driver::member(model, &progs.stages, params).walk(&mut walk, from_stage..model.stages.len())?;
     let run = walk.into_run(progs.event_defs.clone());
     report::series_values_of(

@@ -43,15 +43,16 @@ impl Walk {
 
     /// After `shared`, stages walked once for many runs (an ensemble's
     /// stages that no varied parameter reaches): their heads only, since
-    /// their rows are read where they are. `start` is the state when
-    /// nothing is shared; otherwise the last shared stage's end.
-    pub fn after(shared: &[StageRun], start: State, n_events: usize) -> Walk {
+    /// their rows are read where they are, not copied for every run.
+    /// `start` gives the state when nothing is shared; otherwise the walk
+    /// goes on from the last shared stage's end.
+    pub fn after(shared: &[StageRun], n_events: usize, start: impl FnOnce() -> State) -> Walk {
         let mut events = vec![None; n_events];
         for sr in shared {
             first_seen(&mut events, &sr.events);
         }
         Walk {
-            state: shared.last().map_or(start, |sr| sr.end.clone()),
+            state: shared.last().map_or_else(start, |sr| sr.end.clone()),
             events,
             stages: shared.iter().map(StageRun::without_rows).collect(),
         }
