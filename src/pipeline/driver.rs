@@ -475,3 +475,96 @@ fn write_failed(warnings: &mut Vec<Problem>, warned: &mut bool, store: &Store, e
         .help("check the cache folder (`HADAL_CACHE`, default `.hadal-cache`) and the free space, or run with `--no-cache`"));
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use std::path::Path;
+
+    const TEXT: &str = "\
+scenario walks \"three stages, an event\"
+span 3 Ga to 0 Ga
+report every 250 Myr
+param k = 0.5 / 1 Gyr
+reservoir a = 1e21 kg
+reservoir b = 1e20 kg
+flux ab: a -> b = k * a
+stage one from 3 Ga to 2 Ga
+stage two from 2 Ga to 1 Ga
+stage three from 1 Ga to 0 Ga {
+  flux back: b -> a = 0.1 / 1 Gyr * b
+}
+event half = b > a
+";
+
+    fn bits(run: &Run) -> Vec<(Vec<u64>, Vec<u64>, Vec<Option<u64>>)> {
+        run.stages
+            .iter()
+            .map(|r| {
+                (
+                    r.rows.values().iter().map(|v| v.to_bits()).collect(),
+                    r.end.0.iter().map(|v| v.to_bits()).collect(),
+                    r.events.iter().map(|e| e.map(f64::to_bits)).collect(),
+                )
+            })
+            .collect()
+    }
+
+    /// The walks of a single run, of `solve::solve` and of an ensemble
+    /// member (programs compiled once, resumed after shared stages) give
+    /// the same bits, stage by stage, and see each event once.
+    #[test]
+    fn every_kind_of_walk_gives_the_same_stages() {
+        let dir = Path::new(".");
+        let model = crate::check::check_text(
+            "s.hadal",
+            &dir.join("s.hadal"),
+            TEXT,
+            dir,
+            &Default::default(),
+        )
+        .unwrap_or_else(|_| panic!("checks"))
+        .model;
+        let n = model.stages.len();
+        let alone = solve_all(&model).unwrap();
+        assert_eq!(alone.stages.len(), n);
+        let half = alone.events[0].expect("b passes a");
+        assert_eq!(
+            alone
+                .stages
+                .iter()
+                .filter(|r| r.events[0].is_some())
+                .count(),
+            1
+        );
+        assert!(half < 3e9 && half > 0.0);
+
+        let mut driver = Driver::single_run(&model, None);
+        let mut walk = Walk::new(&model);
+        driver.walk(&mut walk, 0..n).unwrap();
+        assert!(driver
+            .records()
+            .iter()
+            .all(|r| r.report.reason == "the cache is off"));
+        let single = walk.into_run(solve::event_defs(&model));
+        assert_eq!(bits(&single), bits(&alone));
+        assert_eq!(single.events, alone.events);
+
+        // A member after one shared stage, with every later stage compiled
+        // once (no parameter kept as a register).
+        let programs: Vec<Option<StagePrograms>> = (0..n)
+            .map(|s| (s >= 1).then(|| solve::stage_programs(&model, s, &[])))
+            .collect();
+        let mut walk = Walk::after(&alone.stages[..1], alone.events.len(), || {
+            unreachable!("a stage is shared")
+        });
+        Driver::member(&model, &programs, &[])
+            .walk(&mut walk, 1..n)
+            .unwrap();
+        let member = walk.into_run(solve::event_defs(&model));
+        // The shared stage comes without its rows; the member's own match.
+        assert!(member.stages[0].rows.is_empty());
+        assert_eq!(bits(&member)[1..], bits(&alone)[1..]);
+        assert_eq!(member.events, alone.events);
+    }
+}
