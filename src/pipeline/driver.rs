@@ -497,7 +497,10 @@ stage three from 1 Ga to 0 Ga {
 event half = b > a
 ";
 
-    fn bits(run: &Run) -> Vec<(Vec<u64>, Vec<u64>, Vec<Option<u64>>)> {
+    /// Per stage: the bits of its rows, its end state and its events.
+    type Bits = Vec<(Vec<u64>, Vec<u64>, Vec<Option<u64>>)>;
+
+    fn bits(run: &Run) -> Bits {
         run.stages
             .iter()
             .map(|r| {
