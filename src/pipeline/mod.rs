@@ -371,7 +371,7 @@ fn encode_stage(r: &StageRun) -> std::io::Result<(Vec<u8>, Vec<u8>)> {
 
 /// Store a stage result: its rows first, then its head, so that a head
 /// found is (but for a power cut) a stage whose rows can be read.
-pub fn put_stage(store: &Store, key: &Key, r: &StageRun) -> std::io::Result<()> {
+fn put_stage(store: &Store, key: &Key, r: &StageRun) -> std::io::Result<()> {
     // Memory for the encoded rows may be refused: then the stage is not
     // cached (the H0702 warning), and the run goes on.
     let (head, rows) = encode_stage(r)?;
@@ -383,7 +383,7 @@ pub fn put_stage(store: &Store, key: &Key, r: &StageRun) -> std::io::Result<()> 
 /// count). `Ok(None)` when absent; `Err` when damaged or not a result of a
 /// stage of `n` components from this engine version (the caller
 /// recomputes, and its write replaces the entry).
-pub fn get_stage(
+fn get_stage(
     store: &Store,
     key: &Key,
     stage: usize,
