@@ -92,7 +92,10 @@ pub(crate) fn cmd_ensemble(
         progress: std::io::stderr().is_terminal(),
     };
     let state = match ensemble::run(model, &opts, &dir) {
-        Ok(s) => s,
+        Ok((s, warnings)) => {
+            super::report(&model.sources, &warnings);
+            s
+        }
         Err(_) if crate::cancel::requested() => return super::interrupted(),
         Err(e) => {
             eprintln!("error: {e}");
