@@ -970,13 +970,9 @@ pub fn solve(model: &Model) -> Result<Run, Problem> {
     })
 }
 
-/// Whether a stage's method setting is explicit only (for reports).
+/// A stage's method setting as written in `solver method = WORD`.
 pub fn method_word(m: Method) -> &'static str {
-    match m {
-        Method::Auto => "auto",
-        Method::Explicit => "explicit",
-        Method::Implicit => "implicit",
-    }
+    m.name()
 }
 
 #[cfg(test)]
