@@ -238,6 +238,8 @@ impl W {
     fn f64(&mut self, v: f64) {
         self.0.extend_from_slice(&v.to_le_bytes());
     }
+    /// Only the tests write text now (a head of layout 3).
+    #[cfg(test)]
     fn str(&mut self, s: &str) {
         self.u64(s.len() as u64);
         self.0.extend_from_slice(s.as_bytes());
@@ -273,6 +275,12 @@ impl R<'_> {
 /// Version of the stage payloads. 3: the report rows in an entry of their
 /// own (see [`rows_key`]), so a reused stage reads only its small head.
 const PAYLOAD_VERSION: u64 = 3;
+
+/// Version of a stage's head. 4: no method text (`report::method_text`
+/// makes it from the statistics where it is shown). A head of version 3
+/// is still read, its text skipped: the statistics it was made from are
+/// in the head too.
+const HEAD_VERSION: u64 = 4;
 
 fn write_rows(w: &mut W, rows: &[(f64, Vec<f64>)]) {
     w.u64(rows.len() as u64);
@@ -326,7 +334,7 @@ fn encode_stage(r: &StageRun) -> std::io::Result<(Vec<u8>, Vec<u8>)> {
         rows.f64(*v);
     }
     let mut w = W(Vec::new());
-    w.u64(PAYLOAD_VERSION);
+    w.u64(HEAD_VERSION);
     w.u64(n as u64);
     w.u64(r.rows.len() as u64);
     write_rows(&mut w, &r.probes);
@@ -351,7 +359,6 @@ fn encode_stage(r: &StageRun) -> std::io::Result<(Vec<u8>, Vec<u8>)> {
         }
         None => w.u64(0),
     }
-    w.str(&r.method);
     w.f64(r.closure_error);
     w.u64(r.events.len() as u64);
     for e in &r.events {
@@ -450,7 +457,8 @@ fn decode_rows(bytes: &[u8], n: usize, count: usize) -> Option<Rows> {
 /// The head of a stage result (`rows` left empty), and its number of rows.
 fn decode_stage_head(stage: usize, bytes: &[u8]) -> Option<(StageRun, usize)> {
     let mut r = R(bytes);
-    if r.u64()? != PAYLOAD_VERSION {
+    let version = r.u64()?;
+    if version != HEAD_VERSION && version != 3 {
         return None;
     }
     let n = r.len(1 << 24)?;
@@ -473,7 +481,9 @@ fn decode_stage_head(stage: usize, bytes: &[u8]) -> Option<(StageRun, usize)> {
     if r.u64()? == 1 {
         stats.switched_at = Some(r.f64()?);
     }
-    let method = r.str()?;
+    if version == 3 {
+        r.str()?;
+    }
     let closure_error = r.f64()?;
     let ne = r.len(1 << 20)?;
     let mut events = Vec::with_capacity(ne);
@@ -490,7 +500,6 @@ fn decode_stage_head(stage: usize, bytes: &[u8]) -> Option<(StageRun, usize)> {
             probes,
             end: State(end),
             stats,
-            method,
             closure_error,
             events,
             wall: std::time::Duration::ZERO,
@@ -888,7 +897,6 @@ mod tests {
                 implicit_steps: 2,
                 switched_at: Some(1.25e8),
             },
-            method: "explicit, then implicit".into(),
             closure_error: 3e-16,
             events: vec![None, Some(2.5e9)],
             wall: std::time::Duration::ZERO,
@@ -927,5 +935,53 @@ mod tests {
         fewer.rows = Rows::new(4);
         fewer.rows.push(4.5e9, &[1.0, f64::MIN_POSITIVE, -0.0]);
         assert!(decode_stage(2, &head, &encode_stage(&fewer).unwrap().1).is_none());
+    }
+
+    #[test]
+    fn a_head_of_layout_3_with_its_method_text_is_still_read() {
+        let stats = Stats {
+            accepted: 7,
+            rejected: 1,
+            rhs_evals: 50,
+            jacobians: 2,
+            explicit_steps: 5,
+            implicit_steps: 2,
+            switched_at: Some(1.25e8),
+        };
+        // Layout 3: as layout 4, with the method text after the statistics.
+        let mut old = W(Vec::new());
+        old.u64(3);
+        old.u64(2);
+        old.u64(5);
+        write_rows(&mut old, &[(4.45e9, vec![0.5, 1.5])]);
+        for v in [0.1, 0.2] {
+            old.f64(v);
+        }
+        for v in [7, 1, 50, 2, 5, 2] {
+            old.u64(v);
+        }
+        old.u64(1);
+        old.f64(1.25e8);
+        old.str("explicit, then implicit from 4.3750 Ga");
+        old.f64(3e-16);
+        old.u64(1);
+        old.u64(1);
+        old.f64(2.5e9);
+        let (r, count) = decode_stage_head(1, &old.0).unwrap();
+        assert_eq!(count, 5);
+        assert_eq!(r.stats, stats);
+        assert_eq!(r.end.0, vec![0.1, 0.2]);
+        assert_eq!(r.probes, vec![(4.45e9, vec![0.5, 1.5])]);
+        assert_eq!((r.closure_error, &r.events), (3e-16, &vec![Some(2.5e9)]));
+        // Written again, it is layout 4: the text is gone, nothing else changed.
+        let (head, _) = encode_stage(&r).unwrap();
+        let text = 8 + "explicit, then implicit from 4.3750 Ga".len();
+        assert_eq!(head.len(), old.0.len() - text);
+        assert_eq!(head[..8], HEAD_VERSION.to_le_bytes());
+        assert_eq!(decode_stage_head(1, &head).unwrap().0.stats, stats);
+        // A layout this engine never wrote is refused.
+        let mut future = head.clone();
+        future[..8].copy_from_slice(&5u64.to_le_bytes());
+        assert!(decode_stage_head(1, &future).is_none());
     }
 }

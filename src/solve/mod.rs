@@ -125,9 +125,10 @@ pub struct StageRun {
     /// States at the ages of expectations that fall in this stage.
     pub probes: Vec<(f64, Vec<f64>)>,
     pub end: State,
+    /// Steps, rejections, evaluations and which methods took the steps
+    /// (`Stats::method_use`); the words for them are made where they are
+    /// shown (`report::method_text`).
     pub stats: Stats,
-    /// "explicit", "implicit" or "explicit, then implicit from X Ga".
-    pub method: String,
     /// |total(end) - total(start)| / total(start) with the ledger included.
     pub closure_error: f64,
     /// First age at which each event (by index into `Run::event_defs`)
@@ -146,7 +147,6 @@ impl StageRun {
             probes: self.probes.clone(),
             end: self.end.clone(),
             stats: self.stats.clone(),
-            method: self.method.clone(),
             closure_error: self.closure_error,
             events: self.events.clone(),
             wall: self.wall,
@@ -410,7 +410,9 @@ impl Observer for Obs<'_> {
     }
 }
 
-fn ga(age: f64) -> String {
+/// An age as messages and reports write it: Ga to four places, or Ma
+/// below 10 Ma.
+pub fn ga(age: f64) -> String {
     let g = age / 1e9;
     if g.abs() >= 0.01 || g == 0.0 {
         format!("{g:.4} Ga")
@@ -669,17 +671,6 @@ pub fn run_stage(
         // runs keep their bits).
         closure_error = scaled_closure(model, &start.0, &y);
     }
-    let method = match (
-        stats.explicit_steps > 0,
-        stats.implicit_steps > 0,
-        stats.switched_at,
-    ) {
-        (true, true, Some(t)) => {
-            format!("explicit, then implicit from {}", ga(model.start_age - t))
-        }
-        (_, true, _) => "implicit".to_owned(),
-        _ => "explicit".to_owned(),
-    };
     let events = obs.events.take().map(|e| e.first).unwrap_or_default();
     Ok(StageRun {
         stage: s,
@@ -687,7 +678,6 @@ pub fn run_stage(
         rows: obs.out,
         end: State(y),
         stats,
-        method,
         closure_error,
         events,
         wall: clock.elapsed(),

@@ -75,6 +75,32 @@ impl Stats {
     }
 }
 
+/// Which methods took the steps counted in a [`Stats`].
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum MethodUse {
+    Explicit,
+    Implicit,
+    /// Explicit, then implicit from time `at` (the first switch of `auto`).
+    Switched {
+        at: f64,
+    },
+}
+
+impl Stats {
+    /// Which methods took the steps.
+    pub fn method_use(&self) -> MethodUse {
+        match (
+            self.explicit_steps > 0,
+            self.implicit_steps > 0,
+            self.switched_at,
+        ) {
+            (true, true, Some(at)) => MethodUse::Switched { at },
+            (_, true, _) => MethodUse::Implicit,
+            _ => MethodUse::Explicit,
+        }
+    }
+}
+
 #[derive(Debug, Clone, PartialEq)]
 pub enum Failure {
     /// A derivative was NaN or infinite at the accepted state at time t.
@@ -512,6 +538,12 @@ mod tests {
             );
             assert_eq!(stats.explicit_steps + stats.implicit_steps, stats.accepted);
             assert_eq!(stats.switched_at.is_some(), switched, "{word}: {stats:?}");
+            let expect = match (word, stats.switched_at) {
+                ("explicit", _) => MethodUse::Explicit,
+                ("implicit", _) => MethodUse::Implicit,
+                (_, at) => MethodUse::Switched { at: at.unwrap() },
+            };
+            assert_eq!(stats.method_use(), expect);
         }
     }
 
