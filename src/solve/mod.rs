@@ -116,6 +116,18 @@ pub fn out_of_memory(what: &str, bytes: usize) -> Problem {
     .help("choose a coarser `report every`, or free memory for the run")
 }
 
+/// One segment of a stage (the stretch between two breakpoints, which the
+/// integrator starts afresh): its ages and which methods took its steps.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Segment {
+    pub from_age: f64,
+    pub to_age: f64,
+    pub explicit_steps: u64,
+    pub implicit_steps: u64,
+    /// The age at which `auto` switched to the implicit method, if it did.
+    pub switch_age: Option<f64>,
+}
+
 /// The outcome of one stage.
 #[derive(Debug, Clone)]
 pub struct StageRun {
@@ -129,6 +141,8 @@ pub struct StageRun {
     /// (`Stats::method_use`); the words for them are made where they are
     /// shown (`report::method_text`).
     pub stats: Stats,
+    /// Per segment, in order, which methods took its steps.
+    pub segments: Vec<Segment>,
     /// |total(end) - total(start)| / total(start) with the ledger included.
     pub closure_error: f64,
     /// First age at which each event (by index into `Run::event_defs`)
@@ -147,6 +161,7 @@ impl StageRun {
             probes: self.probes.clone(),
             end: self.end.clone(),
             stats: self.stats.clone(),
+            segments: self.segments.clone(),
             closure_error: self.closure_error,
             events: self.events.clone(),
             wall: self.wall,
@@ -646,6 +661,7 @@ pub fn run_stage(
     cuts.push(span_t1);
     let mut sys = Sys::with_params(model, prog, params);
     let mut stats = Stats::default();
+    let mut segments = Vec::with_capacity(cuts.len());
     let mut t = span_t0;
     for &cut in &cuts {
         if cut <= t {
@@ -657,6 +673,13 @@ pub fn run_stage(
         if let Err(f) = r {
             return Err(failure_problem(model, s, prog, &mut sys, f, &obs, &y));
         }
+        segments.push(Segment {
+            from_age: model.start_age - t,
+            to_age: model.start_age - cut,
+            explicit_steps: seg.explicit_steps,
+            implicit_steps: seg.implicit_steps,
+            switch_age: seg.switched_at.map(|at| model.start_age - at),
+        });
         t = cut;
     }
     let total1 = water_total(model, &y);
@@ -678,6 +701,7 @@ pub fn run_stage(
         rows: obs.out,
         end: State(y),
         stats,
+        segments,
         closure_error,
         events,
         wall: clock.elapsed(),
