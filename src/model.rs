@@ -276,11 +276,38 @@ pub struct Stage {
     pub span: Span,
 }
 
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum Method {
-    Auto,
-    Explicit,
-    Implicit,
+/// An integration method, by its name in the registry of
+/// `solve::methods` (`solve::methods::lookup` makes one from a word).
+#[derive(Clone, Copy, PartialEq, Eq)]
+pub struct Method(&'static str);
+
+impl Method {
+    /// The default: explicit until the problem proves stiff.
+    pub const AUTO: Method = Method("auto");
+
+    /// The method registered under `name`; only the registry calls this,
+    /// so a `Method` always names a registered method.
+    pub(crate) const fn registered(name: &'static str) -> Method {
+        Method(name)
+    }
+
+    /// Its word in `solver method = WORD`.
+    pub fn name(self) -> &'static str {
+        self.0
+    }
+}
+
+/// The name with a capital initial (`Auto`), as methods printed when they
+/// were enum variants: the stage fingerprint holds the solver settings'
+/// debug text, so it must not change.
+impl std::fmt::Debug for Method {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        let mut chars = self.0.chars();
+        if let Some(c) = chars.next() {
+            write!(f, "{}", c.to_ascii_uppercase())?;
+        }
+        f.write_str(chars.as_str())
+    }
 }
 
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -300,7 +327,7 @@ impl Default for SolverSettings {
         SolverSettings {
             rtol: 1e-8,
             atol: 1e-10,
-            method: Method::Auto,
+            method: Method::AUTO,
             max_step: None,
             initial_step: None,
             max_steps: 1_000_000,

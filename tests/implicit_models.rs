@@ -152,11 +152,23 @@ fn auto_switches_on_a_one_kyr_overflow_and_finishes_within_its_budget() {
     // millions of steps for the 1-kyr relaxation over 4.5 Gyr.
     let (m, auto) = solve(&quorvane("auto", CAPPED_MANTLE));
     let st = &auto.stages[0];
+    let method = hadal::report::method_text(&m, &st.stats);
     assert!(
-        st.method.starts_with("explicit, then implicit"),
+        method.starts_with("explicit, then implicit"),
         "method was {}",
-        st.method
+        method
     );
+    // No table knots: one segment, the whole stage, holding the same counts
+    // and the switch as an age.
+    let seg = hadal::solve::Segment {
+        from_age: 4.5e9,
+        to_age: 0.0,
+        explicit_steps: st.stats.explicit_steps,
+        implicit_steps: st.stats.implicit_steps,
+        switch_age: st.stats.switched_at.map(|t| m.start_age - t),
+    };
+    assert_eq!(st.segments, [seg]);
+    assert!(seg.explicit_steps > 0 && seg.implicit_steps > 0, "{seg:?}");
     // `solver max_steps = 5000`: finishing is staying within it.
     assert!(st.stats.accepted + st.stats.rejected <= 5_000);
     assert!(st.closure_error < 1e-12, "closure {}", st.closure_error);

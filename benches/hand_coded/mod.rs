@@ -358,7 +358,7 @@ pub fn control(stage: usize, start: &[f64]) -> Control {
         max_step: stage_params(stage).max_step,
         initial_step: None,
         max_steps: MAX_STEPS,
-        method: Method::Auto,
+        method: Method::AUTO,
     }
 }
 

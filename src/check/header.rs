@@ -97,15 +97,13 @@ impl Checker {
                     syntax::ExprKind::Name(id) => Some(id.text.as_str()),
                     _ => None,
                 };
-                s.method = match word {
-                    Some("auto") => Method::Auto,
-                    Some("explicit") => Method::Explicit,
-                    Some("implicit") => Method::Implicit,
-                    _ => {
+                s.method = match word.and_then(crate::solve::methods::lookup) {
+                    Some(m) => m,
+                    None => {
                         self.error(
                             Problem::error("H0411", "unknown solver method")
                                 .label(value.span, "not a method")
-                                .help("choose `auto`, `explicit` (adaptive Runge-Kutta) or `implicit` (for stiff stages)"),
+                                .help(format!("choose {}", crate::solve::methods::choices())),
                         );
                         return;
                     }

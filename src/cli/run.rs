@@ -222,7 +222,7 @@ fn print_summary(
     let mwidth = run
         .stages
         .iter()
-        .map(|s| s.method.len())
+        .map(|s| rep::method_text(model, &s.stats).len())
         .max()
         .unwrap_or(6)
         .max(6);
@@ -241,7 +241,7 @@ fn print_summary(
                 fmt_num(st.end_age / 1e9)
             ),
             rp.status.word(),
-            sr.method,
+            rep::method_text(model, &sr.stats),
             sr.stats.accepted,
             sr.stats.rejected,
             sr.closure_error,
@@ -321,7 +321,7 @@ fn summary_json(
                 "status": rp.status.word(),
                 "reason": rp.reason,
                 "fingerprint": rp.fingerprint,
-                "method": sr.method,
+                "method": rep::method_text(model, &sr.stats),
                 "accepted_steps": sr.stats.accepted,
                 "rejected_steps": sr.stats.rejected,
                 "rhs_evaluations": sr.stats.rhs_evals,

@@ -254,7 +254,7 @@ pub fn build(
                 from_ga: st.start_age / 1e9,
                 to_ga: st.end_age / 1e9,
                 fingerprint: rp.fingerprint.clone(),
-                method: sr.method.clone(),
+                method: crate::report::method_text(model, &sr.stats),
                 closure_error: sr.closure_error,
             }
         })

@@ -241,6 +241,17 @@ impl W {
     fn f64(&mut self, v: f64) {
         self.0.extend_from_slice(&v.to_le_bytes());
     }
+    fn opt_f64(&mut self, v: Option<f64>) {
+        match v {
+            Some(x) => {
+                self.u64(1);
+                self.f64(x);
+            }
+            None => self.u64(0),
+        }
+    }
+    /// Only the tests write text now (a head of layout 3).
+    #[cfg(test)]
     fn str(&mut self, s: &str) {
         self.u64(s.len() as u64);
         self.0.extend_from_slice(s.as_bytes());
@@ -267,15 +278,24 @@ impl R<'_> {
         let n = self.u64()? as usize;
         (n <= limit).then_some(n)
     }
-    fn str(&mut self) -> Option<String> {
-        let n = self.len(1 << 20)?;
-        String::from_utf8(self.take(n)?.to_vec()).ok()
+    fn opt_f64(&mut self) -> Option<Option<f64>> {
+        match self.u64()? {
+            0 => Some(None),
+            1 => Some(Some(self.f64()?)),
+            _ => None,
+        }
     }
 }
 
 /// Version of the stage payloads. 3: the report rows in an entry of their
 /// own (see [`rows_key`]), so a reused stage reads only its small head.
 const PAYLOAD_VERSION: u64 = 3;
+
+/// Version of a stage's head. 4: no method text (`report::method_text`
+/// makes it from the statistics where it is shown), the methods of each
+/// segment instead. A head of an earlier version is a miss: the stage is
+/// solved again and its entry replaced.
+const HEAD_VERSION: u64 = 4;
 
 fn write_rows(w: &mut W, rows: &[(f64, Vec<f64>)]) {
     w.u64(rows.len() as u64);
@@ -329,7 +349,7 @@ fn encode_stage(r: &StageRun) -> std::io::Result<(Vec<u8>, Vec<u8>)> {
         rows.f64(*v);
     }
     let mut w = W(Vec::new());
-    w.u64(PAYLOAD_VERSION);
+    w.u64(HEAD_VERSION);
     w.u64(n as u64);
     w.u64(r.rows.len() as u64);
     write_rows(&mut w, &r.probes);
@@ -347,14 +367,15 @@ fn encode_stage(r: &StageRun) -> std::io::Result<(Vec<u8>, Vec<u8>)> {
     ] {
         w.u64(v);
     }
-    match s.switched_at {
-        Some(t) => {
-            w.u64(1);
-            w.f64(t);
-        }
-        None => w.u64(0),
+    w.opt_f64(s.switched_at);
+    w.u64(r.segments.len() as u64);
+    for g in &r.segments {
+        w.f64(g.from_age);
+        w.f64(g.to_age);
+        w.u64(g.explicit_steps);
+        w.u64(g.implicit_steps);
+        w.opt_f64(g.switch_age);
     }
-    w.str(&r.method);
     w.f64(r.closure_error);
     w.u64(r.events.len() as u64);
     for e in &r.events {
@@ -393,6 +414,13 @@ fn get_stage(
     let Some(head) = store.get(key)? else {
         return Ok(None);
     };
+    // A head of an earlier layout is verified bytes this engine no longer
+    // reads: a miss, not damage.
+    if let Some(v) = head.get(..8).and_then(|b| b.try_into().ok()) {
+        if (1..HEAD_VERSION).contains(&u64::from_le_bytes(v)) {
+            return Ok(None);
+        }
+    }
     let Some((mut r, count)) = decode_stage_head(stage, &head).filter(|(r, _)| r.end.0.len() == n)
     else {
         return Err(crate::cache::Corrupt {
@@ -453,7 +481,7 @@ fn decode_rows(bytes: &[u8], n: usize, count: usize) -> Option<Rows> {
 /// The head of a stage result (`rows` left empty), and its number of rows.
 fn decode_stage_head(stage: usize, bytes: &[u8]) -> Option<(StageRun, usize)> {
     let mut r = R(bytes);
-    if r.u64()? != PAYLOAD_VERSION {
+    if r.u64()? != HEAD_VERSION {
         return None;
     }
     let n = r.len(1 << 24)?;
@@ -473,10 +501,19 @@ fn decode_stage_head(stage: usize, bytes: &[u8]) -> Option<(StageRun, usize)> {
         implicit_steps: r.u64()?,
         switched_at: None,
     };
-    if r.u64()? == 1 {
-        stats.switched_at = Some(r.f64()?);
+    stats.switched_at = r.opt_f64()?;
+    let ns = r.len(1 << 20)?;
+    let mut segments = Vec::new();
+    segments.try_reserve_exact(ns).ok()?;
+    for _ in 0..ns {
+        segments.push(solve::Segment {
+            from_age: r.f64()?,
+            to_age: r.f64()?,
+            explicit_steps: r.u64()?,
+            implicit_steps: r.u64()?,
+            switch_age: r.opt_f64()?,
+        });
     }
-    let method = r.str()?;
     let closure_error = r.f64()?;
     let ne = r.len(1 << 20)?;
     let mut events = Vec::with_capacity(ne);
@@ -493,7 +530,7 @@ fn decode_stage_head(stage: usize, bytes: &[u8]) -> Option<(StageRun, usize)> {
             probes,
             end: State(end),
             stats,
-            method,
+            segments,
             closure_error,
             events,
             wall: std::time::Duration::ZERO,
@@ -774,7 +811,22 @@ mod tests {
                 implicit_steps: 2,
                 switched_at: Some(1.25e8),
             },
-            method: "explicit, then implicit".into(),
+            segments: vec![
+                solve::Segment {
+                    from_age: 4.5e9,
+                    to_age: 4.4e9,
+                    explicit_steps: 5,
+                    implicit_steps: 2,
+                    switch_age: Some(4.375e9),
+                },
+                solve::Segment {
+                    from_age: 4.4e9,
+                    to_age: 4.3e9,
+                    explicit_steps: 0,
+                    implicit_steps: 0,
+                    switch_age: None,
+                },
+            ],
             closure_error: 3e-16,
             events: vec![None, Some(2.5e9)],
             wall: std::time::Duration::ZERO,
@@ -805,6 +857,7 @@ mod tests {
         );
         assert_eq!(rows, pairs.0);
         assert_eq!(d.stats, r.stats);
+        assert_eq!(d.segments, r.segments);
         // Truncated payloads are refused, not misread.
         assert!(decode_stage(2, &head[..head.len() - 1], &rows).is_none());
         assert!(decode_stage(2, &head, &rows[..rows.len() - 1]).is_none());
@@ -813,5 +866,58 @@ mod tests {
         fewer.rows = Rows::new(4);
         fewer.rows.push(4.5e9, &[1.0, f64::MIN_POSITIVE, -0.0]);
         assert!(decode_stage(2, &head, &encode_stage(&fewer).unwrap().1).is_none());
+    }
+
+    #[test]
+    fn a_head_of_layout_3_is_a_miss_not_damage() {
+        // Layout 3 held the method text after the statistics and no segments.
+        let mut old = W(Vec::new());
+        old.u64(3);
+        old.u64(2);
+        old.u64(0);
+        write_rows(&mut old, &[]);
+        for v in [0.1, 0.2] {
+            old.f64(v);
+        }
+        for v in [7, 1, 50, 2, 5, 2] {
+            old.u64(v);
+        }
+        old.u64(1);
+        old.f64(1.25e8);
+        old.str("explicit, then implicit from 4.3750 Ga");
+        old.f64(3e-16);
+        old.u64(0);
+        assert!(decode_stage_head(0, &old.0).is_none());
+        let dir = tempfile::tempdir().unwrap();
+        let store = Store::new(dir.path());
+        let key = [7u8; 32];
+        store.put(&key, &old.0).unwrap();
+        assert!(matches!(get_stage(&store, &key, 0, 2, false), Ok(None)));
+        // A head of this layout under the same key is read; one of a layout
+        // this engine never wrote is damage.
+        let mut rows = W(Vec::new());
+        rows.u64(PAYLOAD_VERSION);
+        rows.u64(2);
+        rows.u64(0);
+        store.put(&rows_key(&key), &rows.0).unwrap();
+        let r = StageRun {
+            stage: 0,
+            rows: Rows::new(3),
+            probes: Vec::new(),
+            end: State(vec![0.1, 0.2]),
+            stats: Stats::default(),
+            segments: Vec::new(),
+            closure_error: 0.0,
+            events: Vec::new(),
+            wall: std::time::Duration::ZERO,
+        };
+        let (head, _) = encode_stage(&r).unwrap();
+        store.put(&key, &head).unwrap();
+        let (back, _) = get_stage(&store, &key, 0, 2, true).unwrap().unwrap();
+        assert_eq!(back.end.0, vec![0.1, 0.2]);
+        let mut future = head.clone();
+        future[..8].copy_from_slice(&(HEAD_VERSION + 1).to_le_bytes());
+        store.put(&key, &future).unwrap();
+        assert!(get_stage(&store, &key, 0, 2, false).is_err());
     }
 }

@@ -8,6 +8,7 @@
 use crate::compile::{self, Wants};
 use crate::diagnostic::Problem;
 use crate::model::{DefId, DefKind, Model};
+use crate::solve::methods::{MethodUse, Stats};
 use crate::solve::Run;
 use crate::units::{self, Unit};
 
@@ -414,7 +415,7 @@ pub fn stages_csv(model: &Model, run: &Run) -> Vec<u8> {
             st.name.clone(),
             fmt_num(st.start_age / 1e9),
             fmt_num(st.end_age / 1e9),
-            sr.method.clone(),
+            method_text(model, &sr.stats),
             sr.stats.accepted.to_string(),
             sr.stats.rejected.to_string(),
             sr.stats.rhs_evals.to_string(),
@@ -423,6 +424,20 @@ pub fn stages_csv(model: &Model, run: &Run) -> Vec<u8> {
         ]);
     }
     w.into_inner().unwrap_or_default()
+}
+
+/// The words for the methods that took a stage's steps, as `stages.csv`,
+/// the manifest and the run summary show them: "explicit", "implicit" or
+/// "explicit, then implicit from X Ga".
+pub fn method_text(model: &Model, stats: &Stats) -> String {
+    match stats.method_use() {
+        MethodUse::Explicit => "explicit".to_owned(),
+        MethodUse::Implicit => "implicit".to_owned(),
+        MethodUse::Switched { at } => format!(
+            "explicit, then implicit from {}",
+            crate::solve::ga(model.start_age - at)
+        ),
+    }
 }
 
 /// The events table: name and first age (empty when it never happened).

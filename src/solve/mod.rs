@@ -116,6 +116,18 @@ pub fn out_of_memory(what: &str, bytes: usize) -> Problem {
     .help("choose a coarser `report every`, or free memory for the run")
 }
 
+/// One segment of a stage (the stretch between two breakpoints, which the
+/// integrator starts afresh): its ages and which methods took its steps.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Segment {
+    pub from_age: f64,
+    pub to_age: f64,
+    pub explicit_steps: u64,
+    pub implicit_steps: u64,
+    /// The age at which `auto` switched to the implicit method, if it did.
+    pub switch_age: Option<f64>,
+}
+
 /// The outcome of one stage.
 #[derive(Debug, Clone)]
 pub struct StageRun {
@@ -125,9 +137,12 @@ pub struct StageRun {
     /// States at the ages of expectations that fall in this stage.
     pub probes: Vec<(f64, Vec<f64>)>,
     pub end: State,
+    /// Steps, rejections, evaluations and which methods took the steps
+    /// (`Stats::method_use`); the words for them are made where they are
+    /// shown (`report::method_text`).
     pub stats: Stats,
-    /// "explicit", "implicit" or "explicit, then implicit from X Ga".
-    pub method: String,
+    /// Per segment, in order, which methods took its steps.
+    pub segments: Vec<Segment>,
     /// |total(end) - total(start)| / total(start) with the ledger included.
     pub closure_error: f64,
     /// First age at which each event (by index into `Run::event_defs`)
@@ -146,7 +161,7 @@ impl StageRun {
             probes: self.probes.clone(),
             end: self.end.clone(),
             stats: self.stats.clone(),
-            method: self.method.clone(),
+            segments: self.segments.clone(),
             closure_error: self.closure_error,
             events: self.events.clone(),
             wall: self.wall,
@@ -410,7 +425,9 @@ impl Observer for Obs<'_> {
     }
 }
 
-fn ga(age: f64) -> String {
+/// An age as messages and reports write it: Ga to four places, or Ma
+/// below 10 Ma.
+pub fn ga(age: f64) -> String {
     let g = age / 1e9;
     if g.abs() >= 0.01 || g == 0.0 {
         format!("{g:.4} Ga")
@@ -644,6 +661,7 @@ pub fn run_stage(
     cuts.push(span_t1);
     let mut sys = Sys::with_params(model, prog, params);
     let mut stats = Stats::default();
+    let mut segments = Vec::with_capacity(cuts.len());
     let mut t = span_t0;
     for &cut in &cuts {
         if cut <= t {
@@ -655,6 +673,13 @@ pub fn run_stage(
         if let Err(f) = r {
             return Err(failure_problem(model, s, prog, &mut sys, f, &obs, &y));
         }
+        segments.push(Segment {
+            from_age: model.start_age - t,
+            to_age: model.start_age - cut,
+            explicit_steps: seg.explicit_steps,
+            implicit_steps: seg.implicit_steps,
+            switch_age: seg.switched_at.map(|at| model.start_age - at),
+        });
         t = cut;
     }
     let total1 = water_total(model, &y);
@@ -669,17 +694,6 @@ pub fn run_stage(
         // runs keep their bits).
         closure_error = scaled_closure(model, &start.0, &y);
     }
-    let method = match (
-        stats.explicit_steps > 0,
-        stats.implicit_steps > 0,
-        stats.switched_at,
-    ) {
-        (true, true, Some(t)) => {
-            format!("explicit, then implicit from {}", ga(model.start_age - t))
-        }
-        (_, true, _) => "implicit".to_owned(),
-        _ => "explicit".to_owned(),
-    };
     let events = obs.events.take().map(|e| e.first).unwrap_or_default();
     Ok(StageRun {
         stage: s,
@@ -687,7 +701,7 @@ pub fn run_stage(
         rows: obs.out,
         end: State(y),
         stats,
-        method,
+        segments,
         closure_error,
         events,
         wall: clock.elapsed(),
@@ -952,13 +966,9 @@ pub fn solve(model: &Model) -> Result<Run, Problem> {
     crate::pipeline::driver::solve_all(model)
 }
 
-/// Whether a stage's method setting is explicit only (for reports).
+/// A stage's method setting as written in `solver method = WORD`.
 pub fn method_word(m: Method) -> &'static str {
-    match m {
-        Method::Auto => "auto",
-        Method::Explicit => "explicit",
-        Method::Implicit => "implicit",
-    }
+    m.name()
 }
 
 #[cfg(test)]
