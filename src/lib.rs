@@ -5,6 +5,7 @@
 //! [`syntax`] (parse) → [`check`] (names, units) → [`model`] (the checked
 //! model) → [`graph`] (dependencies) → later phases.
 
+pub mod api;
 pub mod cache;
 pub mod cancel;
 pub mod check;

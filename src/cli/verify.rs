@@ -13,7 +13,7 @@ fn outputs_of(
     outcome: &crate::pipeline::Outcome,
 ) -> Vec<(&'static str, Vec<u8>)> {
     let expectations = rep::expectations(model, &outcome.run);
-    super::run::output_files(model, outcome, &expectations)
+    crate::api::output_files(model, outcome, &expectations)
 }
 
 /// Render problems that have no place in a scenario (manifest problems).

@@ -125,14 +125,30 @@ pub fn read_numeric_columns(path: &Path) -> Result<Option<Vec<Column>>, String> 
         Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(None),
         Err(e) => return Err(format!("cannot read {}: {e}", path.display())),
     };
+    numeric_columns_of(std::io::BufReader::new(file))
+        .map(Some)
+        .map_err(|e| format!("{}: {e}", path.display()))
+}
+
+/// Every column of CSV text parsed as numbers (see [`read_numeric_columns`]).
+fn numeric_columns_of(from: impl std::io::Read) -> Result<Vec<Column>, String> {
     let mut r = csv::ReaderBuilder::new()
         .has_headers(true)
         .flexible(true)
-        .from_reader(std::io::BufReader::new(file));
-    let bad = |what: &str, e: csv::Error| format!("{}: bad CSV {what}: {e}", path.display());
-    let mut cols: Vec<Column> = r
-        .headers()
-        .map_err(|e| bad("header", e))?
+        .from_reader(from);
+    let bad = |what: &str, e: csv::Error| format!("bad CSV {what}: {e}");
+    let mut cols = header_columns(r.headers().map_err(|e| bad("header", e))?);
+    let mut rec = csv::StringRecord::new();
+    while r.read_record(&mut rec).map_err(|e| bad("row", e))? {
+        for (k, c) in cols.iter_mut().enumerate() {
+            c.values.push(parse_num(rec.get(k).unwrap_or("")));
+        }
+    }
+    Ok(cols)
+}
+
+fn header_columns(header: &csv::StringRecord) -> Vec<Column> {
+    header
         .iter()
         .map(|h| {
             let (name, unit) = split_header(h);
@@ -142,14 +158,46 @@ pub fn read_numeric_columns(path: &Path) -> Result<Option<Vec<Column>>, String> 
                 values: Vec::new(),
             }
         })
-        .collect();
-    let mut rec = csv::StringRecord::new();
-    while r.read_record(&mut rec).map_err(|e| bad("row", e))? {
-        for (k, c) in cols.iter_mut().enumerate() {
-            c.values.push(parse_num(rec.get(k).unwrap_or("")));
+        .collect()
+}
+
+/// The columns of a series CSV held in memory (as a run makes it), the
+/// same numbers [`read_numeric_columns`] reads from the written file. The
+/// rows of a series are numbers that are never quoted, so they are split
+/// directly, without the CSV reader's records (the figures of a large run
+/// spent most of their time there); text with a quote anywhere after the
+/// header goes through the CSV reader instead.
+pub fn decode_series(bytes: &[u8]) -> Result<Vec<Column>, String> {
+    let mut r = csv::ReaderBuilder::new()
+        .has_headers(true)
+        .flexible(true)
+        .from_reader(bytes);
+    let header = r
+        .headers()
+        .map_err(|e| format!("bad CSV header: {e}"))?
+        .clone();
+    let body = &bytes[(r.position().byte() as usize).min(bytes.len())..];
+    if body.contains(&b'"') {
+        return numeric_columns_of(bytes);
+    }
+    let mut cols = header_columns(&header);
+    let lines = body.iter().filter(|&&b| b == b'\n').count() + 1;
+    for c in &mut cols {
+        c.values.reserve(lines);
+    }
+    for line in body.split(|&b| b == b'\n') {
+        let line = line.strip_suffix(b"\r").unwrap_or(line);
+        // The CSV reader skips empty lines too.
+        if line.is_empty() {
+            continue;
+        }
+        let line = std::str::from_utf8(line).map_err(|e| format!("bad CSV row: {e}"))?;
+        let mut cells = line.split(',');
+        for c in &mut cols {
+            c.values.push(parse_num(cells.next().unwrap_or("")));
         }
     }
-    Ok(Some(cols))
+    Ok(cols)
 }
 
 /// A unit written UDUNITS style in a CSV header (`kg`, `W m-2`, `cm yr-1`,
@@ -239,32 +287,49 @@ impl RunData {
     /// Read `series.csv` (required), `stages.csv`, `events.csv` and
     /// `manifest.json` (optional) from a run directory.
     pub fn load(dir: &Path) -> Result<RunData, String> {
-        let mut cols = read_numeric_columns(&dir.join("series.csv"))?
+        let cols = read_numeric_columns(&dir.join("series.csv"))?
             .ok_or_else(|| format!("{} has no series.csv", dir.display()))?;
-        let age_at = cols
-            .iter()
-            .position(|c| c.name.eq_ignore_ascii_case("age"))
-            .ok_or_else(|| format!("{}/series.csv has no `age` column", dir.display()))?;
-        let age = cols.remove(age_at);
-        let ages = ages_in_ga(&age)?;
-        if ages.iter().any(|a| !a.is_finite()) {
-            return Err(format!(
-                "{}/series.csv has an empty or non-numeric age",
-                dir.display()
-            ));
-        }
-        let (stages, stages_header) = match TextTable::read_optional(dir, "stages.csv")? {
-            Some(t) => (read_stages(&t), t.header.clone()),
-            None => (Vec::new(), Vec::new()),
-        };
-        let events = match TextTable::read_optional(dir, "events.csv")? {
-            Some(t) => read_events(&t),
-            None => Vec::new(),
-        };
+        let stages = TextTable::read_optional(dir, "stages.csv")?;
+        let events = TextTable::read_optional(dir, "events.csv")?;
         let manifest =
             crate::fsutil::read_bounded(&dir.join("manifest.json"), crate::fsutil::MAX_JSON_BYTES)
                 .ok()
                 .and_then(|b| serde_json::from_slice(&b).ok());
+        let series = dir.join("series.csv");
+        RunData::from_parts(
+            cols,
+            stages,
+            events,
+            manifest,
+            &series.display().to_string(),
+        )
+    }
+
+    /// A run's data from its parts, wherever they were read (files for
+    /// `hadal plot`, memory for `hadal run`): the series' columns, the
+    /// stages and events tables and the manifest. `series` names the
+    /// series in errors.
+    pub fn from_parts(
+        mut cols: Vec<Column>,
+        stages: Option<TextTable>,
+        events: Option<TextTable>,
+        manifest: Option<serde_json::Value>,
+        series: &str,
+    ) -> Result<RunData, String> {
+        let age_at = cols
+            .iter()
+            .position(|c| c.name.eq_ignore_ascii_case("age"))
+            .ok_or_else(|| format!("{series} has no `age` column"))?;
+        let age = cols.remove(age_at);
+        let ages = ages_in_ga(&age)?;
+        if ages.iter().any(|a| !a.is_finite()) {
+            return Err(format!("{series} has an empty or non-numeric age"));
+        }
+        let (stages, stages_header) = match stages {
+            Some(t) => (read_stages(&t), t.header.clone()),
+            None => (Vec::new(), Vec::new()),
+        };
+        let events = events.map(|t| read_events(&t)).unwrap_or_default();
         Ok(RunData {
             ages,
             columns: cols,
@@ -531,5 +596,31 @@ mod tests {
         assert!(read_numeric_columns(&dir.path().join("none.csv"))
             .unwrap()
             .is_none());
+    }
+
+    #[test]
+    fn a_series_decoded_in_memory_is_the_series_read_from_its_file() {
+        // Holes, infinities, NaN, short and long rows, a blank line, CRLF,
+        // a header the CSV writer quoted, and the bits of -0 and subnormals.
+        let texts = [
+            "age [Ga],ocean [kg],sea_level [m]\n4.5,1.4e21,-20\n4.4,,inf\n4.3,1e21\n4.2,x,3,extra\n",
+            "age [Ga],\"a, b [kg]\"\r\n1,-0,NaN\r\n\r\n0.5,5e-324,-inf\r\n",
+            "age [Ma],v []\n",
+            "age [Ga],v [1]\n1,\"2\"\n",
+            "age [Ga],v [1]\n1,2",
+        ];
+        let bits = |cols: &[Column]| -> Vec<(String, String, Vec<u64>)> {
+            cols.iter()
+                .map(|c| {
+                    let v = c.values.iter().map(|v| v.to_bits()).collect();
+                    (c.name.clone(), c.unit.clone(), v)
+                })
+                .collect()
+        };
+        for text in texts {
+            let read = numeric_columns_of(text.as_bytes()).unwrap();
+            let decoded = decode_series(text.as_bytes()).unwrap();
+            assert_eq!(bits(&decoded), bits(&read), "{text:?}");
+        }
     }
 }

@@ -1,0 +1,373 @@
+//! The library's front door: what a binding, a server or another front end
+//! calls, exactly as the CLI does.
+//!
+//! [`load`] checks a scenario into a [`Scenario`]; [`Scenario::run`] runs
+//! it (through the stage cache when given one) into a [`RunResult`], which
+//! holds the output files' bytes, the series as numeric columns on demand,
+//! events, expectations, stage records and the manifest; [`RunResult::write`]
+//! puts them on disk as a separate step. Nothing here prints or exits:
+//! problems come back as values (see [`LoadError`], [`RunError`],
+//! [`WriteError`]).
+
+use std::fmt;
+use std::path::{Path, PathBuf};
+use std::time::{Duration, Instant};
+
+use crate::cache::Store;
+use crate::check::{self, CheckError, CheckOptions};
+use crate::diagnostic::Problem;
+use crate::figures::data::{Column, RunData};
+use crate::manifest::{self, Manifest};
+use crate::model::Model;
+use crate::pipeline::{self, Outcome};
+use crate::report::{self, ExpectResult};
+use crate::solve::Run;
+use crate::span::Sources;
+
+/// How to load a scenario.
+#[derive(Debug, Clone, Default)]
+pub struct LoadOptions {
+    /// `NAME=VALUE` parameter overrides, as `--set` gives them.
+    pub overrides: Vec<(String, String)>,
+}
+
+/// Why a scenario could not be loaded.
+#[derive(Debug)]
+pub enum LoadError {
+    /// The scenario file could not be read (a usage or I/O problem).
+    Io { path: PathBuf, message: String },
+    /// The scenario has errors; `sources` are what they point into.
+    Invalid {
+        sources: Sources,
+        problems: Vec<Problem>,
+    },
+    /// A library file (no `scenario` line): it is included, never run.
+    /// Its check's warnings are kept to be shown.
+    Library {
+        path: PathBuf,
+        sources: Sources,
+        warnings: Vec<Problem>,
+    },
+}
+
+impl fmt::Display for LoadError {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            LoadError::Io { path, message } => {
+                write!(f, "cannot read {}: {message}", path.display())
+            }
+            LoadError::Invalid { problems, .. } => {
+                write!(f, "the scenario has {} problem(s)", problems.len())
+            }
+            LoadError::Library { path, .. } => write!(
+                f,
+                "{} is a library file (no `scenario` line); run a scenario that includes it",
+                path.display()
+            ),
+        }
+    }
+}
+
+impl std::error::Error for LoadError {}
+
+impl From<CheckError> for LoadError {
+    fn from(e: CheckError) -> LoadError {
+        match e {
+            CheckError::Io { path, message } => LoadError::Io { path, message },
+            CheckError::Invalid { sources, problems } => LoadError::Invalid { sources, problems },
+        }
+    }
+}
+
+/// A checked scenario, ready to run.
+#[derive(Debug)]
+pub struct Scenario {
+    checked: check::Checked,
+    path: PathBuf,
+    overrides: Vec<(String, String)>,
+    /// Time spent loading; a run's wall time counts it, as `hadal run`'s
+    /// always did.
+    load_time: Duration,
+}
+
+/// Read, parse and check the scenario at `path` with its includes and
+/// tables.
+pub fn load(path: &Path, options: &LoadOptions) -> Result<Scenario, LoadError> {
+    let clock = Instant::now();
+    let checked = check::check_file(
+        path,
+        &CheckOptions {
+            overrides: options.overrides.clone(),
+        },
+    )?;
+    if checked.model.is_library() {
+        return Err(LoadError::Library {
+            path: path.to_owned(),
+            sources: checked.model.sources,
+            warnings: checked.warnings,
+        });
+    }
+    Ok(Scenario {
+        checked,
+        path: path.to_owned(),
+        overrides: options.overrides.clone(),
+        load_time: clock.elapsed(),
+    })
+}
+
+/// How to run a scenario.
+#[derive(Debug, Clone, Copy, Default)]
+pub struct RunOptions<'a> {
+    /// The stage cache; `None` solves every stage.
+    pub store: Option<&'a Store>,
+}
+
+/// Why a run produced no result.
+#[derive(Debug)]
+pub enum RunError {
+    /// Stopped through [`crate::cancel`] (Ctrl-C in the CLI).
+    Interrupted,
+    /// The solve failed (H06xx); the problem points into the model's sources.
+    Failed(Problem),
+}
+
+impl fmt::Display for RunError {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            RunError::Interrupted => f.write_str("interrupted"),
+            RunError::Failed(p) => write!(f, "{}: {}", p.code, p.message),
+        }
+    }
+}
+
+impl std::error::Error for RunError {}
+
+/// Why a result could not be written.
+#[derive(Debug)]
+pub enum WriteError {
+    /// The output directory could not be made.
+    CreateDir { dir: PathBuf, message: String },
+    /// The files could not be written; the directory is as it was.
+    Write { dir: PathBuf, message: String },
+}
+
+impl fmt::Display for WriteError {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            WriteError::CreateDir { dir, message } => {
+                write!(f, "cannot create {}: {message}", dir.display())
+            }
+            WriteError::Write { dir, message } => {
+                write!(
+                    f,
+                    "cannot write the outputs in {}: {message}",
+                    dir.display()
+                )
+            }
+        }
+    }
+}
+
+impl std::error::Error for WriteError {}
+
+impl Scenario {
+    pub fn model(&self) -> &Model {
+        &self.checked.model
+    }
+
+    /// Warnings of the check, worth showing before a run.
+    pub fn warnings(&self) -> &[Problem] {
+        &self.checked.warnings
+    }
+
+    pub fn path(&self) -> &Path {
+        &self.path
+    }
+
+    pub fn overrides(&self) -> &[(String, String)] {
+        &self.overrides
+    }
+
+    /// Run every stage (through the cache when `options.store` is given)
+    /// and make every output in memory. Nothing is written.
+    pub fn run(&self, options: &RunOptions) -> Result<RunResult, RunError> {
+        let clock = Instant::now();
+        let model = self.model();
+        let mut outcome = match pipeline::execute(model, options.store) {
+            Ok(o) => o,
+            Err(_) if crate::cancel::requested() => return Err(RunError::Interrupted),
+            Err(p) => return Err(RunError::Failed(p)),
+        };
+        let expectations = report::expectations(model, &outcome.run);
+        // The series moves into the files rather than being copied: it is
+        // most of a run's memory (see `check::ReportSize`).
+        let series = std::mem::take(&mut outcome.series_csv);
+        let mut files = output_files(model, &outcome, &expectations);
+        files[0].1 = series;
+        let wall = self.load_time + clock.elapsed();
+        let root = check::project_root(&self.path);
+        // Built as if written at the project root; `write` places it.
+        let manifest = manifest::build(
+            model,
+            &self.path,
+            &self.overrides,
+            &outcome,
+            &files,
+            &root,
+            wall.as_secs_f64() * 1e3,
+        );
+        let events = outcome
+            .run
+            .event_defs
+            .iter()
+            .zip(&outcome.run.events)
+            .map(|(&d, &age)| (model.defs[d].name.clone(), age))
+            .collect();
+        let closure_problems = closure_problems(model, &outcome.run);
+        Ok(RunResult {
+            outcome,
+            expectations,
+            events,
+            files,
+            manifest,
+            root,
+            wall,
+            closure_problems,
+        })
+    }
+}
+
+/// A finished run, in memory.
+#[derive(Debug)]
+pub struct RunResult {
+    /// Per stage: the solve's records (`outcome.run.stages`: method,
+    /// statistics, end state, budget closure) and the cache's
+    /// (`outcome.stages`: status, reason, fingerprint); row count and
+    /// warnings. Its `series_csv` is empty: the series is in [`Self::files`].
+    pub outcome: Outcome,
+    pub expectations: Vec<ExpectResult>,
+    /// Each event's name and the first age (yr) it happened, if it did.
+    pub events: Vec<(String, Option<f64>)>,
+    files: Vec<(&'static str, Vec<u8>)>,
+    /// The manifest; its `run.project_root_from_manifest` is set by
+    /// [`Self::write`] for the directory written.
+    pub manifest: Manifest,
+    root: PathBuf,
+    /// Load and run time, shown in summaries and kept in the manifest.
+    pub wall: Duration,
+    /// H0606 for each stage whose water budget does not close beyond its
+    /// tolerance: the outputs are still written, but the result is wrong.
+    pub closure_problems: Vec<Problem>,
+}
+
+impl RunResult {
+    /// The output files (name, bytes) in the order written, without the
+    /// manifest.
+    pub fn files(&self) -> &[(&'static str, Vec<u8>)] {
+        &self.files
+    }
+
+    /// The bytes of one output file.
+    pub fn file(&self, name: &str) -> Option<&[u8]> {
+        self.files
+            .iter()
+            .find(|(n, _)| *n == name)
+            .map(|(_, b)| b.as_slice())
+    }
+
+    /// The series as numeric columns (name, unit, values in that unit),
+    /// the age column first: decoded from the series bytes in memory, so
+    /// they are exactly the numbers a reader of `series.csv` gets.
+    pub fn series(&self) -> Result<Vec<Column>, String> {
+        crate::figures::data::decode_series(self.file("series.csv").unwrap_or_default())
+    }
+
+    /// What the figures need, from memory: the same [`RunData`] that
+    /// [`RunData::load`] reads from the written directory, so the SVG
+    /// bytes are the same either way. Call it after [`Self::write`] for
+    /// the manifest as written.
+    pub fn figure_data(&self) -> Result<RunData, String> {
+        let table = |name: &str| -> Result<_, String> {
+            self.file(name)
+                .map(|b| {
+                    crate::figures::data::TextTable::parse(b).map_err(|e| format!("{name}: {e}"))
+                })
+                .transpose()
+        };
+        RunData::from_parts(
+            self.series()?,
+            table("stages.csv")?,
+            table("events.csv")?,
+            serde_json::from_slice(&self.manifest.to_json()).ok(),
+            "series.csv",
+        )
+    }
+
+    /// Write the files and the manifest into `dir` as one unit (see
+    /// [`crate::fsutil::write_group`]): on failure the directory is as it
+    /// was (a directory made here is removed again), and the manifest,
+    /// written last, marks a complete set. Temporary files of killed
+    /// writers are cleared first.
+    pub fn write(&mut self, dir: &Path) -> Result<(), WriteError> {
+        let created = !dir.is_dir();
+        std::fs::create_dir_all(dir).map_err(|e| WriteError::CreateDir {
+            dir: dir.to_owned(),
+            message: e.to_string(),
+        })?;
+        // The directory exists now, so the relative path is canonical.
+        self.manifest.run.project_root_from_manifest = manifest::relative(&self.root, dir);
+        let json = self.manifest.to_json();
+        crate::fsutil::remove_stale_temps(dir);
+        let mut group: Vec<(&str, &[u8])> =
+            self.files.iter().map(|(n, b)| (*n, b.as_slice())).collect();
+        group.push(("manifest.json", &json));
+        crate::fsutil::write_group(dir, &group, "manifest.json").map_err(|e| {
+            if created {
+                let _ = std::fs::remove_dir(dir);
+            }
+            WriteError::Write {
+                dir: dir.to_owned(),
+                message: e.to_string(),
+            }
+        })
+    }
+}
+
+/// The files a run writes beside its manifest (and that `verify`
+/// recomputes), in order: the series, stages, events and, when the
+/// scenario has expectations, their results.
+pub fn output_files(
+    model: &Model,
+    outcome: &Outcome,
+    expectations: &[ExpectResult],
+) -> Vec<(&'static str, Vec<u8>)> {
+    let mut files = vec![
+        ("series.csv", outcome.series_csv.clone()),
+        ("stages.csv", report::stages_csv(model, &outcome.run)),
+        ("events.csv", report::events_csv(model, &outcome.run)),
+    ];
+    if !model.expects.is_empty() {
+        files.push(("expectations.csv", report::expectations_csv(expectations)));
+    }
+    files
+}
+
+/// H0606 for each stage whose water budget does not close.
+pub fn closure_problems(model: &Model, run: &Run) -> Vec<Problem> {
+    run.stages
+        .iter()
+        .filter(|sr| sr.closure_error > model.stages[sr.stage].solver.budget_tolerance)
+        .map(|sr| {
+            let st = &model.stages[sr.stage];
+            Problem::error(
+                "H0606",
+                format!(
+                    "the water budget of stage `{}` does not close: relative error {:.3e}, above {:.1e}",
+                    st.name, sr.closure_error, st.solver.budget_tolerance
+                ),
+            )
+            .label(st.span, "this stage")
+            .help("tighten `solver rtol`, or raise `solver budget_tolerance` if the loss is understood")
+        })
+        .collect()
+}

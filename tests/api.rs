@@ -1,0 +1,83 @@
+//! The library API used as a front end uses it: load, run, write, and the
+//! figures drawn from the result in memory.
+
+use std::path::Path;
+
+use hadal::api::{self, LoadError, LoadOptions, RunOptions};
+
+fn run_demo(name: &str, dir: &Path) -> api::RunResult {
+    let scenario = api::load(&Path::new("scenarios").join(name), &LoadOptions::default()).unwrap();
+    let mut result = scenario.run(&RunOptions::default()).unwrap();
+    result.write(dir).unwrap();
+    result
+}
+
+#[test]
+fn written_outputs_are_the_committed_outputs_byte_for_byte() {
+    for (file, out) in [
+        ("hot_start.hadal", "mirrowen_hot_start"),
+        ("glacial_window.hadal", "caldrith_glacial_window"),
+    ] {
+        let t = tempfile::tempdir().unwrap();
+        let result = run_demo(file, t.path());
+        let committed = Path::new("outputs").join(out);
+        for (name, bytes) in result.files() {
+            let want = std::fs::read(committed.join(name)).unwrap();
+            assert!(
+                *bytes == want,
+                "{out}/{name} differs from the committed file"
+            );
+            assert_eq!(std::fs::read(t.path().join(name)).unwrap(), want);
+        }
+        // The manifest's compared part is the committed one.
+        let m = hadal::manifest::Manifest::read(&t.path().join("manifest.json")).unwrap();
+        let c = hadal::manifest::Manifest::read(&committed.join("manifest.json")).unwrap();
+        assert_eq!(
+            serde_json::to_value(&m.compared).unwrap(),
+            serde_json::to_value(&c.compared).unwrap()
+        );
+    }
+}
+
+#[test]
+fn figures_from_memory_are_the_figures_from_the_written_files() {
+    for file in ["hot_start.hadal", "glacial_window.hadal"] {
+        let t = tempfile::tempdir().unwrap();
+        let result = run_demo(file, t.path());
+        let opts = hadal::figures::RunOptions::default();
+        let from_memory = hadal::figures::run::figures(&result.figure_data().unwrap(), &opts);
+        let from_files = hadal::figures::draw_run_with(t.path(), &opts);
+        let (a, b) = (from_memory.unwrap(), from_files.unwrap());
+        assert!(!a.is_empty(), "{file}: no figures");
+        assert_eq!(
+            a.iter().map(|f| &f.0).collect::<Vec<_>>(),
+            b.iter().map(|f| &f.0).collect::<Vec<_>>()
+        );
+        for ((name, x), (_, y)) in a.iter().zip(&b) {
+            assert!(x == y, "{file}: {name} differs between memory and files");
+        }
+        // The series columns are the file's.
+        let series = result.series().unwrap();
+        let read = hadal::figures::data::read_numeric_columns(&t.path().join("series.csv"))
+            .unwrap()
+            .unwrap();
+        assert_eq!(series, read);
+    }
+}
+
+#[test]
+fn a_library_file_is_refused_with_its_warnings_kept() {
+    let t = tempfile::tempdir().unwrap();
+    let p = t.path().join("lib.hadal");
+    std::fs::write(&p, "param k = 1 / 1 Gyr\n").unwrap();
+    match api::load(&p, &LoadOptions::default()) {
+        Err(e @ LoadError::Library { .. }) => {
+            assert!(e.to_string().contains("is a library file"), "{e}")
+        }
+        other => panic!("expected a library refusal, got {other:?}"),
+    }
+    match api::load(&t.path().join("none.hadal"), &LoadOptions::default()) {
+        Err(LoadError::Io { .. }) => {}
+        other => panic!("expected an I/O error, got {other:?}"),
+    }
+}
