@@ -81,3 +81,43 @@ fn a_library_file_is_refused_with_its_warnings_kept() {
         other => panic!("expected an I/O error, got {other:?}"),
     }
 }
+
+#[test]
+fn the_library_compares_a_rerun_with_a_published_manifest() {
+    use hadal::manifest::verify::{self, Drift};
+    let opened = verify::open(Path::new("outputs/mirrowen_hot_start/manifest.json")).unwrap();
+    let t = tempfile::tempdir().unwrap();
+    let result = run_demo("hot_start.hadal", t.path());
+    let fresh: Vec<(&str, Vec<u8>)> = result.files().to_vec();
+    let same = verify::compare(&opened, &fresh, None).unwrap();
+    assert_eq!(same, verify::Comparison::default());
+
+    // One number of the series nudged: drift, unless within a tolerance.
+    let mut nudged = fresh.clone();
+    let text = String::from_utf8(nudged[0].1.clone()).unwrap();
+    let line = text.lines().nth(2).unwrap();
+    let cell = line.split(',').nth(1).unwrap();
+    let bumped = (cell.parse::<f64>().unwrap() * (1.0 + 1e-9)).to_string();
+    let changed = line.replacen(cell, &bumped, 1);
+    nudged[0].1 = text.replacen(line, &changed, 1).into_bytes();
+    let drifted = verify::compare(&opened, &nudged, None).unwrap();
+    assert!(drifted.drifted);
+    assert!(
+        matches!(&drifted.drift[..], [Drift::Values { path, recomputed, .. }] if path == "series.csv" && *recomputed == bumped),
+        "{:?}",
+        drifted.drift
+    );
+    let within = verify::compare(&opened, &nudged, Some(1e-6)).unwrap();
+    assert!(!within.drifted && within.drift.is_empty());
+    assert!(within.tolerated > 0.0 && within.tolerated <= 1e-6);
+
+    // An output no longer made.
+    let fewer = &fresh[1..];
+    let missing = verify::compare(&opened, fewer, None).unwrap();
+    assert_eq!(
+        missing.drift,
+        vec![Drift::NotProduced {
+            path: "series.csv".into()
+        }]
+    );
+}

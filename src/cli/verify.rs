@@ -4,8 +4,8 @@ use std::path::{Path, PathBuf};
 
 use super::{report, EXIT_INVALID, EXIT_OK, EXIT_USAGE};
 use crate::check::CheckError;
-use crate::manifest::verify::{self, shown as sh, Published, RefusalKind};
-use crate::manifest::{self, diff_csv, hash_bytes, Manifest};
+use crate::manifest::verify::{self, shown as sh, Drift, Published, RefusalKind};
+use crate::manifest::{self, diff_csv, Manifest};
 use crate::report as rep;
 
 fn outputs_of(
@@ -57,72 +57,17 @@ fn verify_one(path: &Path, rtol: Option<f64>) -> i32 {
         }
     };
     let fresh = outputs_of(model, &outcome);
-    let mut drift = false;
-    let mut tolerated: f64 = 0.0;
-    for rec in &m.compared.outputs {
-        let Some((_, bytes)) = fresh.iter().find(|(n, _)| *n == rec.path) else {
-            eprintln!("drift: {name}: output `{}` is no longer produced", rec.path);
-            drift = true;
-            continue;
-        };
-        // A published file is compared with the recomputed one, so twice
-        // its size (plus room for longer numbers) bounds what is read.
-        let limit = (bytes.len() as u64).saturating_mul(2) + (1 << 20);
-        let published = match opened.published(&rec.path, limit) {
-            Ok(Published::Bytes(b)) => Some(b),
-            Ok(Published::Absent) => None,
-            Ok(Published::TooLarge(n)) => {
-                eprintln!(
-                    "drift: {name}: the published `{}` is {n} bytes, far more than the {} bytes recomputed; not compared",
-                    rec.path,
-                    bytes.len()
-                );
-                drift = true;
-                continue;
-            }
-            Err(p) => {
-                report_plain(&[p]);
-                return EXIT_USAGE;
-            }
-        };
-        let fresh_hash = hash_bytes(bytes);
-        let pub_ok = published
-            .as_ref()
-            .is_none_or(|b| hash_bytes(b) == rec.blake3);
-        if fresh_hash == rec.blake3 && pub_ok {
-            continue;
+    let comparison = match verify::compare(&opened, &fresh, rtol) {
+        Ok(c) => c,
+        Err(p) => {
+            report_plain(&[p]);
+            return EXIT_USAGE;
         }
-        // Compare the values against the published file when there is one.
-        let reference = published.clone().unwrap_or_default();
-        if published.is_none() {
-            eprintln!("drift: {name}: `{}` differs from the manifest (blake3 {} instead of {}); the published file is not beside the manifest to compare values", rec.path, &fresh_hash[..16], sh(rec.blake3.get(..16).unwrap_or(&rec.blake3)));
-            drift = true;
-            continue;
-        }
-        let d = diff_csv(&reference, bytes);
-        if !pub_ok && fresh_hash == rec.blake3 {
-            eprintln!("drift: {name}: the published `{}` does not match its manifest (it was edited after the run)", rec.path);
-        }
-        let within = rtol.is_some_and(|r| d.shape.is_empty() && d.max_rel() <= r) && pub_ok;
-        if within {
-            tolerated = tolerated.max(d.max_rel());
-            continue;
-        }
-        drift = true;
-        for s in &d.shape {
-            eprintln!("drift: {name}: `{}`: {}", rec.path, sh(s));
-        }
-        if let Some((col, age, a, b)) = &d.first {
-            eprintln!(
-                "drift: {name}: `{}` first differs in column `{}` at age {}: published {}, recomputed {b}; largest relative difference {:.3e}",
-                rec.path,
-                sh(col),
-                sh(age),
-                sh(a),
-                d.max_rel()
-            );
-        }
+    };
+    for d in &comparison.drift {
+        render_drift(name, d);
     }
+    let (drift, tolerated) = (comparison.drifted, comparison.tolerated);
     if drift {
         eprintln!(
             "{name}: results drifted{}; if the change is intended, regenerate the outputs (see README) and review the diff",
@@ -142,6 +87,48 @@ fn verify_one(path: &Path, rtol: Option<f64>) -> i32 {
         );
     }
     EXIT_OK
+}
+
+/// One line on standard error for each way an output drifted.
+fn render_drift(name: &str, d: &Drift) {
+    match d {
+        Drift::NotProduced { path } => {
+            eprintln!("drift: {name}: output `{path}` is no longer produced")
+        }
+        Drift::PublishedTooLarge {
+            path,
+            bytes,
+            recomputed,
+        } => eprintln!(
+            "drift: {name}: the published `{path}` is {bytes} bytes, far more than the {recomputed} bytes recomputed; not compared"
+        ),
+        Drift::NoPublished {
+            path,
+            recomputed_hash,
+            recorded_hash,
+        } => eprintln!(
+            "drift: {name}: `{path}` differs from the manifest (blake3 {} instead of {}); the published file is not beside the manifest to compare values",
+            &recomputed_hash[..16],
+            sh(recorded_hash.get(..16).unwrap_or(recorded_hash))
+        ),
+        Drift::EditedAfterRun { path } => eprintln!(
+            "drift: {name}: the published `{path}` does not match its manifest (it was edited after the run)"
+        ),
+        Drift::Shape { path, what } => eprintln!("drift: {name}: `{path}`: {}", sh(what)),
+        Drift::Values {
+            path,
+            column,
+            age,
+            published,
+            recomputed,
+            max_rel,
+        } => eprintln!(
+            "drift: {name}: `{path}` first differs in column `{}` at age {}: published {}, recomputed {recomputed}; largest relative difference {max_rel:.3e}",
+            sh(column),
+            sh(age),
+            sh(published)
+        ),
+    }
 }
 
 pub(crate) fn cmd_verify(manifests: &[PathBuf], rtol: Option<f64>) -> i32 {
