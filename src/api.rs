@@ -352,6 +352,23 @@ pub fn output_files(
     files
 }
 
+/// Recompute the outputs of a published run from the inputs its manifest
+/// recorded and [`crate::manifest::verify::open`] checked, without the
+/// cache, for [`crate::manifest::verify::compare`]. A solve that fails is
+/// an `Invalid` error pointing into the recorded sources.
+pub fn recompute(
+    opened: &crate::manifest::verify::Opened,
+) -> Result<Vec<(&'static str, Vec<u8>)>, CheckError> {
+    let checked = opened.check()?;
+    let model = &checked.model;
+    let outcome = pipeline::execute(model, None).map_err(|p| CheckError::Invalid {
+        sources: model.sources.clone(),
+        problems: vec![p],
+    })?;
+    let expectations = report::expectations(model, &outcome.run);
+    Ok(output_files(model, &outcome, &expectations))
+}
+
 /// H0606 for each stage whose water budget does not close.
 pub fn closure_problems(model: &Model, run: &Run) -> Vec<Problem> {
     run.stages
@@ -368,6 +385,106 @@ pub fn closure_problems(model: &Model, run: &Run) -> Vec<Problem> {
             )
             .label(st.span, "this stage")
             .help("tighten `solver rtol`, or raise `solver budget_tolerance` if the loss is understood")
+        })
+        .collect()
+}
+
+/// The water where a run ended.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Inventories {
+    /// The scenario's `ocean_mass` (kg), or one present ocean, 1.4e21 kg:
+    /// the unit summaries show inventories in.
+    pub ocean_mass: f64,
+    /// Each reservoir's name and final inventory (kg), by name; NaN when
+    /// no stage ran.
+    pub reservoirs: Vec<(String, f64)>,
+    /// Water delivered from `outside` and lost to it (kg): the two ledger
+    /// components at the end of the state vector.
+    pub delivered: f64,
+    pub lost: f64,
+    /// Whether any stage ran (otherwise the values are NaN).
+    pub solved: bool,
+}
+
+/// The final inventories of `run`, read from the last stage's end state by
+/// its layout (`compile::state_order`, then the two ledger components).
+pub fn final_inventories(model: &Model, run: &Run) -> Inventories {
+    let ocean_mass = model
+        .find("ocean_mass")
+        .and_then(|d| check::eval_const(model, &model.defs[d].expr))
+        .unwrap_or(1.4e21);
+    let last = run.stages.last().map(|l| &l.end.0);
+    let order = crate::compile::state_order(model);
+    let reservoirs = model
+        .reservoirs()
+        .map(|(id, d)| {
+            let k = order.iter().position(|&o| o == id).unwrap_or(0);
+            (d.name.clone(), last.map_or(f64::NAN, |y| y[k]))
+        })
+        .collect();
+    let ledger = |back: usize| last.map_or(f64::NAN, |y| y[y.len() - back]);
+    Inventories {
+        ocean_mass,
+        reservoirs,
+        delivered: ledger(2),
+        lost: ledger(1),
+        solved: last.is_some(),
+    }
+}
+
+/// What a parameter reaches, for `hadal params`.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ParamInfo {
+    pub name: String,
+    /// The value in the unit it is shown in.
+    pub value: f64,
+    pub unit: String,
+    /// The stages whose solve it reaches.
+    pub stages: Vec<String>,
+    /// Whether it reaches a reservoir's or state's initial value.
+    pub initial_state: bool,
+    /// The stages that `set` it.
+    pub set_in: Vec<String>,
+    pub doc: Option<String>,
+}
+
+/// Every parameter of `model` and what it influences, in the dependency
+/// graph's order of parameters.
+pub fn parameters(model: &Model) -> Vec<ParamInfo> {
+    use crate::graph::{self, DepGraph, Node};
+    use crate::model::DefKind;
+    let g = DepGraph::build(model);
+    let base = crate::compile::stage_params(model, None);
+    graph::param_stages(model, &g)
+        .into_iter()
+        .map(|(id, stages)| {
+            let d = &model.defs[id];
+            let (unit, shown) = report::shown_unit(model, id);
+            let initial_state = model
+                .defs
+                .iter()
+                .enumerate()
+                .filter(|(_, x)| {
+                    matches!(x.kind, DefKind::Reservoir { .. } | DefKind::State { .. })
+                })
+                .any(|(r, _)| g.closure(&[Node::Initial(r)]).contains(&Node::Def(id)));
+            ParamInfo {
+                name: d.name.clone(),
+                value: shown.from_internal(base[id].unwrap_or(f64::NAN)),
+                unit,
+                stages: stages
+                    .iter()
+                    .map(|&s| model.stages[s].name.clone())
+                    .collect(),
+                initial_state,
+                set_in: model
+                    .stages
+                    .iter()
+                    .filter(|s| s.sets.iter().any(|(p, _)| *p == id))
+                    .map(|s| s.name.clone())
+                    .collect(),
+                doc: d.doc.clone(),
+            }
         })
         .collect()
 }

@@ -121,3 +121,88 @@ fn the_library_compares_a_rerun_with_a_published_manifest() {
         }]
     );
 }
+
+#[test]
+fn the_library_diffs_two_runs_and_finds_nothing_between_a_run_and_itself() {
+    use hadal::manifest::diff::{self, Difference};
+    let same = diff::diff(
+        Path::new("outputs/mirrowen_hot_start"),
+        Path::new("outputs/mirrowen_hot_start/manifest.json"),
+    )
+    .unwrap();
+    assert!(same.differences.is_empty() && same.unreadable.is_none());
+
+    let t = tempfile::tempdir().unwrap();
+    let scenario = api::load(
+        Path::new("scenarios/hot_start.hadal"),
+        &LoadOptions {
+            overrides: vec![("q0".into(), "30 TW".into())],
+        },
+    )
+    .unwrap();
+    scenario
+        .run(&RunOptions::default())
+        .unwrap()
+        .write(t.path())
+        .unwrap();
+    let d = diff::diff(Path::new("outputs/mirrowen_hot_start"), t.path()).unwrap();
+    assert!(
+        matches!(&d.differences[0], Difference::Model),
+        "{:?}",
+        d.differences
+    );
+    assert!(d
+        .differences
+        .iter()
+        .any(|x| matches!(x, Difference::Overrides { a, b } if a.is_empty() && b[0].name == "q0")));
+    assert!(d
+        .differences
+        .iter()
+        .any(|x| matches!(x, Difference::Output { path, .. } if path == "series.csv")));
+    assert!(matches!(
+        diff::diff(
+            Path::new("outputs/mirrowen_hot_start"),
+            &t.path().join("none")
+        ),
+        Err(diff::DiffError::Manifest { .. })
+    ));
+}
+
+#[test]
+fn parameters_and_final_inventories_come_from_the_library() {
+    let scenario = api::load(
+        Path::new("scenarios/hot_start.hadal"),
+        &LoadOptions::default(),
+    )
+    .unwrap();
+    let model = scenario.model();
+    let params = api::parameters(model);
+    let late = params
+        .iter()
+        .find(|p| p.name == "late_regassing_efficiency")
+        .unwrap();
+    assert_eq!(late.stages, vec!["late".to_string()]);
+    let set = params
+        .iter()
+        .find(|p| p.name == "slab_water_column")
+        .unwrap();
+    assert_eq!(set.set_in, vec!["early".to_string()]);
+    assert_eq!((set.value, set.unit.as_str()), (500000.0, "kg m-2"));
+
+    let result = scenario.run(&RunOptions::default()).unwrap();
+    let inv = api::final_inventories(model, &result.outcome.run);
+    assert!(inv.solved);
+    assert_eq!(
+        inv.reservoirs
+            .iter()
+            .map(|r| r.0.as_str())
+            .collect::<Vec<_>>(),
+        ["ocean", "transition_zone", "upper_mantle"]
+    );
+    // The ledger closes the budget: what is in the reservoirs is what
+    // started there plus what came from outside, less what left.
+    let start: f64 = hadal::solve::initial_state(model).0[..3].iter().sum();
+    let end: f64 = inv.reservoirs.iter().map(|r| r.1).sum();
+    assert!(inv.delivered > 0.0 && inv.lost == 0.0);
+    assert!(((end - start - inv.delivered + inv.lost) / start).abs() < 1e-12);
+}

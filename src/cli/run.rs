@@ -4,7 +4,6 @@ use std::path::{Path, PathBuf};
 
 use super::{report, usage_error, EXIT_INVALID, EXIT_OK};
 use crate::api::{self, LoadError, LoadOptions, RunError, Scenario};
-use crate::check;
 use crate::model::Model;
 use crate::pipeline::{self, Outcome};
 use crate::report::{self as rep, fmt_num};
@@ -121,13 +120,6 @@ fn write_run_figures(result: &api::RunResult, dir: &Path) -> Result<(), String> 
     super::plot::write_files(dir, &files).map(drop)
 }
 
-fn ocean_masses(model: &Model) -> f64 {
-    model
-        .find("ocean_mass")
-        .and_then(|d| check::eval_const(model, &model.defs[d].expr))
-        .unwrap_or(1.4e21)
-}
-
 fn print_summary(
     model: &Model,
     outcome: &Outcome,
@@ -186,20 +178,18 @@ fn print_summary(
             println!("  {} computed: {}", st.name, rp.reason);
         }
     }
-    let om = ocean_masses(model);
-    if let Some(last) = run.stages.last() {
+    let inv = api::final_inventories(model, run);
+    let om = inv.ocean_mass;
+    if inv.solved {
         println!("final inventories (ocean masses of {om:.3e} kg):");
-        let order = crate::compile::state_order(model);
-        for (id, d) in model.reservoirs() {
-            let k = order.iter().position(|&o| o == id).unwrap_or(0);
-            println!("  {:<24} {:>10.4}", d.name, last.end.0[k] / om);
+        for (name, kg) in &inv.reservoirs {
+            println!("  {:<24} {:>10.4}", name, kg / om);
         }
-        let n = last.end.0.len();
-        if last.end.0[n - 2] != 0.0 || last.end.0[n - 1] != 0.0 {
+        if inv.delivered != 0.0 || inv.lost != 0.0 {
             println!(
                 "  delivered from outside {:>10.4}, lost to outside {:>10.4}",
-                last.end.0[n - 2] / om,
-                last.end.0[n - 1] / om
+                inv.delivered / om,
+                inv.lost / om
             );
         }
     }
@@ -263,16 +253,14 @@ fn summary_json(
             })
         })
         .collect();
-    let om = ocean_masses(model);
-    let last = run.stages.last();
-    let order = crate::compile::state_order(model);
-    let finals: serde_json::Map<String, serde_json::Value> = model
-        .reservoirs()
-        .map(|(id, d)| {
-            let k = order.iter().position(|&o| o == id).unwrap_or(0);
-            let kg = last.map_or(f64::NAN, |l| l.end.0[k]);
+    let inv = api::final_inventories(model, run);
+    let om = inv.ocean_mass;
+    let finals: serde_json::Map<String, serde_json::Value> = inv
+        .reservoirs
+        .iter()
+        .map(|(name, kg)| {
             (
-                d.name.clone(),
+                name.clone(),
                 serde_json::json!({"kg": kg, "ocean_masses": kg / om}),
             )
         })
@@ -312,68 +300,26 @@ pub(crate) fn cmd_params(file: &Path, sets: &[String], json: bool) -> i32 {
         Ok(s) => s,
         Err(code) => return code,
     };
-    let model = scenario.model();
-    let g = crate::graph::DepGraph::build(model);
-    let influence = crate::graph::param_stages(model, &g);
-    let base = crate::compile::stage_params(model, None);
-    let mut list = Vec::new();
-    for (id, stages) in influence {
-        let d = &model.defs[id];
-        let v = base[id].unwrap_or(f64::NAN);
-        let (unit_text, unit) = rep::shown_unit(model, id);
-        let shown = unit.from_internal(v);
-        let initial = model
-            .defs
-            .iter()
-            .enumerate()
-            .filter(|(_, x)| {
-                matches!(
-                    x.kind,
-                    crate::model::DefKind::Reservoir { .. } | crate::model::DefKind::State { .. }
-                )
-            })
-            .any(|(r, _)| {
-                g.closure(&[crate::graph::Node::Initial(r)])
-                    .contains(&crate::graph::Node::Def(id))
-            });
-        let names: Vec<String> = stages
-            .iter()
-            .map(|&s| model.stages[s].name.clone())
-            .collect();
-        let overridden: Vec<String> = model
-            .stages
-            .iter()
-            .filter(|s| s.sets.iter().any(|(p, _)| *p == id))
-            .map(|s| s.name.clone())
-            .collect();
-        list.push((
-            d.name.clone(),
-            shown,
-            unit_text,
-            names,
-            initial,
-            overridden,
-            d.doc.clone(),
-        ));
-    }
+    let list = api::parameters(scenario.model());
     if json {
         let v: Vec<serde_json::Value> = list
             .iter()
-            .map(|(n, v, u, st, init, ov, doc)| {
-                serde_json::json!({"name": n, "value": v, "unit": u, "stages": st, "initial_state": init, "set_in": ov, "doc": doc})
+            .map(|p| {
+                serde_json::json!({"name": p.name, "value": p.value, "unit": p.unit, "stages": p.stages, "initial_state": p.initial_state, "set_in": p.set_in, "doc": p.doc})
             })
             .collect();
         println!("{}", serde_json::to_string_pretty(&v).unwrap_or_default());
         return EXIT_OK;
     }
-    let w = list.iter().map(|l| l.0.len()).max().unwrap_or(4).max(9);
+    let w = list.iter().map(|p| p.name.len()).max().unwrap_or(4).max(9);
     println!(
         "{:<w$}  {:>14}  {:<10}  influences",
         "parameter", "value", "unit"
     );
-    for (n, v, u, st, init, ov, _) in &list {
-        let mut infl = st.join(", ");
-        if *init {
+    for p in &list {
+        let (n, u, ov) = (&p.name, &p.unit, &p.set_in);
+        let mut infl = p.stages.join(", ");
+        if p.initial_state {
             infl = if infl.is_empty() {
                 "initial state".into()
             } else {
@@ -386,7 +332,7 @@ pub(crate) fn cmd_params(file: &Path, sets: &[String], json: bool) -> i32 {
         if !ov.is_empty() {
             infl.push_str(&format!(" (set in {})", ov.join(", ")));
         }
-        println!("{n:<w$}  {:>14}  {u:<10}  {infl}", rep::human_num(*v));
+        println!("{n:<w$}  {:>14}  {u:<10}  {infl}", rep::human_num(p.value));
     }
     EXIT_OK
 }

@@ -105,17 +105,41 @@ pub(crate) fn read_regular(path: &Path, limit: u64, follow: bool) -> Result<Vec<
     crate::fsutil::read_to_limit(file, len, limit).map_err(|e| e.to_string())
 }
 
+/// Why a manifest could not be read.
+#[derive(Debug, Clone, PartialEq)]
+pub enum ManifestError {
+    /// Not a readable regular file within the size limit.
+    Read(String),
+    /// Not JSON of a hadal manifest.
+    NotAManifest(String),
+    /// A manifest of another format version.
+    Format { found: String },
+}
+
+impl std::fmt::Display for ManifestError {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            ManifestError::Read(why) => f.write_str(why),
+            ManifestError::NotAManifest(why) => write!(f, "not a hadal manifest: {why}"),
+            ManifestError::Format { found } => write!(
+                f,
+                "manifest format `{}`, expected `{}`",
+                shown(found),
+                super::FORMAT
+            ),
+        }
+    }
+}
+
+impl std::error::Error for ManifestError {}
+
 /// Read and parse a manifest, size-limited; only a regular file.
-pub(crate) fn read_manifest(path: &Path) -> Result<Manifest, String> {
-    let bytes = read_regular(path, MAX_MANIFEST_BYTES, true)?;
+pub(crate) fn read_manifest(path: &Path) -> Result<Manifest, ManifestError> {
+    let bytes = read_regular(path, MAX_MANIFEST_BYTES, true).map_err(ManifestError::Read)?;
     let m: Manifest =
-        serde_json::from_slice(&bytes).map_err(|e| format!("not a hadal manifest: {e}"))?;
+        serde_json::from_slice(&bytes).map_err(|e| ManifestError::NotAManifest(e.to_string()))?;
     if m.format != super::FORMAT {
-        return Err(format!(
-            "manifest format `{}`, expected `{}`",
-            shown(&m.format),
-            super::FORMAT
-        ));
+        return Err(ManifestError::Format { found: m.format });
     }
     Ok(m)
 }
@@ -237,7 +261,8 @@ fn versioned_project(dir: &Path) -> Option<&Path> {
 
 /// Open the manifest at `path` for verification: see the module comment.
 pub fn open(path: &Path) -> Result<Opened, Refusal> {
-    let m = read_manifest(path).map_err(|why| Refusal::unusable(vec![unusable(path, &why)]))?;
+    let m = read_manifest(path)
+        .map_err(|why| Refusal::unusable(vec![unusable(path, &why.to_string())]))?;
     let forms = check_forms(path, &m);
     if !forms.is_empty() {
         return Err(Refusal::unusable(forms));
