@@ -17,6 +17,7 @@ use crate::cache::Store;
 use crate::check::{self, CheckError, CheckOptions};
 use crate::diagnostic::Problem;
 use crate::figures::data::{Column, RunData};
+use crate::figures::FigureError;
 use crate::manifest::{self, Manifest};
 use crate::model::Model;
 use crate::pipeline::{self, Outcome};
@@ -278,24 +279,31 @@ impl RunResult {
     /// The series as numeric columns (name, unit, values in that unit),
     /// the age column first: decoded from the series bytes in memory, so
     /// they are exactly the numbers a reader of `series.csv` gets.
-    pub fn series(&self) -> Result<Vec<Column>, String> {
-        crate::figures::data::decode_series(self.file("series.csv").unwrap_or_default())
+    pub fn series(&self) -> Result<Vec<Column>, FigureError> {
+        crate::figures::data::decode_series(self.series_bytes())
     }
 
-    /// What the figures need, from memory: the same [`RunData`] that
-    /// [`RunData::load`] reads from the written directory, so the SVG
-    /// bytes are the same either way. Call it after [`Self::write`] for
-    /// the manifest as written.
-    pub fn figure_data(&self) -> Result<RunData, String> {
-        let table = |name: &str| -> Result<_, String> {
+    fn series_bytes(&self) -> &[u8] {
+        self.file("series.csv").unwrap_or_default()
+    }
+
+    /// What the figures need, from memory: the [`RunData`] that
+    /// [`RunData::load`] reads from the written directory, with only the
+    /// series columns a figure draws (the age and those of
+    /// [`crate::figures::run::is_drawn`]), so the SVG bytes are the same
+    /// either way while a large series is not decoded whole. Call it after
+    /// [`Self::write`] for the manifest as written.
+    pub fn figure_data(&self) -> Result<RunData, FigureError> {
+        let table = |name: &str| {
             self.file(name)
-                .map(|b| {
-                    crate::figures::data::TextTable::parse(b).map_err(|e| format!("{name}: {e}"))
-                })
+                .map(|b| crate::figures::data::TextTable::parse(b).map_err(|e| e.at(name)))
                 .transpose()
         };
+        let columns = crate::figures::data::decode_series_columns(self.series_bytes(), |n, u| {
+            n.eq_ignore_ascii_case("age") || crate::figures::run::is_drawn(n, u)
+        })?;
         RunData::from_parts(
-            self.series()?,
+            columns,
             table("stages.csv")?,
             table("events.csv")?,
             serde_json::from_slice(&self.manifest.to_json()).ok(),

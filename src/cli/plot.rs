@@ -10,7 +10,10 @@ use crate::figures::{self, InventoryUnit, RunOptions};
 /// Draw the figures of `dir` and write them into it, each atomically.
 /// Returns the names written. Used by `hadal plot` and after `hadal run`.
 pub(crate) fn write_figures(dir: &Path, opts: &RunOptions) -> Result<Vec<String>, String> {
-    write_files(dir, &figures::draw_dir(dir, opts)?)
+    write_files(
+        dir,
+        &figures::draw_dir(dir, opts).map_err(|e| e.to_string())?,
+    )
 }
 
 /// Write figure files into `dir`, each atomically; returns their names.

@@ -114,8 +114,9 @@ pub(crate) fn cmd_run(
 }
 
 fn write_run_figures(result: &api::RunResult, dir: &Path) -> Result<(), String> {
-    let data = result.figure_data()?;
-    let files = crate::figures::run::figures(&data, &crate::figures::RunOptions::default())?;
+    let data = result.figure_data().map_err(|e| e.to_string())?;
+    let files = crate::figures::run::figures(&data, &crate::figures::RunOptions::default())
+        .map_err(|e| e.to_string())?;
     drop(data);
     super::plot::write_files(dir, &files).map(drop)
 }
