@@ -268,6 +268,13 @@ impl RunResult {
         &self.files
     }
 
+    /// Hand over the output files (name, bytes), leaving none here: once
+    /// written, the series is most of a run's memory, and a caller that
+    /// still draws or reports frees it this way.
+    pub fn take_files(&mut self) -> Vec<(&'static str, Vec<u8>)> {
+        std::mem::take(&mut self.files)
+    }
+
     /// The bytes of one output file.
     pub fn file(&self, name: &str) -> Option<&[u8]> {
         self.files

@@ -62,6 +62,11 @@ fn figures_from_memory_are_the_figures_from_the_written_files() {
             .unwrap()
             .unwrap();
         assert_eq!(series, read);
+        // The bytes can be handed over once written.
+        let mut result = result;
+        let names: Vec<&str> = result.take_files().iter().map(|f| f.0).collect();
+        assert_eq!(&names[..3], ["series.csv", "stages.csv", "events.csv"]);
+        assert!(result.files().is_empty());
     }
 }
 

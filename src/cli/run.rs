@@ -93,7 +93,7 @@ pub(crate) fn cmd_run(
     // as `hadal plot DIR` reads back (so it redraws the same bytes); they
     // are not listed in the manifest.
     if plots && !crate::cancel::requested() {
-        if let Err(e) = write_run_figures(&result, &dir) {
+        if let Err(e) = write_run_figures(&mut result, &dir) {
             eprintln!("warning: figures not drawn: {e}");
         }
     }
@@ -113,8 +113,12 @@ pub(crate) fn cmd_run(
     EXIT_OK
 }
 
-fn write_run_figures(result: &api::RunResult, dir: &Path) -> Result<(), String> {
+/// The figures of a written run, from its result in memory; the output
+/// bytes are freed before drawing, so the figures add only the columns
+/// they draw to the run's memory.
+fn write_run_figures(result: &mut api::RunResult, dir: &Path) -> Result<(), String> {
     let data = result.figure_data().map_err(|e| e.to_string())?;
+    drop(result.take_files());
     let files = crate::figures::run::figures(&data, &crate::figures::RunOptions::default())
         .map_err(|e| e.to_string())?;
     drop(data);

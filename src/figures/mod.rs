@@ -2,10 +2,12 @@
 //! directory alone (`series.csv`, `stages.csv`, `events.csv`,
 //! `manifest.json` for a run; `quantiles.csv`, `members.csv`,
 //! `summary.json` for an ensemble), so `hadal plot DIR` redraws a
-//! published result without recomputing it.
+//! published result without recomputing it. `hadal run` fills the same
+//! [`RunData`] from the outputs it holds in memory
+//! (`api::RunResult::figure_data`), so both draw the same bytes.
 //!
-//! Invariant: this module reads output files and writes SVG and HTML
-//! bytes; it never sees a scenario, a model or the solver, and it never
+//! Invariant: this module reads outputs (files, or their bytes in memory)
+//! and writes SVG and HTML bytes; it never sees a scenario, a model or the solver, and it never
 //! writes files itself (callers write with `fsutil::write_atomic`). The
 //! same files give the same bytes: no timestamps, no random ids, no
 //! platform math in placement.
