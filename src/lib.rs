@@ -10,6 +10,7 @@
 //! separate step. The library never prints and never exits.
 
 pub mod api;
+pub mod builtins;
 pub mod cache;
 pub mod cancel;
 pub mod check;

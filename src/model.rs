@@ -9,6 +9,7 @@
 use std::fmt::Write;
 use std::path::PathBuf;
 
+use crate::builtins::{HypsRead, ReservoirRead};
 use crate::span::{Sources, Span};
 pub use crate::syntax::BinOp;
 use crate::units::{Dim, Unit};
@@ -367,15 +368,9 @@ pub enum ExprKind {
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum Builtin {
-    Exp,
-    Ln,
-    Log10,
-    Sqrt,
-    Abs,
-    Min,
-    Max,
-    Clamp,
-    Smoothstep,
+    /// A function of numbers: a row of `builtins::BUILTINS`, which holds its
+    /// name, dimension rule, kernel and compilation.
+    Num(crate::builtins::Func),
     Decay,
     Capacity(DefId),
     Fill(DefId),
@@ -417,7 +412,7 @@ impl Expr {
                     | Builtin::SeaLevelIsostatic(t)
                     | Builtin::LandFraction(t)
                     | Builtin::BasinVolume(t) => out.push(Ref::Table(*t)),
-                    _ => {}
+                    Builtin::Num(_) | Builtin::Decay => {}
                 }
                 for a in args {
                     a.refs(out);
@@ -545,27 +540,25 @@ impl Model {
 
     pub fn builtin_name(&self, f: Builtin) -> String {
         match f {
-            Builtin::Exp => "exp".into(),
-            Builtin::Ln => "ln".into(),
-            Builtin::Log10 => "log10".into(),
-            Builtin::Sqrt => "sqrt".into(),
-            Builtin::Abs => "abs".into(),
-            Builtin::Min => "min".into(),
-            Builtin::Max => "max".into(),
-            Builtin::Clamp => "clamp".into(),
-            Builtin::Smoothstep => "smoothstep".into(),
-            Builtin::Decay => "decay".into(),
-            Builtin::Capacity(r) => format!("capacity {}", self.defs[r].name),
-            Builtin::Fill(r) => format!("fill {}", self.defs[r].name),
-            Builtin::Excess(r) => format!("excess {}", self.defs[r].name),
+            Builtin::Num(f) => f.name().into(),
+            Builtin::Decay => crate::builtins::DECAY.into(),
+            Builtin::Capacity(r) => self.read_name(ReservoirRead::Capacity, r),
+            Builtin::Fill(r) => self.read_name(ReservoirRead::Fill, r),
+            Builtin::Excess(r) => self.read_name(ReservoirRead::Excess, r),
             Builtin::Interp(t) => format!("table {}", self.tables[t].name),
-            Builtin::SeaLevel(t) => format!("sea_level {}", self.tables[t].name),
-            Builtin::SeaLevelIsostatic(t) => {
-                format!("sea_level_isostatic {}", self.tables[t].name)
-            }
-            Builtin::LandFraction(t) => format!("land_fraction {}", self.tables[t].name),
-            Builtin::BasinVolume(t) => format!("basin_volume {}", self.tables[t].name),
+            Builtin::SeaLevel(t) => self.hyps_name(HypsRead::SeaLevel, t),
+            Builtin::SeaLevelIsostatic(t) => self.hyps_name(HypsRead::SeaLevelIsostatic, t),
+            Builtin::LandFraction(t) => self.hyps_name(HypsRead::LandFraction, t),
+            Builtin::BasinVolume(t) => self.hyps_name(HypsRead::BasinVolume, t),
         }
+    }
+
+    fn read_name(&self, read: ReservoirRead, r: DefId) -> String {
+        format!("{} {}", read.name(), self.defs[r].name)
+    }
+
+    fn hyps_name(&self, read: HypsRead, t: TableId) -> String {
+        format!("{} {}", read.name(), self.tables[t].name)
     }
 
     /// The canonical text of one definition: kind, name, dimension and every

@@ -175,7 +175,7 @@ fn measure_ensemble(rows: u64, outputs: usize, members: u64, spread: &str) {
         store: None,
         progress: None,
     };
-    let (state, peak) = peak_of(|| hadal::ensemble::run(&m, &opts, out.path()).unwrap());
+    let ((state, _), peak) = peak_of(|| hadal::ensemble::run(&m, &opts, out.path()).unwrap());
     assert_eq!(state.members(), members);
     assert!(
         peak <= estimate,

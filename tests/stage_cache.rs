@@ -363,3 +363,112 @@ fn stage_rows_are_read_only_to_derive_the_series_and_lost_rows_are_solved_again(
     assert_ne!(derived.series_csv, first.series_csv);
     assert!(derived.warnings.is_empty());
 }
+
+/// An ensemble's shared stages go through the same stage driver as a
+/// single run: the same key, so a run's entry serves the ensemble, and the
+/// same policy, so a damaged entry gives the same H0701 warning (it was
+/// dropped without a word before) and is solved and stored again.
+#[test]
+fn a_damaged_shared_stage_warns_under_ensemble_as_under_run() {
+    let env = Env::new();
+    // `late_k` acts only in the last stage: stages one and two are shared.
+    let f = env.write(&format!(
+        "{SCENARIO}ensemble {{\n  members = 4\n  seed = 1\n  vary late_k ~ uniform(0.05 / 1 Gyr, 0.2 / 1 Gyr)\n}}\n"
+    ));
+    let fingerprint = |out: &str| -> String {
+        let o = Command::new(env!("CARGO_BIN_EXE_hadal"))
+            .arg("run")
+            .arg(&f)
+            .arg("--out")
+            .arg(env.dir.path().join(out))
+            .arg("--json")
+            .env("HADAL_CACHE", env.cache())
+            .output()
+            .unwrap();
+        let v: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+        v["stages"][0]["fingerprint"].as_str().unwrap().to_owned()
+    };
+    let fp = fingerprint("o1");
+    let entry = env.cache().join("v2").join(&fp[..2]).join(&fp);
+    assert!(entry.is_file(), "{}", entry.display());
+    let damage = || {
+        let mut bytes = std::fs::read(&entry).unwrap();
+        let i = bytes.len() / 2;
+        bytes[i] ^= 0x01;
+        std::fs::write(&entry, bytes).unwrap();
+    };
+    // The rendered H0701 warning, from its first line to its help line.
+    let warning = |stderr: &str| -> String {
+        let lines: Vec<&str> = stderr.lines().collect();
+        let from = lines.iter().position(|l| l.contains("H0701"));
+        let from = from.unwrap_or_else(|| panic!("no H0701 in: {stderr}"));
+        let to = from
+            + lines[from..]
+                .iter()
+                .position(|l| l.contains("help:"))
+                .unwrap();
+        lines[from..=to].join("\n")
+    };
+
+    damage();
+    let (s, _, run_stderr) = env.run(&f, "o2", &[]);
+    assert_eq!(s, vec!["computed", "reused", "reused"]);
+    let under_run = warning(&run_stderr);
+    // miette wraps long lines: compare the words without the layout.
+    let plain: String = under_run
+        .chars()
+        .filter(|c| !c.is_whitespace() && *c != '│')
+        .collect();
+    assert!(
+        plain.contains(&format!(
+            "cacheentry{}forstage`one`iscorrupt",
+            entry.display()
+        )),
+        "{under_run}"
+    );
+
+    damage();
+    let o = Command::new(env!("CARGO_BIN_EXE_hadal"))
+        .arg("ensemble")
+        .arg(&f)
+        .arg("--out")
+        .arg(env.dir.path().join("ens"))
+        .env("HADAL_CACHE", env.cache())
+        .env("NO_COLOR", "1")
+        .output()
+        .unwrap();
+    let ens_stderr = String::from_utf8_lossy(&o.stderr).into_owned();
+    assert!(o.status.success(), "{ens_stderr}");
+    assert_eq!(warning(&ens_stderr), under_run);
+    assert_eq!(ens_stderr.matches("H0701").count(), 1, "{ens_stderr}");
+
+    // The ensemble stored the stage again under the run's key: the cache
+    // verifies, and a run reuses every stage.
+    let verify = Command::new(env!("CARGO_BIN_EXE_hadal"))
+        .args(["cache", "verify"])
+        .env("HADAL_CACHE", env.cache())
+        .output()
+        .unwrap();
+    assert_eq!(verify.status.code(), Some(0));
+    let (s, _, stderr) = env.run(&f, "o3", &[]);
+    assert_eq!(s, all("reused"));
+    assert!(!stderr.contains("H07"), "{stderr}");
+}
+
+/// A cache that cannot be written costs the reuse, not the run, and says
+/// so once: every write of a run goes to the same folder.
+#[test]
+fn an_unwritable_cache_is_one_warning_per_run() {
+    let env = Env::new();
+    let f = env.write(SCENARIO);
+    let (_, a, _) = env.run(&f, "o1", &["--no-cache"]);
+    // The store's layout folder is a file: no entry can be read or written.
+    std::fs::create_dir_all(env.cache()).unwrap();
+    std::fs::write(env.cache().join("v2"), b"").unwrap();
+    let (s, b, stderr) = env.run(&f, "o2", &[]);
+    assert_eq!(s, all("computed"));
+    assert_eq!(a, b);
+    assert_eq!(stderr.matches("H0702").count(), 1, "{stderr}");
+    let plain: String = stderr.split_whitespace().collect::<Vec<_>>().join(" ");
+    assert!(plain.contains("help: check the cache folder"), "{stderr}");
+}

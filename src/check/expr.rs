@@ -1,8 +1,10 @@
 //! Names and dimensions of expressions.
 
 use super::Checker;
+use crate::builtins::{self, Dims, Form, HypsRead, ReservoirRead};
 use crate::diagnostic::{nearest, Problem};
 use crate::model::{Builtin, DefId, DefKind, Expr, ExprKind, Model};
+use crate::numeric::hyps::Hypsometry;
 use crate::span::Span;
 use crate::syntax::{self, BinOp, UnOp, UnitText};
 use crate::units::{self, Dim, UnitError};
@@ -37,29 +39,9 @@ impl Typed {
     }
 }
 
-const FUNCTIONS: &[&str] = &[
-    "exp",
-    "ln",
-    "log10",
-    "sqrt",
-    "abs",
-    "min",
-    "max",
-    "clamp",
-    "smoothstep",
-    "decay",
-    "capacity",
-    "fill",
-    "excess",
-    "sea_level",
-    "sea_level_isostatic",
-    "land_fraction",
-    "basin_volume",
-];
-
 /// Names with a fixed meaning that no definition may take.
 pub fn is_reserved(name: &str) -> bool {
-    matches!(name, "age" | "time" | "outside") || FUNCTIONS.contains(&name)
+    matches!(name, "age" | "time" | "outside") || builtins::lookup(name).is_some()
 }
 
 /// A hint for a dimension mismatch.
@@ -305,7 +287,7 @@ impl Checker {
         let Some(def) = self.symbols.get(&id.text).copied() else {
             let mut p = Problem::error("H0201", format!("unknown name `{}`", id.text))
                 .label(span, "not defined");
-            if FUNCTIONS.contains(&id.text.as_str()) {
+            if builtins::lookup(&id.text).is_some() {
                 p = p.help(format!(
                     "`{}` is a function: call it, e.g. `{}(x)`",
                     id.text, id.text
@@ -635,7 +617,7 @@ impl Checker {
                     Typed::num(y_dim, tx.constant),
                 );
             }
-            if !FUNCTIONS.contains(&name) {
+            if builtins::lookup(name).is_none() {
                 let word = self.defs[def].kind.word();
                 self.error(
                     Problem::error("H0204", format!("`{name}` is a {word}, not a function"))
@@ -645,146 +627,49 @@ impl Checker {
                 return fail(self);
             }
         }
-        match name {
-            "exp" | "ln" | "log10" => {
-                if !self.arity(func, args, 1, 1) {
-                    return fail(self);
-                }
-                let (x, t) = self.check_expr(&args[0]);
-                if !self.expect_dim(
-                    &t,
-                    Dim::NONE,
-                    args[0].span,
-                    &format!("the argument of `{name}`"),
-                ) {
-                    return fail(self);
-                }
-                let f = match name {
-                    "exp" => Builtin::Exp,
-                    "ln" => Builtin::Ln,
-                    _ => Builtin::Log10,
-                };
-                self.call(f, vec![x], span, Typed::num(Dim::NONE, t.constant))
+        let Some(spec) = builtins::lookup(name) else {
+            let mut candidates: Vec<&str> = builtins::names().collect();
+            let tables: Vec<String> = self
+                .defs
+                .iter()
+                .filter(|d| matches!(d.kind, DefKind::Table(_)))
+                .map(|d| d.name.clone())
+                .collect();
+            candidates.extend(tables.iter().map(String::as_str));
+            let mut p = Problem::error("H0204", format!("unknown function `{name}`"))
+                .label(func.span, "not a built-in function or table");
+            p = match nearest(name, candidates.iter().copied()) {
+                Some(s) => p.help(format!("did you mean `{s}`?")),
+                None => p.help(format!(
+                    "the built-in functions are: {}",
+                    builtins::names().collect::<Vec<_>>().join(", ")
+                )),
+            };
+            self.error(p);
+            // Check the arguments anyway, for their own errors.
+            for a in args {
+                self.check_expr(a);
             }
-            "sqrt" | "abs" => {
-                if !self.arity(func, args, 1, 1) {
-                    return fail(self);
+            return fail(self);
+        };
+        let (lo, hi) = spec.arity().range();
+        if !self.arity(func, args, lo, hi) {
+            return fail(self);
+        }
+        match &spec.form {
+            Form::Num(num) => {
+                let f = Builtin::Num(builtins::Func::new(spec, num));
+                let typed = match num.dims {
+                    Dims::Dimensionless => self.dimensionless_args(name, args),
+                    Dims::Root | Dims::Magnitude => self.root_or_magnitude(name, num.dims, args),
+                    Dims::Alike | Dims::AlikeToNumber => self.alike_args(name, num.dims, args),
+                };
+                match typed {
+                    Some((xs, t)) => self.call(f, xs, span, t),
+                    None => fail(self),
                 }
-                let (x, t) = self.check_expr(&args[0]);
-                let ty = match t.ty {
-                    Ty::Num(d) if name == "abs" => Ty::Num(d.plain()),
-                    Ty::Num(d) => {
-                        match d.sqrt() {
-                            Some(r) => Ty::Num(r),
-                            None => {
-                                self.error(
-                                Problem::error("H0304", format!("cannot take the square root of {}", d.words()))
-                                    .label(args[0].span, d.words())
-                                    .help("the square root needs even powers of every unit, e.g. an area"),
-                            );
-                                Ty::Error
-                            }
-                        }
-                    }
-                    Ty::Bool => {
-                        self.condition_argument(name, args[0].span);
-                        Ty::Error
-                    }
-                    Ty::Error => Ty::Error,
-                };
-                let f = if name == "abs" {
-                    Builtin::Abs
-                } else {
-                    Builtin::Sqrt
-                };
-                self.call(
-                    f,
-                    vec![x],
-                    span,
-                    Typed {
-                        ty,
-                        constant: t.constant,
-                    },
-                )
             }
-            "min" | "max" | "clamp" | "smoothstep" => {
-                let (lo, hi) = match name {
-                    "min" | "max" => (2, usize::MAX),
-                    _ => (3, 3),
-                };
-                if !self.arity(func, args, lo, hi) {
-                    return fail(self);
-                }
-                let mut xs = Vec::new();
-                let mut dims: Vec<(Dim, Span)> = Vec::new();
-                let mut constant = true;
-                let mut bad = false;
-                for a in args {
-                    let (x, t) = self.check_expr(a);
-                    constant &= t.constant;
-                    match t.ty {
-                        Ty::Num(d) => dims.push((d, a.span)),
-                        Ty::Bool => {
-                            self.error(
-                                Problem::error(
-                                    "H0306",
-                                    format!("`{name}` needs numbers, not conditions"),
-                                )
-                                .label(a.span, "a condition"),
-                            );
-                            bad = true;
-                        }
-                        Ty::Error => bad = true,
-                    }
-                    xs.push(x);
-                }
-                if bad {
-                    return fail(self);
-                }
-                let (d0, s0) = dims[0];
-                for &(d, s) in &dims[1..] {
-                    let kinds_differ = d0.same_base(Dim::TIME) && d.point != d0.point;
-                    if !d.same_base(d0) || kinds_differ {
-                        let mut p = Problem::error(
-                            "H0301",
-                            format!(
-                                "the arguments of `{name}` differ: {} against {}",
-                                d0.words(),
-                                d.words()
-                            ),
-                        )
-                        .label(s0, d0.words())
-                        .label(s, d.words());
-                        p = p.help(if kinds_differ {
-                            "ages (Ga, Ma, ka) are points before present; durations (Gyr, Myr, kyr, yr) are lengths of time: do not mix them"
-                        } else {
-                            "all arguments must have the same dimension"
-                        });
-                        self.error(p);
-                        return fail(self);
-                    }
-                }
-                let all_point = dims.iter().all(|(d, _)| d.point);
-                let result = if name == "smoothstep" {
-                    Dim::NONE
-                } else {
-                    Dim {
-                        point: all_point,
-                        ..d0
-                    }
-                };
-                let f = match name {
-                    "min" => Builtin::Min,
-                    "max" => Builtin::Max,
-                    "clamp" => Builtin::Clamp,
-                    _ => Builtin::Smoothstep,
-                };
-                self.call(f, xs, span, Typed::num(result, constant))
-            }
-            "decay" => {
-                if !self.arity(func, args, 2, 2) {
-                    return fail(self);
-                }
+            Form::Decay => {
                 let (q, tq) = self.check_expr(&args[0]);
                 let (h, th) = self.check_expr(&args[1]);
                 self.expect_dim(&th, Dim::TIME, args[1].span, "a half-life");
@@ -806,37 +691,31 @@ impl Checker {
                     },
                 )
             }
-            "capacity" | "fill" | "excess" => {
-                if !self.arity(func, args, 1, 1) {
-                    return fail(self);
-                }
+            &Form::Reservoir(read) => {
                 let Some(r) = self.reservoir_arg(name, &args[0]) else {
                     return fail(self);
                 };
-                let (f, d) = match name {
-                    "capacity" => (Builtin::Capacity(r), Dim::MASS),
-                    "fill" => (Builtin::Fill(r), Dim::NONE),
-                    _ => (Builtin::Excess(r), Dim::MASS),
+                let f = match read {
+                    ReservoirRead::Capacity => Builtin::Capacity(r),
+                    ReservoirRead::Fill => Builtin::Fill(r),
+                    ReservoirRead::Excess => Builtin::Excess(r),
                 };
-                self.call(f, vec![], span, Typed::num(d, false))
+                self.call(f, vec![], span, Typed::num(read.result(), false))
             }
-            "sea_level" | "land_fraction" | "basin_volume" | "sea_level_isostatic" => {
-                let n = if name == "sea_level_isostatic" { 4 } else { 2 };
-                if !self.arity(func, args, n, n) {
-                    return fail(self);
-                }
+            &Form::Hypsometry(read) => {
                 let Some(t) = self.hypsometry_arg(name, &args[0]) else {
                     return fail(self);
                 };
                 let (x, tx) = self.check_expr(&args[1]);
                 let mut xs = vec![x];
                 let mut constant = tx.constant;
-                let (want, f, result) = match name {
-                    "sea_level" => (Dim::VOLUME, Builtin::SeaLevel(t), Dim::LENGTH),
-                    "land_fraction" => (Dim::VOLUME, Builtin::LandFraction(t), Dim::NONE),
-                    "basin_volume" => (Dim::LENGTH, Builtin::BasinVolume(t), Dim::VOLUME),
-                    _ => (Dim::VOLUME, Builtin::SeaLevelIsostatic(t), Dim::LENGTH),
+                let f = match read {
+                    HypsRead::SeaLevel => Builtin::SeaLevel(t),
+                    HypsRead::LandFraction => Builtin::LandFraction(t),
+                    HypsRead::BasinVolume => Builtin::BasinVolume(t),
+                    HypsRead::SeaLevelIsostatic => Builtin::SeaLevelIsostatic(t),
                 };
+                let want = read.argument();
                 let what = if want == Dim::VOLUME {
                     "the water volume"
                 } else {
@@ -849,34 +728,133 @@ impl Checker {
                     constant &= t.constant;
                     xs.push(x);
                 }
-                self.call(f, xs, span, Typed::num(result, constant))
-            }
-            _ => {
-                let mut candidates: Vec<&str> = FUNCTIONS.to_vec();
-                let tables: Vec<String> = self
-                    .defs
-                    .iter()
-                    .filter(|d| matches!(d.kind, DefKind::Table(_)))
-                    .map(|d| d.name.clone())
-                    .collect();
-                candidates.extend(tables.iter().map(String::as_str));
-                let mut p = Problem::error("H0204", format!("unknown function `{name}`"))
-                    .label(func.span, "not a built-in function or table");
-                p = match nearest(name, candidates.iter().copied()) {
-                    Some(s) => p.help(format!("did you mean `{s}`?")),
-                    None => p.help(format!(
-                        "the built-in functions are: {}",
-                        FUNCTIONS.join(", ")
-                    )),
-                };
-                self.error(p);
-                // Check the arguments anyway, for their own errors.
-                for a in args {
-                    self.check_expr(a);
-                }
-                fail(self)
+                self.call(f, xs, span, Typed::num(read.result(), constant))
             }
         }
+    }
+
+    /// The argument of `exp`, `ln` and the like: dimensionless, as is the
+    /// result.
+    fn dimensionless_args(
+        &mut self,
+        name: &str,
+        args: &[syntax::Expr],
+    ) -> Option<(Vec<Expr>, Typed)> {
+        let (x, t) = self.check_expr(&args[0]);
+        if !self.expect_dim(
+            &t,
+            Dim::NONE,
+            args[0].span,
+            &format!("the argument of `{name}`"),
+        ) {
+            return None;
+        }
+        Some((vec![x], Typed::num(Dim::NONE, t.constant)))
+    }
+
+    /// The argument of `sqrt` (whose powers are halved) or `abs` (whose
+    /// dimension is kept, as a difference).
+    fn root_or_magnitude(
+        &mut self,
+        name: &str,
+        dims: Dims,
+        args: &[syntax::Expr],
+    ) -> Option<(Vec<Expr>, Typed)> {
+        let (x, t) = self.check_expr(&args[0]);
+        let ty = match t.ty {
+            Ty::Num(d) if dims == Dims::Magnitude => Ty::Num(d.plain()),
+            Ty::Num(d) => match d.sqrt() {
+                Some(r) => Ty::Num(r),
+                None => {
+                    self.error(
+                        Problem::error(
+                            "H0304",
+                            format!("cannot take the square root of {}", d.words()),
+                        )
+                        .label(args[0].span, d.words())
+                        .help("the square root needs even powers of every unit, e.g. an area"),
+                    );
+                    Ty::Error
+                }
+            },
+            Ty::Bool => {
+                self.condition_argument(name, args[0].span);
+                Ty::Error
+            }
+            Ty::Error => Ty::Error,
+        };
+        Some((
+            vec![x],
+            Typed {
+                ty,
+                constant: t.constant,
+            },
+        ))
+    }
+
+    /// Arguments of one dimension (`min`, `clamp`, `smoothstep`): the
+    /// result has it, or is dimensionless for [`Dims::AlikeToNumber`].
+    fn alike_args(
+        &mut self,
+        name: &str,
+        dims: Dims,
+        args: &[syntax::Expr],
+    ) -> Option<(Vec<Expr>, Typed)> {
+        let mut xs = Vec::new();
+        let mut found: Vec<(Dim, Span)> = Vec::new();
+        let mut constant = true;
+        let mut bad = false;
+        for a in args {
+            let (x, t) = self.check_expr(a);
+            constant &= t.constant;
+            match t.ty {
+                Ty::Num(d) => found.push((d, a.span)),
+                Ty::Bool => {
+                    self.error(
+                        Problem::error("H0306", format!("`{name}` needs numbers, not conditions"))
+                            .label(a.span, "a condition"),
+                    );
+                    bad = true;
+                }
+                Ty::Error => bad = true,
+            }
+            xs.push(x);
+        }
+        if bad {
+            return None;
+        }
+        let (d0, s0) = found[0];
+        for &(d, s) in &found[1..] {
+            let kinds_differ = d0.same_base(Dim::TIME) && d.point != d0.point;
+            if !d.same_base(d0) || kinds_differ {
+                let mut p = Problem::error(
+                    "H0301",
+                    format!(
+                        "the arguments of `{name}` differ: {} against {}",
+                        d0.words(),
+                        d.words()
+                    ),
+                )
+                .label(s0, d0.words())
+                .label(s, d.words());
+                p = p.help(if kinds_differ {
+                    "ages (Ga, Ma, ka) are points before present; durations (Gyr, Myr, kyr, yr) are lengths of time: do not mix them"
+                } else {
+                    "all arguments must have the same dimension"
+                });
+                self.error(p);
+                return None;
+            }
+        }
+        let all_point = found.iter().all(|(d, _)| d.point);
+        let result = match dims {
+            Dims::AlikeToNumber => Dim::NONE,
+            Dims::Alike | Dims::Dimensionless | Dims::Root | Dims::Magnitude => Dim {
+                point: all_point,
+                ..d0
+            },
+        };
+        Some((xs, Typed::num(result, constant)))
     }
 
     fn condition_argument(&mut self, func: &str, span: Span) {
@@ -1124,27 +1102,40 @@ impl<'m> ConstEval<'m> {
                 let v = vals?;
                 let tables = self.tables;
                 match f {
-                    Builtin::Exp => crate::numeric::exp(v[0]),
-                    Builtin::Ln => libm::log(v[0]),
-                    Builtin::Log10 => libm::log10(v[0]),
-                    Builtin::Sqrt => libm::sqrt(v[0]),
-                    Builtin::Abs => v[0].abs(),
-                    // As compiled programs compute them (`compile::exec`).
-                    Builtin::Min => v[1..].iter().fold(v[0], |a, &b| crate::numeric::min(a, b)),
-                    Builtin::Max => v[1..].iter().fold(v[0], |a, &b| crate::numeric::max(a, b)),
-                    Builtin::Clamp => crate::numeric::min(crate::numeric::max(v[0], v[1]), v[2]),
-                    Builtin::Smoothstep => crate::numeric::smoothstep(v[0], v[1], v[2]),
+                    // The kernel compiled programs compute (tested in
+                    // `compile`'s tests for every row).
+                    Builtin::Num(func) => func.num().kernel.apply(&v),
                     // A table that failed to load (already reported) has no
                     // value, rather than a NaN that would be reported again.
                     Builtin::Interp(t) if tables[*t].xs.is_empty() => return None,
                     Builtin::Interp(t) => {
                         crate::numeric::interp(&tables[*t].xs, &tables[*t].ys, v[0])
                     }
-                    _ => return None,
+                    // Read the clock or the state: never constant.
+                    Builtin::Decay
+                    | Builtin::Capacity(_)
+                    | Builtin::Fill(_)
+                    | Builtin::Excess(_) => return None,
+                    // As compiled programs compute them (`compile::exec`).
+                    Builtin::SeaLevel(t) => hypsometry(&tables[*t])?.sea_level(v[0]),
+                    Builtin::SeaLevelIsostatic(t) => {
+                        hypsometry(&tables[*t])?.sea_level_isostatic(v[0], v[1], v[2])
+                    }
+                    Builtin::LandFraction(t) => hypsometry(&tables[*t])?.land_fraction(v[0]),
+                    Builtin::BasinVolume(t) => hypsometry(&tables[*t])?.basin_volume(v[0]),
                 }
             }
         })
     }
+}
+
+/// The hypsometry of a table, for folding; `None` for a table that failed
+/// to load (already reported), as for a table lookup.
+fn hypsometry(t: &crate::model::Table) -> Option<Hypsometry> {
+    if t.xs.is_empty() {
+        return None;
+    }
+    Some(Hypsometry::new(&t.xs, &t.ys))
 }
 
 fn bool_num(b: bool) -> f64 {

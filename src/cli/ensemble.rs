@@ -104,7 +104,10 @@ pub(crate) fn cmd_ensemble(
         b.finish_and_clear();
     }
     let state = match state {
-        Ok(s) => s,
+        Ok((s, warnings)) => {
+            super::report(&model.sources, &warnings);
+            s
+        }
         Err(_) if crate::cancel::requested() => return super::interrupted(),
         Err(e) => {
             eprintln!("error: {e}");

@@ -8,7 +8,8 @@
 //! `max`, `clamp` and `excess` inline by the interpreter's written rules;
 //! and every transcendental, table or hypsometry function, and the
 //! operators of `Ins::Other` (comparisons, logic), through the very Rust
-//! function the interpreter calls. So a program gives the same bits
+//! function the interpreter calls (the built-ins' kernels of `Ins::Call1`
+//! to `Call3` through one trampoline per arity). So a program gives the same bits
 //! whichever way it runs; the tests compare the two on every instruction,
 //! on edge values, on the demo scenarios' programs with their ensemble
 //! parameters as registers, and in every fuzz case that solves.
@@ -46,17 +47,27 @@ mod gen {
     extern "C" fn exp2(x: f64) -> f64 {
         libm::exp2(x)
     }
-    extern "C" fn ln(x: f64) -> f64 {
-        libm::log(x)
+    // One trampoline per arity for the kernels of `Ins::Call1` to `Call3`:
+    // the Rust function's address arrives as the first argument.
+
+    /// # Safety
+    /// `f` is the address of a `fn(f64) -> f64` (from a `Kernel1`).
+    unsafe extern "C" fn call1(f: u64, x: f64) -> f64 {
+        let f = std::mem::transmute::<usize, fn(f64) -> f64>(f as usize);
+        f(x)
     }
-    extern "C" fn log10(x: f64) -> f64 {
-        libm::log10(x)
+    /// # Safety
+    /// `f` is the address of a `fn(f64, f64) -> f64` (from a `Kernel2`).
+    unsafe extern "C" fn call2(f: u64, a: f64, b: f64) -> f64 {
+        let f = std::mem::transmute::<usize, fn(f64, f64) -> f64>(f as usize);
+        f(a, b)
     }
-    extern "C" fn sqrt(x: f64) -> f64 {
-        libm::sqrt(x)
-    }
-    extern "C" fn smoothstep(x: f64, e0: f64, e1: f64) -> f64 {
-        numeric::smoothstep(x, e0, e1)
+    /// # Safety
+    /// `f` is the address of a `fn(f64, f64, f64) -> f64` (from a
+    /// `Kernel3`).
+    unsafe extern "C" fn call3(f: u64, a: f64, b: f64, c: f64) -> f64 {
+        let f = std::mem::transmute::<usize, fn(f64, f64, f64) -> f64>(f as usize);
+        f(a, b, c)
     }
     /// The number that carries an operator into native code: an
     /// exhaustive match, so a new operator cannot be forgotten here.
@@ -155,7 +166,10 @@ mod gen {
     struct Sigs {
         f1: SigRef,
         f2: SigRef,
-        f3: SigRef,
+        /// (kernel address, x), (kernel address, a, b), (kernel address, a, b, c)
+        c1: SigRef,
+        c2: SigRef,
+        c3: SigRef,
         /// (kernels, table index, x)
         k: SigRef,
         /// (operator, a, b)
@@ -242,7 +256,9 @@ mod gen {
             let sigs = Sigs {
                 f1: b.import_signature(sig(&[F64])),
                 f2: b.import_signature(sig(&[F64, F64])),
-                f3: b.import_signature(sig(&[F64, F64, F64])),
+                c1: b.import_signature(sig(&[I64, F64])),
+                c2: b.import_signature(sig(&[I64, F64, F64])),
+                c3: b.import_signature(sig(&[I64, F64, F64, F64])),
                 k: b.import_signature(sig(&[I64, I64, F64])),
                 op: b.import_signature(sig(&[I64, F64, F64])),
             };
@@ -370,10 +386,20 @@ mod gen {
             op(&mut self.b, a)
         }
 
-        /// The C function `f` of the value of register `a`.
-        fn call_on(&mut self, f: extern "C" fn(f64) -> f64, a: Reg) -> Value {
-            let a = self.get(a);
-            self.call1(f, a)
+        /// The kernel at `address` on the values of registers `args`,
+        /// through `trampoline` (of signature `sig`, for their count).
+        fn call_kernel(
+            &mut self,
+            trampoline: usize,
+            sig: SigRef,
+            address: usize,
+            args: &[Reg],
+        ) -> Value {
+            let mut vals = vec![self.b.ins().iconst(I64, address as i64)];
+            for &a in args {
+                vals.push(self.get(a));
+            }
+            self.call(trampoline, sig, &vals)
         }
 
         fn decay(&mut self, q: Reg, h: Reg) -> Value {
@@ -420,10 +446,10 @@ mod gen {
                     let (a, b) = (self.get(a), self.get(b));
                     (d, self.b.ins().select(truth, a, b))
                 }
-                Ins::Exp(d, a) => (d, self.call_on(exp, a)),
-                Ins::Ln(d, a) => (d, self.call_on(ln, a)),
-                Ins::Log10(d, a) => (d, self.call_on(log10, a)),
-                Ins::Sqrt(d, a) => (d, self.call_on(sqrt, a)),
+                Ins::Exp(d, a) => {
+                    let a = self.get(a);
+                    (d, self.call1(exp, a))
+                }
                 Ins::Abs(d, a) => (d, self.on1(a, |f, x| f.ins().fabs(x))),
                 Ins::Min(d, a, b) => (d, self.on2(a, b, min)),
                 Ins::Max(d, a, b) => (d, self.on2(a, b, max)),
@@ -432,13 +458,17 @@ mod gen {
                     let m = max(&mut self.b, x, lo);
                     (d, min(&mut self.b, m, hi))
                 }
-                Ins::Smoothstep(d, x, e0, e1) => {
-                    let (x, e0, e1) = (self.get(x), self.get(e0), self.get(e1));
-                    let s = self.sigs.f3;
-                    (
-                        d,
-                        self.call(smoothstep as *const () as usize, s, &[x, e0, e1]),
-                    )
+                Ins::Call1(d, a, k) => {
+                    let (t, s) = (call1 as *const () as usize, self.sigs.c1);
+                    (d, self.call_kernel(t, s, k.f as usize, &[a]))
+                }
+                Ins::Call2(d, a, b, k) => {
+                    let (t, s) = (call2 as *const () as usize, self.sigs.c2);
+                    (d, self.call_kernel(t, s, k.f as usize, &[a, b]))
+                }
+                Ins::Call3(d, a, b, c, k) => {
+                    let (t, s) = (call3 as *const () as usize, self.sigs.c3);
+                    (d, self.call_kernel(t, s, k.f as usize, &[a, b, c]))
                 }
                 Ins::Decay(d, q, h) => (d, self.decay(q, h)),
                 Ins::Interp(d, t, x) => {

@@ -25,9 +25,9 @@ use crate::diagnostic::Problem;
 use crate::graph::{DepGraph, Node};
 use crate::model::{DefId, DefKind, Dist, Expr, ExprKind, Model};
 use crate::numeric::truncation::REJECTION_MIN_MASS;
-use crate::pipeline;
+use crate::pipeline::{Driver, Walk};
 use crate::report::{self, fmt_num};
-use crate::solve::{self, Run, StageRun};
+use crate::solve::{self, StageRun};
 use sketch::Sketch;
 
 /// Members when the scenario and the command line do not say.
@@ -291,6 +291,7 @@ fn display_of(model: &Model, d: DefId) -> (String, crate::units::Unit) {
 /// Compiled programs shared by every member.
 struct Programs {
     stages: Vec<Option<solve::StagePrograms>>,
+    event_defs: Vec<DefId>,
     report: report::ReportPrograms,
 }
 
@@ -304,6 +305,7 @@ fn programs(model: &Model, first: usize) -> Programs {
         stages: (0..model.stages.len())
             .map(|s| (s >= first).then(|| solve::stage_programs(model, s, &varied)))
             .collect(),
+        event_defs: solve::event_defs(model),
         report: report::report_programs(model, &varied),
     }
 }
@@ -349,43 +351,12 @@ fn solve_member(
     keep_series: bool,
     mut series: Vec<f64>,
 ) -> Result<MemberOutput, Problem> {
-    let event_ids = solve::event_defs(model);
-    let mut events: Vec<Option<f64>> = vec![None; event_ids.len()];
-    // The shared stages' rows are read where they are, not copied for
-    // every member.
-    let mut stages: Vec<StageRun> = shared.iter().map(StageRun::without_rows).collect();
-    for sr in &stages {
-        for (k, e) in sr.events.iter().enumerate() {
-            if events[k].is_none() {
-                events[k] = *e;
-            }
-        }
-    }
-    let mut state = match stages.last() {
-        Some(sr) => sr.end.clone(),
-        // Varied parameters may set the initial inventories.
-        None => solve::initial_state(&with_params(model, params)),
-    };
-    for s in from_stage..model.stages.len() {
-        crate::cancel::check()?;
-        let done: Vec<bool> = events.iter().map(Option::is_some).collect();
-        let sp = progs.stages[s]
-            .as_ref()
-            .expect("programs of every varying stage");
-        let r = solve::run_stage(model, s, sp, params, &state, &done)?;
-        for (k, e) in r.events.iter().enumerate() {
-            if events[k].is_none() {
-                events[k] = *e;
-            }
-        }
-        state = r.end.clone();
-        stages.push(r);
-    }
-    let run = Run {
-        stages,
-        event_defs: event_ids,
-        events,
-    };
+    // Varied parameters may set the initial inventories.
+    let mut walk = Walk::after(shared, progs.event_defs.len(), || {
+        solve::initial_state(&with_params(model, params))
+    });
+    Driver::member(model, &progs.stages, params).walk(&mut walk, from_stage..model.stages.len())?;
+    let run = walk.into_run(progs.event_defs.clone());
     report::series_values_of(
         model,
         shared.iter().chain(&run.stages[shared.len()..]),
@@ -409,9 +380,14 @@ fn solve_member(
     Ok((series, csv, exp))
 }
 
-/// Run the members of one shard and return its state, writing
-/// `members.csv` (and the member series when asked) into `dir`.
-pub fn run(model: &Model, opts: &Options, dir: &Path) -> Result<EnsembleState, String> {
+/// Run the members of one shard and return its state and the warnings of
+/// the stage cache, writing `members.csv` (and the member series when
+/// asked) into `dir`.
+pub fn run(
+    model: &Model,
+    opts: &Options,
+    dir: &Path,
+) -> Result<(EnsembleState, Vec<Problem>), String> {
     let spec = model
         .ensemble
         .clone()
@@ -447,7 +423,7 @@ pub fn run(model: &Model, opts: &Options, dir: &Path) -> Result<EnsembleState, S
 
     // Stages before the first varying one are shared by every member.
     let first = first_varying_stage(model);
-    let shared = solve_shared(model, first, opts.store.as_ref())?;
+    let (shared, warnings) = solve_shared(model, first, opts.store.as_ref())?;
     let mut progs = programs(model, first);
 
     let columns = report::columns(model);
@@ -657,7 +633,7 @@ pub fn run(model: &Model, opts: &Options, dir: &Path) -> Result<EnsembleState, S
     let file = out.into_inner().map_err(|e| e.to_string())?;
     file.sync_all().map_err(|e| e.to_string())?;
     std::fs::rename(&tmp, &members_path).map_err(|e| e.to_string())?;
-    Ok(state)
+    Ok((state, warnings))
 }
 
 fn write_csv_row(out: &mut impl Write, cells: &[String]) -> std::io::Result<()> {
@@ -774,43 +750,21 @@ fn fold_series(sketches: &mut [(Sketch, Sketch)], t0: usize, nv: usize, members:
     }
 }
 
+/// The stages before `first`, which every member shares: through the
+/// stage driver and its cache, like a single run's (a damaged entry gives
+/// the same warning), rows included. Their keys are derived once here, not
+/// per member.
 fn solve_shared(
     model: &Model,
     first: usize,
     store: Option<&Store>,
-) -> Result<Vec<StageRun>, String> {
-    let g = DepGraph::build(model);
-    let mut state = solve::initial_state(model);
-    let mut events: Vec<Option<f64>> = vec![None; solve::event_defs(model).len()];
-    let mut out = Vec::new();
-    for s in 0..first {
-        let done: Vec<bool> = events.iter().map(Option::is_some).collect();
-        let key = pipeline::stage_key(model, &g, s, &state, &done);
-        let cached = store.and_then(|st| {
-            pipeline::get_stage(st, &key, s, state.0.len(), true)
-                .ok()
-                .flatten()
-        });
-        let r = match cached {
-            Some((r, _)) => r,
-            None => {
-                let r = solve::solve_stage(model, s, &state, &done)
-                    .map_err(|p| format!("{}: {}", p.code, p.message))?;
-                if let Some(st) = store {
-                    let _ = pipeline::put_stage(st, &key, &r);
-                }
-                r
-            }
-        };
-        for (k, e) in r.events.iter().enumerate() {
-            if events[k].is_none() {
-                events[k] = *e;
-            }
-        }
-        state = r.end.clone();
-        out.push(r);
-    }
-    Ok(out)
+) -> Result<(Vec<StageRun>, Vec<Problem>), String> {
+    let mut driver = Driver::shared(model, store);
+    let mut walk = Walk::new(model);
+    driver
+        .walk(&mut walk, 0..first)
+        .map_err(|p| format!("{}: {}", p.code, p.message))?;
+    Ok((walk.stages, driver.finish()))
 }
 
 /// One-at-a-time elasticities d ln(constraint value) / d ln(parameter) at

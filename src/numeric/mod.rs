@@ -4,6 +4,7 @@
 //! platform.
 
 pub mod elementary;
+pub mod hyps;
 mod tables;
 pub mod truncation;
 
@@ -70,6 +71,34 @@ pub fn pow(a: f64, b: f64) -> f64 {
     }
 }
 
+/// The natural logarithm.
+#[inline]
+pub fn ln(x: f64) -> f64 {
+    libm::log(x)
+}
+
+#[inline]
+pub fn log10(x: f64) -> f64 {
+    libm::log10(x)
+}
+
+#[inline]
+pub fn sqrt(x: f64) -> f64 {
+    libm::sqrt(x)
+}
+
+#[inline]
+pub fn abs(x: f64) -> f64 {
+    x.abs()
+}
+
+/// `x` limited to `[lo, hi]`: `min(max(x, lo), hi)` by the rules of
+/// [`max`] and [`min`] (so a NaN `x` gives `lo`, and `lo > hi` gives `hi`).
+#[inline]
+pub fn clamp(x: f64, lo: f64, hi: f64) -> f64 {
+    min(max(x, lo), hi)
+}
+
 /// 0 below `e0`, 1 above `e1`, the cubic Hermite step between.
 #[inline]
 pub fn smoothstep(x: f64, e0: f64, e1: f64) -> f64 {
@@ -115,6 +144,17 @@ mod tests {
         assert_eq!(interp(&xs, &ys, 2.0), 10.0);
         assert_eq!(interp(&xs, &ys, 9.0), 0.0);
         assert!(interp(&xs, &ys, f64::NAN).is_nan());
+    }
+
+    #[test]
+    fn clamp_inside_outside_and_at_the_edges() {
+        assert_eq!(clamp(0.5, 0.0, 1.0), 0.5);
+        assert_eq!(clamp(-2.0, 0.0, 1.0), 0.0);
+        assert_eq!(clamp(7.0, 0.0, 1.0), 1.0);
+        // As its comment says: a NaN gives the lower edge, crossed edges
+        // the upper one.
+        assert_eq!(clamp(f64::NAN, 0.25, 1.0), 0.25);
+        assert_eq!(clamp(0.5, 2.0, 1.0), 1.0);
     }
 
     #[test]

@@ -14,6 +14,8 @@
 //! Invariant: this module decides what keys mean and encodes payloads; the
 //! store only keeps bytes, and the solver never sees the cache.
 
+pub mod driver;
+
 use std::collections::BTreeMap;
 use std::path::PathBuf;
 use std::rc::Rc;
@@ -25,6 +27,7 @@ use crate::graph::{self, DepGraph, Node};
 use crate::model::{DefKind, Model};
 use crate::report;
 use crate::solve::{self, methods::Stats, Rows, Run, StageRun, State, ENGINE_VERSION};
+pub use driver::{Driver, Walk};
 
 /// Whether a stage was taken from the cache or computed, and why.
 #[derive(Debug, Clone, PartialEq)]
@@ -368,7 +371,7 @@ fn encode_stage(r: &StageRun) -> std::io::Result<(Vec<u8>, Vec<u8>)> {
 
 /// Store a stage result: its rows first, then its head, so that a head
 /// found is (but for a power cut) a stage whose rows can be read.
-pub fn put_stage(store: &Store, key: &Key, r: &StageRun) -> std::io::Result<()> {
+fn put_stage(store: &Store, key: &Key, r: &StageRun) -> std::io::Result<()> {
     // Memory for the encoded rows may be refused: then the stage is not
     // cached (the H0702 warning), and the run goes on.
     let (head, rows) = encode_stage(r)?;
@@ -380,7 +383,7 @@ pub fn put_stage(store: &Store, key: &Key, r: &StageRun) -> std::io::Result<()> 
 /// count). `Ok(None)` when absent; `Err` when damaged or not a result of a
 /// stage of `n` components from this engine version (the caller
 /// recomputes, and its write replaces the entry).
-pub fn get_stage(
+fn get_stage(
     store: &Store,
     key: &Key,
     stage: usize,
@@ -638,6 +641,25 @@ fn reason(previous: Option<&BTreeMap<String, String>>, now: &BTreeMap<String, St
     }
 }
 
+/// A stage's fingerprint parts and its key: everything its result depends
+/// on, the start state included. The one derivation of a stage key.
+fn stage_fingerprint(
+    model: &Model,
+    g: &DepGraph,
+    s: usize,
+    state: &State,
+    events_done: &[bool],
+    wide: &mut RunWide,
+) -> (Parts, Key) {
+    let mut parts = stage_parts_with(model, g, s, events_done, wide);
+    parts.insert(
+        "start state".into(),
+        blake3::hash(&state.to_bytes()).to_hex().as_str().into(),
+    );
+    let key = hash_parts("hadal stage", &parts);
+    (parts, key)
+}
+
 /// The cache key of stage `s` starting from `state`.
 pub fn stage_key(
     model: &Model,
@@ -646,118 +668,31 @@ pub fn stage_key(
     state: &State,
     events_done: &[bool],
 ) -> Key {
-    let mut parts = stage_parts(model, g, s, events_done);
-    parts.insert(
-        "start state".into(),
-        blake3::hash(&state.to_bytes()).to_hex().as_str().into(),
-    );
-    hash_parts("hadal stage", &parts)
+    stage_fingerprint(model, g, s, state, events_done, &mut RunWide::new(model)).1
 }
 
-/// Run every stage, reusing cached ones where the fingerprint matches.
+/// Run every stage through the stage driver, reusing cached ones where the
+/// fingerprint matches, then derive the series.
 pub fn execute(model: &Model, store: Option<&Store>) -> Result<Outcome, Problem> {
-    let g = DepGraph::build(model);
-    let mut wide = RunWide::new(model);
-    let mut warnings = Vec::new();
-    let previous = store.map_or_else(Trace::default, |s| Trace::read(&trace_path(s, model)));
-    let mut trace = String::new();
-    let event_ids = solve::event_defs(model);
-    let mut events: Vec<Option<f64>> = vec![None; event_ids.len()];
-    let mut state = solve::initial_state(model);
-    let mut runs = Vec::new();
-    let mut reports = Vec::new();
-    let mut keys = Vec::new();
-    // Row counts of reused stages, whose rows are read only if a part of
-    // the series must be derived again; and where each stage started.
-    let mut reused_rows: Vec<Option<usize>> = Vec::new();
-    let mut starts: Vec<(State, Vec<bool>)> = Vec::new();
-    for s in 0..model.stages.len() {
-        let done: Vec<bool> = events.iter().map(Option::is_some).collect();
-        let mut parts = stage_parts_with(model, &g, s, &done, &mut wide);
-        parts.insert(
-            "start state".into(),
-            blake3::hash(&state.to_bytes()).to_hex().as_str().into(),
-        );
-        let key = hash_parts("hadal stage", &parts);
-        let stage_name = model.stages[s].name.clone();
-        let fingerprint = key_hex(&key);
-        // The same fingerprint has the same parts: hash them only when new.
-        let hashes = match previous.block(&stage_name) {
-            Some((fp, lines)) if fp == fingerprint => Err(lines.to_owned()),
-            _ => Ok(part_hashes(&parts)),
-        };
-        let mut cached = None;
-        if let Some(store) = store {
-            match get_stage(store, &key, s, state.0.len(), false) {
-                Ok(found) => cached = found,
-                Err(c) => warnings.push(corrupt_warning(&c, &format!("stage `{stage_name}`"))),
-            }
-        }
-        let (run, status, why, row_count) = match cached {
-            Some((r, count)) => (r, Status::Reused, String::new(), Some(count)),
-            None => {
-                let r = solve::solve_stage(model, s, &state, &done)?;
-                if let Some(store) = store {
-                    if let Err(e) = put_stage(store, &key, &r) {
-                        warnings.push(Problem::warning(
-                            "H0702",
-                            format!(
-                                "could not write to the cache at {}: {e}",
-                                store.root().display()
-                            ),
-                        ));
-                    }
-                }
-                let why = if store.is_some() {
-                    match &hashes {
-                        Ok(now) => reason(previous.parts(&stage_name).as_ref(), now),
-                        Err(_) => "not in the cache".into(),
-                    }
-                } else {
-                    "the cache is off".into()
-                };
-                (r, Status::Computed, why, None)
-            }
-        };
-        reused_rows.push(row_count);
-        starts.push((state.clone(), done));
-        trace.push_str(&format!("stage\t{stage_name}\t{fingerprint}\n"));
-        match &hashes {
-            Ok(h) => trace.push_str(&part_lines(h)),
-            Err(lines) => trace.push_str(lines),
-        }
-        for (k, e) in run.events.iter().enumerate() {
-            if events[k].is_none() {
-                events[k] = *e;
-            }
-        }
-        state = run.end.clone();
-        reports.push(StageReport {
-            stage: s,
-            status,
-            reason: why,
-            fingerprint,
-        });
-        keys.push(key);
-        runs.push(run);
-    }
-    let mut run = Run {
-        stages: runs,
-        event_defs: event_ids,
-        events,
-    };
+    let mut driver = Driver::single_run(model, store);
+    let mut walk = Walk::new(model);
+    driver.walk(&mut walk, 0..model.stages.len())?;
+    let reports: Vec<StageReport> = driver.records().iter().map(|r| r.report.clone()).collect();
+    let mut run = walk.into_run(solve::event_defs(model));
 
     // Derived outputs, per stage: keyed by their own definitions and the
-    // stage's fingerprint (the engine is deterministic, so the fingerprint
-    // stands for the solved rows). An edit of one stage re-derives only
-    // that stage's part of the series.
+    // stage's fingerprint. An edit of one stage re-derives only that
+    // stage's part of the series.
     let columns = report::columns(model);
     let targets: Vec<Node> = columns
         .iter()
         .filter_map(|c| c.def)
         .map(Node::Def)
         .collect();
-    let closure = g.closure(&targets);
+    let closure = driver
+        .graph()
+        .expect("a single run fingerprints every stage")
+        .closure(&targets);
     let cols: Vec<String> = columns
         .iter()
         .map(|c| format!("{} [{}]", c.name, c.unit))
@@ -766,9 +701,8 @@ pub fn execute(model: &Model, store: Option<&Store>) -> Result<Outcome, Problem>
     let mut series_csv = report::header_csv(&columns);
     // The whole series at most, reserved at once: grown by doubling it
     // would hold up to three times its size while it moves.
-    let bound = wide
-        .report_ages
-        .len()
+    let bound = driver
+        .report_rows()
         .saturating_mul(report::csv_row_bound(columns.len()));
     series_csv
         .try_reserve_exact(bound)
@@ -776,72 +710,24 @@ pub fn execute(model: &Model, store: Option<&Store>) -> Result<Outcome, Problem>
     let mut series_reused = true;
     let mut rows = 0;
     for (s, sr) in run.stages.iter_mut().enumerate() {
-        let mut parts = Parts::new();
-        let params = wide.params(model, s);
-        closure_parts(model, &closure, &params, &mut wide.canon, &mut parts);
-        parts.insert("columns".into(), cols.clone());
-        parts.insert("stage".into(), key_hex(&keys[s]).into());
-        let key = hash_parts("hadal series rows", &parts);
-        let mut found = false;
-        if let Some(store) = store {
-            match store.get_into(&key, &mut series_csv) {
-                Ok(f) => found = f,
-                Err(c) => warnings.push(corrupt_warning(
-                    &c,
-                    &format!("the series of stage `{}`", model.stages[s].name),
-                )),
-            }
-        }
-        let reused = reused_rows[s];
-        if found {
-            rows += reused.unwrap_or(sr.rows.len());
+        let key = driver
+            .series_key(s, &closure, &cols)
+            .expect("a single run fingerprints every stage");
+        let what = format!("the series of stage `{}`", model.stages[s].name);
+        if driver.get_derived(&key, &mut series_csv, &what) {
+            rows += driver.unread_count(s).unwrap_or(sr.rows.len());
         } else {
-            if let Some(count) = reused {
-                // A reused stage: its rows from the store, or (if they are
-                // gone or damaged) from solving it again, which gives the
-                // same bits.
-                let n = sr.end.0.len();
-                let stored = match store.map(|st| get_rows(st, &keys[s], n, count)) {
-                    Some(Ok(Some(r))) => Some(r),
-                    Some(Err(c)) => {
-                        let what = format!("the rows of stage `{}`", model.stages[s].name);
-                        warnings.push(corrupt_warning(&c, &what));
-                        None
-                    }
-                    _ => None,
-                };
-                sr.rows = match stored {
-                    Some(r) => r,
-                    None => {
-                        let (start, done) = &starts[s];
-                        let again = solve::solve_stage(model, s, start, done)?;
-                        if let Some(st) = store {
-                            let _ = put_stage(st, &keys[s], &again);
-                        }
-                        again.rows
-                    }
-                };
+            if let Some(r) = driver.unread_rows(s)? {
+                sr.rows = r;
             }
             series_reused = false;
             rows += sr.rows.len();
             let from = series_csv.len();
             report::append_stage_series_csv(model, &columns, sr, &mut series_csv)?;
-            if let Some(store) = store {
-                let _ = store.put(&key, &series_csv[from..]);
-            }
+            driver.put_derived(&key, &series_csv[from..]);
         }
         // The series holds the rows from here on.
         sr.rows = Rows::new(sr.rows.width());
-    }
-    if let Some(store) = store {
-        // A hint file: rewritten only when it changed.
-        if trace != previous.text {
-            let path = trace_path(store, model);
-            if let Some(dir) = path.parent() {
-                let _ = std::fs::create_dir_all(dir);
-            }
-            let _ = crate::fsutil::write_atomic_unsynced(&path, trace.as_bytes());
-        }
     }
     Ok(Outcome {
         run,
@@ -849,7 +735,7 @@ pub fn execute(model: &Model, store: Option<&Store>) -> Result<Outcome, Problem>
         series_csv,
         rows,
         series_reused,
-        warnings,
+        warnings: driver.finish(),
     })
 }
 

@@ -946,28 +946,10 @@ fn stiffest(
     Some((def.name.clone(), def.span))
 }
 
-/// Integrate every stage in order.
+/// Integrate every stage in order, without the stage cache: the walk of
+/// [`crate::pipeline::Driver::uncached`], for callers of the solver alone.
 pub fn solve(model: &Model) -> Result<Run, Problem> {
-    let mut state = initial_state(model);
-    let event_ids = event_defs(model);
-    let mut events: Vec<Option<f64>> = vec![None; event_ids.len()];
-    let mut stages = Vec::new();
-    for s in 0..model.stages.len() {
-        let done: Vec<bool> = events.iter().map(Option::is_some).collect();
-        let run = solve_stage(model, s, &state, &done)?;
-        for (k, e) in run.events.iter().enumerate() {
-            if events[k].is_none() {
-                events[k] = *e;
-            }
-        }
-        state = run.end.clone();
-        stages.push(run);
-    }
-    Ok(Run {
-        stages,
-        event_defs: event_ids,
-        events,
-    })
+    crate::pipeline::driver::solve_all(model)
 }
 
 /// Whether a stage's method setting is explicit only (for reports).

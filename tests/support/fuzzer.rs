@@ -383,26 +383,6 @@ const NUMBERS: &[&str] = &[
     "18446744073709551616",
 ];
 
-const FUNCS: &[&str] = &[
-    "exp",
-    "ln",
-    "log10",
-    "sqrt",
-    "abs",
-    "min",
-    "max",
-    "clamp",
-    "smoothstep",
-    "decay",
-    "capacity",
-    "fill",
-    "excess",
-    "sea_level",
-    "sea_level_isostatic",
-    "land_fraction",
-    "basin_volume",
-];
-
 const UNICODE: &[&str] = &[
     "é",
     "±",
@@ -561,7 +541,8 @@ fn random_token(rng: &mut Rng, corpus: &Corpus) -> String {
         2 | 3 => rng.pick(PUNCT).to_string(),
         4 => random_unit(rng),
         5 => random_number(rng),
-        6 => rng.pick(FUNCS).to_string(),
+        // The built-ins' names come from the language's own table.
+        6 => rng.pick(hadal::builtins::BUILTINS).name.to_string(),
         7 if !corpus.names.is_empty() => rng.pick(&corpus.names).clone(),
         7 => "x".into(),
         _ => rng.pick(UNICODE).to_string(),

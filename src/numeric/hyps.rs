@@ -97,6 +97,15 @@ impl Hypsometry {
         self.z[i] + s.clamp(0.0, dz)
     }
 
+    /// Sea level with the water load compensated: `volume` scaled by
+    /// (rho_m - rho_w) / rho_m, the densities of mantle and water. (Native
+    /// code performs these operations inline, in this order.)
+    #[inline]
+    pub fn sea_level_isostatic(&self, volume: f64, rho_w: f64, rho_m: f64) -> f64 {
+        let f = (rho_m - rho_w) / rho_m;
+        self.sea_level(volume * f)
+    }
+
     /// Fraction of the surface above the water for `volume` of water.
     pub fn land_fraction(&self, volume: f64) -> f64 {
         let total = self.total_area();
