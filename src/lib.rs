@@ -4,7 +4,12 @@
 //! The pipeline, one module per phase (see docs/ARCHITECTURE.md):
 //! [`syntax`] (parse) → [`check`] (names, units) → [`model`] (the checked
 //! model) → [`graph`] (dependencies) → later phases.
+//!
+//! A front end (the CLI, a binding, a server) starts at [`api`]: load and
+//! check a scenario, run it into a result in memory, write it as a
+//! separate step. The library never prints and never exits.
 
+pub mod api;
 pub mod builtins;
 pub mod cache;
 pub mod cancel;

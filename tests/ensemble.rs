@@ -414,7 +414,7 @@ fn a_member_whose_parameter_is_not_finite_stops_the_run_without_a_members_file()
         threads: Some(1),
         keep_series: false,
         store: None,
-        progress: false,
+        progress: None,
     };
     let out = t.path().join("out");
     let err = hadal::ensemble::run(&m, &opts, &out).unwrap_err();
@@ -461,4 +461,34 @@ fn a_file_without_an_ensemble_block_is_held_to_the_ensemble_memory_budget() {
     assert_eq!(o.status.code(), Some(1), "{err}");
     assert!(err.contains("H0412") && err.contains("coarser"), "{err}");
     assert!(!d.join("out/members.csv").exists());
+}
+
+#[test]
+fn ensemble_progress_is_reported_through_the_callback_from_none_to_all_members() {
+    // The library draws no bar: it tells the caller, after each chunk, how
+    // many members are done out of how many.
+    let t = tempfile::tempdir().unwrap();
+    let p = t.path().join("s.hadal");
+    std::fs::write(&p, heat_study("vary q0 ~ uniform(20 TW, 30 TW)")).unwrap();
+    let m = hadal::check::check_file(&p, &Default::default())
+        .unwrap()
+        .model;
+    let seen = std::sync::Arc::new(std::sync::Mutex::new(Vec::new()));
+    let log = std::sync::Arc::clone(&seen);
+    let opts = hadal::ensemble::Options {
+        members: Some(6),
+        seed: None,
+        shard: (1, 1),
+        threads: Some(2),
+        keep_series: false,
+        store: None,
+        progress: Some(hadal::ensemble::Progress(std::sync::Arc::new(
+            move |done, total| log.lock().unwrap().push((done, total)),
+        ))),
+    };
+    hadal::ensemble::run(&m, &opts, &t.path().join("out")).unwrap();
+    let seen = seen.lock().unwrap().clone();
+    assert_eq!(seen.first(), Some(&(0, 6)), "{seen:?}");
+    assert_eq!(seen.last(), Some(&(6, 6)), "{seen:?}");
+    assert!(seen.windows(2).all(|w| w[0].0 <= w[1].0), "{seen:?}");
 }

@@ -173,7 +173,7 @@ fn measure_ensemble(rows: u64, outputs: usize, members: u64, spread: &str) {
         threads: Some(2),
         keep_series: false,
         store: None,
-        progress: false,
+        progress: None,
     };
     let ((state, _), peak) = peak_of(|| hadal::ensemble::run(&m, &opts, out.path()).unwrap());
     assert_eq!(state.members(), members);

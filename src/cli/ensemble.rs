@@ -62,11 +62,11 @@ pub(crate) fn cmd_ensemble(
     } else {
         None
     };
-    let checked = match load(file, &[]) {
-        Ok(c) => c,
+    let scenario = match load(file, &[]) {
+        Ok(s) => s,
         Err(code) => return code,
     };
-    let model = &checked.model;
+    let model = scenario.model();
     if model.ensemble.is_none() {
         eprintln!(
             "note: {} has no `ensemble {{ }}` block; every member runs the nominal parameters",
@@ -82,6 +82,9 @@ pub(crate) fn cmd_ensemble(
             PathBuf::from("outputs").join(base)
         }
     });
+    // The bar is the CLI's: the library only reports counts, and only a
+    // terminal gets a bar.
+    let bar = std::io::stderr().is_terminal().then(progress_bar);
     let opts = Options {
         members,
         seed,
@@ -89,9 +92,18 @@ pub(crate) fn cmd_ensemble(
         threads,
         keep_series,
         store,
-        progress: std::io::stderr().is_terminal(),
+        progress: bar.clone().map(|b| {
+            ensemble::Progress(std::sync::Arc::new(move |done, total| {
+                b.set_length(total);
+                b.set_position(done);
+            }))
+        }),
     };
-    let state = match ensemble::run(model, &opts, &dir) {
+    let state = ensemble::run(model, &opts, &dir);
+    if let Some(b) = &bar {
+        b.finish_and_clear();
+    }
+    let state = match state {
         Ok((s, warnings)) => {
             super::report(&model.sources, &warnings);
             s
@@ -186,4 +198,16 @@ pub(crate) fn cmd_merge(dirs: &[PathBuf], out: Option<&Path>) -> i32 {
             EXIT_INVALID
         }
     }
+}
+
+/// The ensemble's progress bar on standard error.
+fn progress_bar() -> indicatif::ProgressBar {
+    let b = indicatif::ProgressBar::new(0);
+    b.set_style(
+        indicatif::ProgressStyle::with_template(
+            "{bar:40} {pos}/{len} members  {per_sec}  eta {eta}",
+        )
+        .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar()),
+    );
+    b
 }

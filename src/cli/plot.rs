@@ -10,9 +10,16 @@ use crate::figures::{self, InventoryUnit, RunOptions};
 /// Draw the figures of `dir` and write them into it, each atomically.
 /// Returns the names written. Used by `hadal plot` and after `hadal run`.
 pub(crate) fn write_figures(dir: &Path, opts: &RunOptions) -> Result<Vec<String>, String> {
-    let files = figures::draw_dir(dir, opts)?;
+    write_files(
+        dir,
+        &figures::draw_dir(dir, opts).map_err(|e| e.to_string())?,
+    )
+}
+
+/// Write figure files into `dir`, each atomically; returns their names.
+pub(crate) fn write_files(dir: &Path, files: &figures::Files) -> Result<Vec<String>, String> {
     let mut names = Vec::with_capacity(files.len());
-    for (name, bytes) in &files {
+    for (name, bytes) in files {
         let path = dir.join(name);
         crate::fsutil::write_atomic(&path, bytes)
             .map_err(|e| format!("cannot write {}: {e}", path.display()))?;

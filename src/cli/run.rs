@@ -1,15 +1,13 @@
 //! `hadal run`.
 
 use std::path::{Path, PathBuf};
-use std::time::Instant;
 
-use super::{report, usage_error, EXIT_INVALID, EXIT_OK, EXIT_USAGE};
-use crate::check::{self, CheckError, CheckOptions};
-use crate::diagnostic::Problem;
+use super::{report, usage_error, EXIT_INVALID, EXIT_OK};
+use crate::api::{self, LoadError, LoadOptions, RunError, Scenario};
 use crate::model::Model;
 use crate::pipeline::{self, Outcome};
 use crate::report::{self as rep, fmt_num};
-use crate::solve::Run;
+use crate::span::Sources;
 
 pub(crate) fn parse_sets(sets: &[String]) -> Result<Vec<(String, String)>, String> {
     sets.iter()
@@ -22,45 +20,31 @@ pub(crate) fn parse_sets(sets: &[String]) -> Result<Vec<(String, String)>, Strin
         .collect()
 }
 
-pub(crate) fn load(file: &Path, sets: &[String]) -> Result<check::Checked, i32> {
+pub(crate) fn load(file: &Path, sets: &[String]) -> Result<Scenario, i32> {
     let overrides = parse_sets(sets).map_err(usage_error)?;
-    match check::check_file(file, &CheckOptions { overrides }) {
-        Ok(c) => {
-            report(&c.model.sources, &c.warnings);
-            if c.model.is_library() {
-                eprintln!(
-                    "error: {} is a library file (no `scenario` line); run a scenario that includes it",
-                    file.display()
-                );
-                return Err(EXIT_USAGE);
-            }
-            Ok(c)
+    match api::load(file, &LoadOptions { overrides }) {
+        Ok(s) => {
+            report(&s.model().sources, s.warnings());
+            Ok(s)
         }
-        Err(CheckError::Io { path, message }) => Err(usage_error(format!(
-            "cannot read {}: {message}",
-            path.display()
-        ))),
-        Err(CheckError::Invalid { sources, problems }) => {
+        Err(LoadError::Invalid { sources, problems }) => {
             report(&sources, &problems);
             Err(EXIT_INVALID)
         }
-    }
-}
-
-/// Write a run's files as one unit (see [`crate::fsutil::write_group`]):
-/// on failure the directory is as it was (a directory this run created is
-/// removed again), and the manifest, written last, marks a complete set.
-/// Temporary files of runs that were killed here are cleared first.
-fn write_outputs(dir: &Path, files: &[(&str, Vec<u8>)], created: bool) -> Result<(), String> {
-    std::fs::create_dir_all(dir).map_err(|e| format!("cannot create {}: {e}", dir.display()))?;
-    crate::fsutil::remove_stale_temps(dir);
-    let group: Vec<(&str, &[u8])> = files.iter().map(|(n, b)| (*n, b.as_slice())).collect();
-    crate::fsutil::write_group(dir, &group, "manifest.json").map_err(|e| {
-        if created {
-            let _ = std::fs::remove_dir(dir);
+        Err(LoadError::Library {
+            path,
+            sources,
+            warnings,
+        }) => {
+            report(&sources, &warnings);
+            Err(usage_error(LoadError::Library {
+                path,
+                sources: Sources::default(),
+                warnings: Vec::new(),
+            }))
         }
-        format!("cannot write the outputs in {}: {e}", dir.display())
-    })
+        Err(e @ LoadError::Io { .. }) => Err(usage_error(e)),
+    }
 }
 
 pub(crate) fn cmd_run(
@@ -71,12 +55,11 @@ pub(crate) fn cmd_run(
     use_cache: bool,
     plots: bool,
 ) -> i32 {
-    let clock = Instant::now();
-    let checked = match load(file, sets) {
-        Ok(c) => c,
+    let scenario = match load(file, sets) {
+        Ok(s) => s,
         Err(code) => return code,
     };
-    let model = &checked.model;
+    let model = scenario.model();
     let name = model.name.clone().unwrap_or_default();
     let store = if use_cache {
         match super::open_store() {
@@ -86,113 +69,60 @@ pub(crate) fn cmd_run(
     } else {
         None
     };
-    let mut outcome = match pipeline::execute(model, store.as_ref()) {
-        Ok(o) => o,
-        Err(_) if crate::cancel::requested() => return super::interrupted(),
-        Err(p) => {
+    let mut result = match scenario.run(&api::RunOptions {
+        store: store.as_ref(),
+    }) {
+        Ok(r) => r,
+        Err(RunError::Interrupted) => return super::interrupted(),
+        Err(RunError::Failed(p)) => {
             report(&model.sources, &[p]);
             return EXIT_INVALID;
         }
     };
-    report(&model.sources, &outcome.warnings);
+    report(&model.sources, &result.outcome.warnings);
     let dir = out
         .map(Path::to_owned)
         .unwrap_or_else(|| PathBuf::from("outputs").join(&name));
-    let expectations = rep::expectations(model, &outcome.run);
-    // The series moves into the files rather than being copied: it is most
-    // of a run's memory (see `check::ReportSize`).
-    let series = std::mem::take(&mut outcome.series_csv);
-    let mut files = output_files(model, &outcome, &expectations);
-    files[0].1 = series;
-    let overrides = parse_sets(sets).unwrap_or_default();
-    let wall = clock.elapsed();
-    let created = !dir.is_dir();
-    if let Err(e) = std::fs::create_dir_all(&dir) {
-        return usage_error(format!("cannot create {}: {e}", dir.display()));
-    }
-    let manifest = crate::manifest::build(
-        model,
-        file,
-        &overrides,
-        &outcome,
-        &files,
-        &dir,
-        wall.as_secs_f64() * 1e3,
-    );
-    // The manifest is written last: a directory with a manifest is complete.
-    files.push(("manifest.json", manifest.to_json()));
     if crate::cancel::requested() {
         return super::interrupted();
     }
-    if let Err(e) = write_outputs(&dir, &files, created) {
+    if let Err(e) = result.write(&dir) {
         return usage_error(e);
     }
-    // Figures read the series back from the file just written.
-    drop(files);
-    // Figures are drawn from the files just written (so `hadal plot DIR`
-    // redraws the same bytes) and are not listed in the manifest.
+    // Figures are drawn from the result in memory, from the same numbers
+    // as `hadal plot DIR` reads back (so it redraws the same bytes); they
+    // are not listed in the manifest.
     if plots && !crate::cancel::requested() {
-        if let Err(e) = super::plot::write_figures(&dir, &crate::figures::RunOptions::default()) {
+        if let Err(e) = write_run_figures(&mut result, &dir) {
             eprintln!("warning: figures not drawn: {e}");
         }
     }
-    let closure_problems = closure_problems(model, &outcome.run);
+    let wall = result.wall;
     if json {
         println!(
             "{}",
-            summary_json(model, &outcome, &expectations, &dir, wall)
+            summary_json(model, &result.outcome, &result.expectations, &dir, wall)
         );
     } else {
-        print_summary(model, &outcome, &expectations, &dir, wall);
+        print_summary(model, &result.outcome, &result.expectations, &dir, wall);
     }
-    if !closure_problems.is_empty() {
-        report(&model.sources, &closure_problems);
+    if !result.closure_problems.is_empty() {
+        report(&model.sources, &result.closure_problems);
         return EXIT_INVALID;
     }
     EXIT_OK
 }
 
-/// The files a run writes beside its manifest (and that `verify` recomputes).
-pub(crate) fn output_files(
-    model: &Model,
-    outcome: &Outcome,
-    expectations: &[rep::ExpectResult],
-) -> Vec<(&'static str, Vec<u8>)> {
-    let mut files = vec![
-        ("series.csv", outcome.series_csv.clone()),
-        ("stages.csv", rep::stages_csv(model, &outcome.run)),
-        ("events.csv", rep::events_csv(model, &outcome.run)),
-    ];
-    if !model.expects.is_empty() {
-        files.push(("expectations.csv", rep::expectations_csv(expectations)));
-    }
-    files
-}
-
-fn closure_problems(model: &Model, run: &Run) -> Vec<Problem> {
-    run.stages
-        .iter()
-        .filter(|sr| sr.closure_error > model.stages[sr.stage].solver.budget_tolerance)
-        .map(|sr| {
-            let st = &model.stages[sr.stage];
-            Problem::error(
-                "H0606",
-                format!(
-                    "the water budget of stage `{}` does not close: relative error {:.3e}, above {:.1e}",
-                    st.name, sr.closure_error, st.solver.budget_tolerance
-                ),
-            )
-            .label(st.span, "this stage")
-            .help("tighten `solver rtol`, or raise `solver budget_tolerance` if the loss is understood")
-        })
-        .collect()
-}
-
-fn ocean_masses(model: &Model) -> f64 {
-    model
-        .find("ocean_mass")
-        .and_then(|d| check::eval_const(model, &model.defs[d].expr))
-        .unwrap_or(1.4e21)
+/// The figures of a written run, from its result in memory; the output
+/// bytes are freed before drawing, so the figures add only the columns
+/// they draw to the run's memory.
+fn write_run_figures(result: &mut api::RunResult, dir: &Path) -> Result<(), String> {
+    let data = result.figure_data().map_err(|e| e.to_string())?;
+    drop(result.take_files());
+    let files = crate::figures::run::figures(&data, &crate::figures::RunOptions::default())
+        .map_err(|e| e.to_string())?;
+    drop(data);
+    super::plot::write_files(dir, &files).map(drop)
 }
 
 fn print_summary(
@@ -253,20 +183,18 @@ fn print_summary(
             println!("  {} computed: {}", st.name, rp.reason);
         }
     }
-    let om = ocean_masses(model);
-    if let Some(last) = run.stages.last() {
+    let inv = api::final_inventories(model, run);
+    let om = inv.ocean_mass;
+    if inv.solved {
         println!("final inventories (ocean masses of {om:.3e} kg):");
-        let order = crate::compile::state_order(model);
-        for (id, d) in model.reservoirs() {
-            let k = order.iter().position(|&o| o == id).unwrap_or(0);
-            println!("  {:<24} {:>10.4}", d.name, last.end.0[k] / om);
+        for (name, kg) in &inv.reservoirs {
+            println!("  {:<24} {:>10.4}", name, kg / om);
         }
-        let n = last.end.0.len();
-        if last.end.0[n - 2] != 0.0 || last.end.0[n - 1] != 0.0 {
+        if inv.delivered != 0.0 || inv.lost != 0.0 {
             println!(
                 "  delivered from outside {:>10.4}, lost to outside {:>10.4}",
-                last.end.0[n - 2] / om,
-                last.end.0[n - 1] / om
+                inv.delivered / om,
+                inv.lost / om
             );
         }
     }
@@ -330,16 +258,14 @@ fn summary_json(
             })
         })
         .collect();
-    let om = ocean_masses(model);
-    let last = run.stages.last();
-    let order = crate::compile::state_order(model);
-    let finals: serde_json::Map<String, serde_json::Value> = model
-        .reservoirs()
-        .map(|(id, d)| {
-            let k = order.iter().position(|&o| o == id).unwrap_or(0);
-            let kg = last.map_or(f64::NAN, |l| l.end.0[k]);
+    let inv = api::final_inventories(model, run);
+    let om = inv.ocean_mass;
+    let finals: serde_json::Map<String, serde_json::Value> = inv
+        .reservoirs
+        .iter()
+        .map(|(name, kg)| {
             (
-                d.name.clone(),
+                name.clone(),
                 serde_json::json!({"kg": kg, "ocean_masses": kg / om}),
             )
         })
@@ -375,72 +301,30 @@ fn summary_json(
 }
 
 pub(crate) fn cmd_params(file: &Path, sets: &[String], json: bool) -> i32 {
-    let checked = match load(file, sets) {
-        Ok(c) => c,
+    let scenario = match load(file, sets) {
+        Ok(s) => s,
         Err(code) => return code,
     };
-    let model = &checked.model;
-    let g = crate::graph::DepGraph::build(model);
-    let influence = crate::graph::param_stages(model, &g);
-    let base = crate::compile::stage_params(model, None);
-    let mut list = Vec::new();
-    for (id, stages) in influence {
-        let d = &model.defs[id];
-        let v = base[id].unwrap_or(f64::NAN);
-        let (unit_text, unit) = rep::shown_unit(model, id);
-        let shown = unit.from_internal(v);
-        let initial = model
-            .defs
-            .iter()
-            .enumerate()
-            .filter(|(_, x)| {
-                matches!(
-                    x.kind,
-                    crate::model::DefKind::Reservoir { .. } | crate::model::DefKind::State { .. }
-                )
-            })
-            .any(|(r, _)| {
-                g.closure(&[crate::graph::Node::Initial(r)])
-                    .contains(&crate::graph::Node::Def(id))
-            });
-        let names: Vec<String> = stages
-            .iter()
-            .map(|&s| model.stages[s].name.clone())
-            .collect();
-        let overridden: Vec<String> = model
-            .stages
-            .iter()
-            .filter(|s| s.sets.iter().any(|(p, _)| *p == id))
-            .map(|s| s.name.clone())
-            .collect();
-        list.push((
-            d.name.clone(),
-            shown,
-            unit_text,
-            names,
-            initial,
-            overridden,
-            d.doc.clone(),
-        ));
-    }
+    let list = api::parameters(scenario.model());
     if json {
         let v: Vec<serde_json::Value> = list
             .iter()
-            .map(|(n, v, u, st, init, ov, doc)| {
-                serde_json::json!({"name": n, "value": v, "unit": u, "stages": st, "initial_state": init, "set_in": ov, "doc": doc})
+            .map(|p| {
+                serde_json::json!({"name": p.name, "value": p.value, "unit": p.unit, "stages": p.stages, "initial_state": p.initial_state, "set_in": p.set_in, "doc": p.doc})
             })
             .collect();
         println!("{}", serde_json::to_string_pretty(&v).unwrap_or_default());
         return EXIT_OK;
     }
-    let w = list.iter().map(|l| l.0.len()).max().unwrap_or(4).max(9);
+    let w = list.iter().map(|p| p.name.len()).max().unwrap_or(4).max(9);
     println!(
         "{:<w$}  {:>14}  {:<10}  influences",
         "parameter", "value", "unit"
     );
-    for (n, v, u, st, init, ov, _) in &list {
-        let mut infl = st.join(", ");
-        if *init {
+    for p in &list {
+        let (n, u, ov) = (&p.name, &p.unit, &p.set_in);
+        let mut infl = p.stages.join(", ");
+        if p.initial_state {
             infl = if infl.is_empty() {
                 "initial state".into()
             } else {
@@ -453,7 +337,7 @@ pub(crate) fn cmd_params(file: &Path, sets: &[String], json: bool) -> i32 {
         if !ov.is_empty() {
             infl.push_str(&format!(" (set in {})", ov.join(", ")));
         }
-        println!("{n:<w$}  {:>14}  {u:<10}  {infl}", rep::human_num(*v));
+        println!("{n:<w$}  {:>14}  {u:<10}  {infl}", rep::human_num(p.value));
     }
     EXIT_OK
 }

@@ -44,7 +44,20 @@ pub struct Options {
     pub threads: Option<usize>,
     pub keep_series: bool,
     pub store: Option<Store>,
-    pub progress: bool,
+    /// Told `(members done, members to run)` after each chunk of members,
+    /// on the calling thread; the library draws nothing itself.
+    pub progress: Option<Progress>,
+}
+
+/// A progress callback for [`Options::progress`] (shared, so `Options`
+/// stays `Clone`).
+#[derive(Clone)]
+pub struct Progress(pub std::sync::Arc<dyn Fn(u64, u64) + Send + Sync>);
+
+impl std::fmt::Debug for Progress {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str("Progress(..)")
+    }
 }
 
 // ---- random numbers --------------------------------------------------------
@@ -488,18 +501,12 @@ pub fn run(
     if to - from >= NATIVE_MIN_MEMBERS {
         pool.install(|| progs.make_native());
     }
-    let bar = if opts.progress {
-        let b = indicatif::ProgressBar::new(to - from);
-        b.set_style(
-            indicatif::ProgressStyle::with_template(
-                "{bar:40} {pos}/{len} members  {per_sec}  eta {eta}",
-            )
-            .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar()),
-        );
-        b
-    } else {
-        indicatif::ProgressBar::hidden()
+    let tell = |done: u64| {
+        if let Some(p) = &opts.progress {
+            (p.0)(done, to - from);
+        }
     };
+    tell(0);
     // Members run in chunks, in two parallel phases: solve the chunk's
     // members, then add their series to the sketches, each thread taking a
     // block of report times (so no two threads touch one sketch, and each
@@ -620,10 +627,9 @@ pub fn run(
                     .map_err(|e| format!("cannot write {}: {e}", p.display()))?;
             }
         }
-        bar.inc(end - start);
         start = end;
+        tell(start - from);
     }
-    bar.finish_and_clear();
     let file = out.into_inner().map_err(|e| e.to_string())?;
     file.sync_all().map_err(|e| e.to_string())?;
     std::fs::rename(&tmp, &members_path).map_err(|e| e.to_string())?;

@@ -252,7 +252,19 @@ fn data_range(p: &AgePlot) -> Option<(f64, f64, f64, f64)> {
 
 /// Draw the figure; `Err` only if the backend fails or there is nothing to
 /// draw (no finite data at all).
-pub fn draw(p: &AgePlot) -> Result<Vec<u8>, String> {
+pub fn draw(p: &AgePlot) -> Result<Vec<u8>, super::FigureError> {
+    if data_range(p).is_none() {
+        return Err(super::FigureError::Invalid(format!(
+            "`{}`: no finite values to draw",
+            p.title
+        )));
+    }
+    draw_svg(p).map_err(super::FigureError::Draw)
+}
+
+/// [`draw`] once the data is known to have a range; errors are the
+/// backend's.
+fn draw_svg(p: &AgePlot) -> Result<Vec<u8>, String> {
     let (young_ga, old_ga, mut vlo, mut vhi) =
         data_range(p).ok_or_else(|| format!("`{}`: no finite values to draw", p.title))?;
     let (old_ga, young_ga) = if old_ga > young_ga {

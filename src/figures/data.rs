@@ -7,6 +7,7 @@
 
 use std::path::Path;
 
+use super::FigureError;
 use crate::units::{self, Unit};
 
 /// One column of a CSV table whose header is `name [unit]`.
@@ -50,34 +51,37 @@ pub struct TextTable {
 }
 
 impl TextTable {
-    pub fn parse(bytes: &[u8]) -> Result<TextTable, String> {
+    pub fn parse(bytes: &[u8]) -> Result<TextTable, FigureError> {
         let mut r = csv::ReaderBuilder::new()
             .has_headers(true)
             .flexible(true)
             .from_reader(bytes);
         let header = r
             .headers()
-            .map_err(|e| format!("bad CSV header: {e}"))?
+            .map_err(|e| FigureError::Invalid(format!("bad CSV header: {e}")))?
             .iter()
             .map(str::to_owned)
             .collect();
         let mut rows = Vec::new();
         for rec in r.records() {
-            let rec = rec.map_err(|e| format!("bad CSV row: {e}"))?;
+            let rec = rec.map_err(|e| FigureError::Invalid(format!("bad CSV row: {e}")))?;
             rows.push(rec.iter().map(str::to_owned).collect());
         }
         Ok(TextTable { header, rows })
     }
 
     /// Read `dir/name`; `Ok(None)` when the file does not exist.
-    pub fn read_optional(dir: &Path, name: &str) -> Result<Option<TextTable>, String> {
+    pub fn read_optional(dir: &Path, name: &str) -> Result<Option<TextTable>, FigureError> {
         let path = dir.join(name);
         match crate::fsutil::read_bounded(&path, crate::fsutil::MAX_OUTPUT_BYTES) {
             Ok(b) => TextTable::parse(&b)
                 .map(Some)
-                .map_err(|e| format!("{}: {e}", path.display())),
+                .map_err(|e| e.at(&path.display().to_string())),
             Err(e) if e.is_not_found() => Ok(None),
-            Err(e) => Err(format!("cannot read {}: {e}", path.display())),
+            Err(e) => Err(FigureError::Read(format!(
+                "cannot read {}: {e}",
+                path.display()
+            ))),
         }
     }
 
@@ -119,20 +123,41 @@ impl TextTable {
 /// run's series may be millions of rows, and as text cells it took about
 /// eight times the memory of its numbers. `Ok(None)` when the file does
 /// not exist.
-pub fn read_numeric_columns(path: &Path) -> Result<Option<Vec<Column>>, String> {
+pub fn read_numeric_columns(path: &Path) -> Result<Option<Vec<Column>>, FigureError> {
     let file = match std::fs::File::open(path) {
         Ok(f) => f,
         Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(None),
-        Err(e) => return Err(format!("cannot read {}: {e}", path.display())),
+        Err(e) => {
+            return Err(FigureError::Read(format!(
+                "cannot read {}: {e}",
+                path.display()
+            )))
+        }
     };
+    numeric_columns_of(std::io::BufReader::new(file))
+        .map(Some)
+        .map_err(|e| e.at(&path.display().to_string()))
+}
+
+/// Every column of CSV text parsed as numbers (see [`read_numeric_columns`]).
+fn numeric_columns_of(from: impl std::io::Read) -> Result<Vec<Column>, FigureError> {
     let mut r = csv::ReaderBuilder::new()
         .has_headers(true)
         .flexible(true)
-        .from_reader(std::io::BufReader::new(file));
-    let bad = |what: &str, e: csv::Error| format!("{}: bad CSV {what}: {e}", path.display());
-    let mut cols: Vec<Column> = r
-        .headers()
-        .map_err(|e| bad("header", e))?
+        .from_reader(from);
+    let bad = |what: &str, e: csv::Error| FigureError::Invalid(format!("bad CSV {what}: {e}"));
+    let mut cols = header_columns(r.headers().map_err(|e| bad("header", e))?);
+    let mut rec = csv::StringRecord::new();
+    while r.read_record(&mut rec).map_err(|e| bad("row", e))? {
+        for (k, c) in cols.iter_mut().enumerate() {
+            c.values.push(parse_num(rec.get(k).unwrap_or("")));
+        }
+    }
+    Ok(cols)
+}
+
+fn header_columns(header: &csv::StringRecord) -> Vec<Column> {
+    header
         .iter()
         .map(|h| {
             let (name, unit) = split_header(h);
@@ -142,14 +167,65 @@ pub fn read_numeric_columns(path: &Path) -> Result<Option<Vec<Column>>, String> 
                 values: Vec::new(),
             }
         })
-        .collect();
-    let mut rec = csv::StringRecord::new();
-    while r.read_record(&mut rec).map_err(|e| bad("row", e))? {
-        for (k, c) in cols.iter_mut().enumerate() {
-            c.values.push(parse_num(rec.get(k).unwrap_or("")));
+        .collect()
+}
+
+/// The columns of a series CSV held in memory (as a run makes it), the
+/// same numbers [`read_numeric_columns`] reads from the written file.
+pub fn decode_series(bytes: &[u8]) -> Result<Vec<Column>, FigureError> {
+    decode_series_columns(bytes, |_, _| true)
+}
+
+/// [`decode_series`], keeping only the columns for which `keep(name,
+/// unit)` holds; the cells of the others are not parsed. The rows of a
+/// series are numbers that are never quoted, so they are split directly,
+/// without the CSV reader's records; text with a quote anywhere after the
+/// header goes through the CSV reader instead.
+pub fn decode_series_columns(
+    bytes: &[u8],
+    keep: impl Fn(&str, &str) -> bool,
+) -> Result<Vec<Column>, FigureError> {
+    let mut r = csv::ReaderBuilder::new()
+        .has_headers(true)
+        .flexible(true)
+        .from_reader(bytes);
+    let header = r
+        .headers()
+        .map_err(|e| FigureError::Invalid(format!("bad CSV header: {e}")))?
+        .clone();
+    let body = &bytes[(r.position().byte() as usize).min(bytes.len())..];
+    if body.contains(&b'"') {
+        let mut cols = numeric_columns_of(bytes)?;
+        cols.retain(|c| keep(&c.name, &c.unit));
+        return Ok(cols);
+    }
+    // The kept columns and their positions in a row.
+    let (at, mut cols): (Vec<usize>, Vec<Column>) = header_columns(&header)
+        .into_iter()
+        .enumerate()
+        .filter(|(_, c)| keep(&c.name, &c.unit))
+        .unzip();
+    let lines = body.iter().filter(|&&b| b == b'\n').count() + 1;
+    for c in &mut cols {
+        c.values.reserve(lines);
+    }
+    for line in body.split(|&b| b == b'\n') {
+        let line = line.strip_suffix(b"\r").unwrap_or(line);
+        // The CSV reader skips empty lines too.
+        if line.is_empty() {
+            continue;
+        }
+        let line = std::str::from_utf8(line)
+            .map_err(|e| FigureError::Invalid(format!("bad CSV row: {e}")))?;
+        let mut cells = line.split(',').enumerate();
+        for (c, &k) in cols.iter_mut().zip(&at) {
+            // Cells before the next kept one are skipped unparsed; a short
+            // row leaves the rest empty (NaN), as the CSV reader does.
+            let cell = cells.find(|(i, _)| *i == k).map_or("", |(_, t)| t);
+            c.values.push(parse_num(cell));
         }
     }
-    Ok(Some(cols))
+    Ok(cols)
 }
 
 /// A unit written UDUNITS style in a CSV header (`kg`, `W m-2`, `cm yr-1`,
@@ -192,14 +268,18 @@ pub fn convert(v: f64, from: &str, to: &str) -> Option<f64> {
 }
 
 /// Ages in Ga from a column in any age unit (Ga, Ma, ka, yr).
-fn ages_in_ga(col: &Column) -> Result<Vec<f64>, String> {
+fn ages_in_ga(col: &Column) -> Result<Vec<f64>, FigureError> {
     let unit = if col.unit.is_empty() { "Ga" } else { &col.unit };
     let per_ga = match unit {
         "Ga" => 1.0,
         "Ma" => 1e3,
         "ka" => 1e6,
         "yr" | "a" => 1e9,
-        other => return Err(format!("the age column is in `{other}`, not an age unit")),
+        other => {
+            return Err(FigureError::Invalid(format!(
+                "the age column is in `{other}`, not an age unit"
+            )))
+        }
     };
     Ok(col.values.iter().map(|v| v / per_ga).collect())
 }
@@ -238,33 +318,52 @@ pub struct RunData {
 impl RunData {
     /// Read `series.csv` (required), `stages.csv`, `events.csv` and
     /// `manifest.json` (optional) from a run directory.
-    pub fn load(dir: &Path) -> Result<RunData, String> {
-        let mut cols = read_numeric_columns(&dir.join("series.csv"))?
-            .ok_or_else(|| format!("{} has no series.csv", dir.display()))?;
-        let age_at = cols
-            .iter()
-            .position(|c| c.name.eq_ignore_ascii_case("age"))
-            .ok_or_else(|| format!("{}/series.csv has no `age` column", dir.display()))?;
-        let age = cols.remove(age_at);
-        let ages = ages_in_ga(&age)?;
-        if ages.iter().any(|a| !a.is_finite()) {
-            return Err(format!(
-                "{}/series.csv has an empty or non-numeric age",
-                dir.display()
-            ));
-        }
-        let (stages, stages_header) = match TextTable::read_optional(dir, "stages.csv")? {
-            Some(t) => (read_stages(&t), t.header.clone()),
-            None => (Vec::new(), Vec::new()),
-        };
-        let events = match TextTable::read_optional(dir, "events.csv")? {
-            Some(t) => read_events(&t),
-            None => Vec::new(),
-        };
+    pub fn load(dir: &Path) -> Result<RunData, FigureError> {
+        let cols = read_numeric_columns(&dir.join("series.csv"))?
+            .ok_or_else(|| FigureError::Read(format!("{} has no series.csv", dir.display())))?;
+        let stages = TextTable::read_optional(dir, "stages.csv")?;
+        let events = TextTable::read_optional(dir, "events.csv")?;
         let manifest =
             crate::fsutil::read_bounded(&dir.join("manifest.json"), crate::fsutil::MAX_JSON_BYTES)
                 .ok()
                 .and_then(|b| serde_json::from_slice(&b).ok());
+        let series = dir.join("series.csv");
+        RunData::from_parts(
+            cols,
+            stages,
+            events,
+            manifest,
+            &series.display().to_string(),
+        )
+    }
+
+    /// A run's data from its parts, wherever they were read (files for
+    /// `hadal plot`, memory for `hadal run`): the series' columns, the
+    /// stages and events tables and the manifest. `series` names the
+    /// series in errors.
+    pub fn from_parts(
+        mut cols: Vec<Column>,
+        stages: Option<TextTable>,
+        events: Option<TextTable>,
+        manifest: Option<serde_json::Value>,
+        series: &str,
+    ) -> Result<RunData, FigureError> {
+        let age_at = cols
+            .iter()
+            .position(|c| c.name.eq_ignore_ascii_case("age"))
+            .ok_or_else(|| FigureError::Invalid(format!("{series} has no `age` column")))?;
+        let age = cols.remove(age_at);
+        let ages = ages_in_ga(&age)?;
+        if ages.iter().any(|a| !a.is_finite()) {
+            return Err(FigureError::Invalid(format!(
+                "{series} has an empty or non-numeric age"
+            )));
+        }
+        let (stages, stages_header) = match stages {
+            Some(t) => (read_stages(&t), t.header.clone()),
+            None => (Vec::new(), Vec::new()),
+        };
+        let events = events.map(|t| read_events(&t)).unwrap_or_default();
         Ok(RunData {
             ages,
             columns: cols,
@@ -292,7 +391,7 @@ fn per_ga(header: &str) -> f64 {
 }
 
 /// The stages of `dir/stages.csv` (none when the file is absent).
-pub fn load_stages(dir: &Path) -> Result<Vec<StageSpan>, String> {
+pub fn load_stages(dir: &Path) -> Result<Vec<StageSpan>, FigureError> {
     Ok(TextTable::read_optional(dir, "stages.csv")?
         .map(|t| read_stages(&t))
         .unwrap_or_default())
@@ -387,16 +486,16 @@ fn quantile_column(name: &str) -> Option<(bool, usize)> {
 /// `age [unit]` column, a `variable` column (its cells may carry a
 /// `[unit]`), an optional `unit` column, and quantile columns as described
 /// at [`quantile_column`]. Variables keep their first-seen order.
-pub fn parse_quantiles(t: &TextTable) -> Result<Vec<VariableQuantiles>, String> {
+pub fn parse_quantiles(t: &TextTable) -> Result<Vec<VariableQuantiles>, FigureError> {
     let age = t
         .header
         .iter()
         .position(|h| split_header(h).0.eq_ignore_ascii_case("age"))
-        .ok_or("quantiles.csv has no `age` column")?;
+        .ok_or_else(|| FigureError::Invalid("quantiles.csv has no `age` column".into()))?;
     let af = per_ga(&t.header[age]);
     let var = t
         .find("variable")
-        .ok_or("quantiles.csv has no `variable` column")?;
+        .ok_or_else(|| FigureError::Invalid("quantiles.csv has no `variable` column".into()))?;
     let unit_col = t.find("unit");
     let qcols: Vec<(usize, bool, usize)> = t
         .header
@@ -406,7 +505,9 @@ pub fn parse_quantiles(t: &TextTable) -> Result<Vec<VariableQuantiles>, String> 
         .filter_map(|(k, h)| quantile_column(&split_header(h).0).map(|(a, l)| (k, a, l)))
         .collect();
     if !qcols.iter().any(|&(_, a, _)| !a) {
-        return Err("quantiles.csv has no quantile columns for all members".into());
+        return Err(FigureError::Invalid(
+            "quantiles.csv has no quantile columns for all members".into(),
+        ));
     }
     let has_accepted = qcols.iter().any(|&(_, a, _)| a);
     let mut out: Vec<VariableQuantiles> = Vec::new();
@@ -531,5 +632,57 @@ mod tests {
         assert!(read_numeric_columns(&dir.path().join("none.csv"))
             .unwrap()
             .is_none());
+    }
+
+    #[test]
+    fn a_series_decoded_in_memory_is_the_series_read_from_its_file() {
+        // Holes, infinities, NaN, short and long rows, a blank line, CRLF,
+        // a header the CSV writer quoted, and the bits of -0 and subnormals.
+        let texts = [
+            "age [Ga],ocean [kg],sea_level [m]\n4.5,1.4e21,-20\n4.4,,inf\n4.3,1e21\n4.2,x,3,extra\n",
+            "age [Ga],\"a, b [kg]\"\r\n1,-0,NaN\r\n\r\n0.5,5e-324,-inf\r\n",
+            "age [Ma],v []\n",
+            "age [Ga],v [1]\n1,\"2\"\n",
+            "age [Ga],v [1]\n1,2",
+        ];
+        let bits = |cols: &[Column]| -> Vec<(String, String, Vec<u64>)> {
+            cols.iter()
+                .map(|c| {
+                    let v = c.values.iter().map(|v| v.to_bits()).collect();
+                    (c.name.clone(), c.unit.clone(), v)
+                })
+                .collect()
+        };
+        for text in texts {
+            let read = numeric_columns_of(text.as_bytes()).unwrap();
+            let decoded = decode_series(text.as_bytes()).unwrap();
+            assert_eq!(bits(&decoded), bits(&read), "{text:?}");
+        }
+    }
+
+    #[test]
+    fn decoding_some_columns_gives_those_columns_of_the_whole_series() {
+        let texts = [
+            "age [Ga],ocean [kg],t [K],sea_level [m]\n4.5,1.4e21,1600,-20\n4.4,,inf\n4.3\n4.2,x,3,5,extra\n",
+            "age [Ga],\"a, b [kg]\",t [K]\n1,2,3\n",
+        ];
+        let keep = |n: &str, u: &str| n == "age" || u == "kg" || u == "m";
+        for text in texts {
+            let mut whole = decode_series(text.as_bytes()).unwrap();
+            whole.retain(|c| keep(&c.name, &c.unit));
+            let some = decode_series_columns(text.as_bytes(), keep).unwrap();
+            let bits = |cols: &[Column]| -> Vec<(String, Vec<u64>)> {
+                cols.iter()
+                    .map(|c| {
+                        (
+                            c.name.clone(),
+                            c.values.iter().map(|v| v.to_bits()).collect(),
+                        )
+                    })
+                    .collect()
+            };
+            assert_eq!(bits(&some), bits(&whole), "{text:?}");
+            assert!(some.len() < decode_series(text.as_bytes()).unwrap().len());
+        }
     }
 }

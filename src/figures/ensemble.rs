@@ -20,7 +20,7 @@ use super::data::{
     parse_members, parse_quantiles, Members, StageSpan, TextTable, VariableQuantiles,
 };
 use super::run::OCEAN_MASS_KG;
-use super::Files;
+use super::{FigureError, Files};
 
 /// A constraint on one variable, in that constraint's own unit.
 #[derive(Debug, Clone, PartialEq)]
@@ -248,19 +248,22 @@ pub fn constraints_from_summary(summary: &serde_json::Value) -> Vec<ConstraintMa
 impl EnsembleData {
     /// Read `quantiles.csv` (required), `members.csv`, `summary.json` and
     /// `stages.csv` (optional) from an ensemble directory.
-    pub fn load(dir: &Path) -> Result<EnsembleData, String> {
+    pub fn load(dir: &Path) -> Result<EnsembleData, FigureError> {
         let q = TextTable::read_optional(dir, "quantiles.csv")?
-            .ok_or_else(|| format!("{} has no quantiles.csv", dir.display()))?;
-        let variables = parse_quantiles(&q).map_err(|e| format!("{}/{e}", dir.display()))?;
+            .ok_or_else(|| FigureError::Read(format!("{} has no quantiles.csv", dir.display())))?;
+        // The messages name quantiles.csv: `dir/quantiles.csv has no ...`.
+        let variables = parse_quantiles(&q).map_err(|e| match e {
+            FigureError::Invalid(m) => FigureError::Invalid(format!("{}/{m}", dir.display())),
+            e => e,
+        })?;
         let members = TextTable::read_optional(dir, "members.csv")?.map(|t| parse_members(&t));
         let summary: Option<serde_json::Value> = match crate::fsutil::read_bounded(
             &dir.join("summary.json"),
             crate::fsutil::MAX_JSON_BYTES,
         ) {
-            Ok(b) => Some(
-                serde_json::from_slice(&b)
-                    .map_err(|e| format!("{}/summary.json: {e}", dir.display()))?,
-            ),
+            Ok(b) => Some(serde_json::from_slice(&b).map_err(|e| {
+                FigureError::Invalid(format!("{}/summary.json: {e}", dir.display()))
+            })?),
             Err(_) => None,
         };
         let constraints = summary
@@ -429,7 +432,7 @@ pub fn band_figure(
 
 /// Every ensemble figure: `bands_<variable>.svg` per variable, and
 /// `parameters.svg` (the scatter matrix) when members are known.
-pub fn figures(d: &EnsembleData) -> Result<Files, String> {
+pub fn figures(d: &EnsembleData) -> Result<Files, FigureError> {
     let mut out = Vec::new();
     for v in &d.variables {
         if !v.all.q[2].iter().any(|x| x.is_finite()) {
@@ -530,7 +533,12 @@ fn stride(n: usize, cap: usize) -> usize {
 /// A scatter matrix of parameter values: accepted members in colour over
 /// all members in light grey, histograms on the diagonal. `None` when the
 /// table has no parameter columns.
-pub fn scatter_matrix(m: &Members) -> Result<Option<Vec<u8>>, String> {
+pub fn scatter_matrix(m: &Members) -> Result<Option<Vec<u8>>, FigureError> {
+    scatter_matrix_svg(m).map_err(FigureError::Draw)
+}
+
+/// [`scatter_matrix`]; errors are the backend's.
+fn scatter_matrix_svg(m: &Members) -> Result<Option<Vec<u8>>, String> {
     let params: Vec<(&super::data::Column, Axis)> = m
         .params
         .iter()

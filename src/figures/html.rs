@@ -12,7 +12,7 @@ use std::path::Path;
 
 use super::canvas::short_num;
 use super::data::{parse_num, split_header, TextTable};
-use super::{dir_kind, draw_dir, DirKind, RunOptions};
+use super::{dir_kind, draw_dir, DirKind, FigureError, RunOptions};
 
 /// Escape text for HTML element content and attribute values.
 pub fn escape(s: &str) -> String {
@@ -326,7 +326,7 @@ fn stages_section(
     dir: &Path,
     manifest: Option<&serde_json::Value>,
     out: &mut String,
-) -> Result<(), String> {
+) -> Result<(), FigureError> {
     let Some(mut t) = TextTable::read_optional(dir, "stages.csv")? else {
         return Ok(());
     };
@@ -355,7 +355,7 @@ fn stages_section(
     Ok(())
 }
 
-fn events_section(dir: &Path, out: &mut String) -> Result<(), String> {
+fn events_section(dir: &Path, out: &mut String) -> Result<(), FigureError> {
     let Some(mut t) = TextTable::read_optional(dir, "events.csv")? else {
         return Ok(());
     };
@@ -375,7 +375,7 @@ fn events_section(dir: &Path, out: &mut String) -> Result<(), String> {
     Ok(())
 }
 
-fn expectations_section(dir: &Path, out: &mut String) -> Result<(), String> {
+fn expectations_section(dir: &Path, out: &mut String) -> Result<(), FigureError> {
     let Some(t) = TextTable::read_optional(dir, "expectations.csv")? else {
         return Ok(());
     };
@@ -444,7 +444,7 @@ fn member_sets_section(
     dir: &Path,
     summary: Option<&serde_json::Value>,
     out: &mut String,
-) -> Result<(), String> {
+) -> Result<(), FigureError> {
     let members = TextTable::read_optional(dir, "members.csv")?;
     if let Some(m) = &members {
         let acc = m.find("accepted");
@@ -502,13 +502,8 @@ fn member_sets_section(
 }
 
 /// The report page of `dir` (a run or an ensemble directory) as HTML.
-pub fn report(dir: &Path) -> Result<String, String> {
-    let kind = dir_kind(dir).ok_or_else(|| {
-        format!(
-            "{} holds neither a run (series.csv) nor an ensemble (quantiles.csv)",
-            dir.display()
-        )
-    })?;
+pub fn report(dir: &Path) -> Result<String, FigureError> {
+    let kind = dir_kind(dir).ok_or_else(|| FigureError::NotAnOutputDir(dir.to_owned()))?;
     let manifest: Option<serde_json::Value> =
         crate::fsutil::read_bounded(&dir.join("manifest.json"), crate::fsutil::MAX_JSON_BYTES)
             .ok()

@@ -42,6 +42,18 @@ fn lines(ages: &[f64], cols: &[(String, Vec<f64>)]) -> Vec<Line> {
         .collect()
 }
 
+/// Whether a run's figures draw the column `name [unit]`: a figure reads
+/// no other column, so a caller holding a large series in memory decodes
+/// only these (`api::RunResult::figure_data`).
+pub fn is_drawn(name: &str, unit: &str) -> bool {
+    let c = Column {
+        name: name.to_owned(),
+        unit: unit.to_owned(),
+        values: Vec::new(),
+    };
+    is_inventory(&c) || is_temperature(&c) || is_sea_level(&c)
+}
+
 fn is_inventory(c: &Column) -> bool {
     c.unit == "kg"
 }
@@ -193,7 +205,10 @@ pub fn sea_level(run: &RunData) -> Option<AgePlot> {
 }
 
 /// Every figure the run's columns allow: (file name, SVG bytes).
-pub fn figures(run: &RunData, opts: &RunOptions) -> Result<Vec<(String, Vec<u8>)>, String> {
+pub fn figures(
+    run: &RunData,
+    opts: &RunOptions,
+) -> Result<Vec<(String, Vec<u8>)>, super::FigureError> {
     let plots = [inventories(run, opts), temperature(run), sea_level(run)];
     let mut out = Vec::new();
     for (name, plot) in RUN_FIGURES.iter().zip(plots) {

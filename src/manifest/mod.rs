@@ -23,6 +23,7 @@ use serde::{Deserialize, Serialize};
 use crate::model::Model;
 use crate::pipeline::Outcome;
 
+pub mod diff;
 pub mod verify;
 
 pub const FORMAT: &str = "hadal-manifest-1";
@@ -313,7 +314,7 @@ impl Manifest {
     /// Read a manifest: a regular file of at most
     /// [`verify::MAX_MANIFEST_BYTES`], never a pipe or a device. To verify
     /// one, use [`verify::open`], which also confines its paths.
-    pub fn read(path: &Path) -> Result<Manifest, String> {
+    pub fn read(path: &Path) -> Result<Manifest, verify::ManifestError> {
         verify::read_manifest(path)
     }
 }

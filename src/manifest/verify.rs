@@ -105,17 +105,41 @@ pub(crate) fn read_regular(path: &Path, limit: u64, follow: bool) -> Result<Vec<
     crate::fsutil::read_to_limit(file, len, limit).map_err(|e| e.to_string())
 }
 
+/// Why a manifest could not be read.
+#[derive(Debug, Clone, PartialEq)]
+pub enum ManifestError {
+    /// Not a readable regular file within the size limit.
+    Read(String),
+    /// Not JSON of a hadal manifest.
+    NotAManifest(String),
+    /// A manifest of another format version.
+    Format { found: String },
+}
+
+impl std::fmt::Display for ManifestError {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            ManifestError::Read(why) => f.write_str(why),
+            ManifestError::NotAManifest(why) => write!(f, "not a hadal manifest: {why}"),
+            ManifestError::Format { found } => write!(
+                f,
+                "manifest format `{}`, expected `{}`",
+                shown(found),
+                super::FORMAT
+            ),
+        }
+    }
+}
+
+impl std::error::Error for ManifestError {}
+
 /// Read and parse a manifest, size-limited; only a regular file.
-pub(crate) fn read_manifest(path: &Path) -> Result<Manifest, String> {
-    let bytes = read_regular(path, MAX_MANIFEST_BYTES, true)?;
+pub(crate) fn read_manifest(path: &Path) -> Result<Manifest, ManifestError> {
+    let bytes = read_regular(path, MAX_MANIFEST_BYTES, true).map_err(ManifestError::Read)?;
     let m: Manifest =
-        serde_json::from_slice(&bytes).map_err(|e| format!("not a hadal manifest: {e}"))?;
+        serde_json::from_slice(&bytes).map_err(|e| ManifestError::NotAManifest(e.to_string()))?;
     if m.format != super::FORMAT {
-        return Err(format!(
-            "manifest format `{}`, expected `{}`",
-            shown(&m.format),
-            super::FORMAT
-        ));
+        return Err(ManifestError::Format { found: m.format });
     }
     Ok(m)
 }
@@ -237,7 +261,8 @@ fn versioned_project(dir: &Path) -> Option<&Path> {
 
 /// Open the manifest at `path` for verification: see the module comment.
 pub fn open(path: &Path) -> Result<Opened, Refusal> {
-    let m = read_manifest(path).map_err(|why| Refusal::unusable(vec![unusable(path, &why)]))?;
+    let m = read_manifest(path)
+        .map_err(|why| Refusal::unusable(vec![unusable(path, &why.to_string())]))?;
     let forms = check_forms(path, &m);
     if !forms.is_empty() {
         return Err(Refusal::unusable(forms));
@@ -573,4 +598,133 @@ mod tests {
         assert_eq!(shown("a\u{1b}[31mb\n"), "a\\u{1b}[31mb\\n");
         assert_eq!(shown("plain ä"), "plain ä");
     }
+}
+
+// ---- comparing a rerun with the published outputs ------------------------
+
+/// One way a recomputed output departs from what a manifest records, in
+/// the order found. Paths, columns, ages and values are as the manifest
+/// and files hold them (show them through [`shown`]).
+#[derive(Debug, Clone, PartialEq)]
+pub enum Drift {
+    /// The manifest lists an output the rerun no longer makes.
+    NotProduced { path: String },
+    /// The published file is far larger than the recomputed one; not read.
+    PublishedTooLarge {
+        path: String,
+        bytes: u64,
+        recomputed: usize,
+    },
+    /// The recomputed file's hash differs and there is no published file
+    /// to compare values with.
+    NoPublished {
+        path: String,
+        recomputed_hash: String,
+        recorded_hash: String,
+    },
+    /// The published file does not match its manifest, while the rerun does.
+    EditedAfterRun { path: String },
+    /// The tables differ in shape (columns, rows).
+    Shape { path: String, what: String },
+    /// The first differing cell, and the largest relative difference.
+    Values {
+        path: String,
+        column: String,
+        age: String,
+        published: String,
+        recomputed: String,
+        max_rel: f64,
+    },
+}
+
+/// How a rerun's outputs compare with a manifest's.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct Comparison {
+    pub drift: Vec<Drift>,
+    /// Whether the result drifted (beyond `rtol` when one was given);
+    /// [`Drift::EditedAfterRun`] alone does not decide it.
+    pub drifted: bool,
+    /// The largest relative difference accepted under `rtol` (0 when every
+    /// output is byte-identical).
+    pub tolerated: f64,
+}
+
+/// Compare recomputed outputs (name, bytes) with the outputs `opened`
+/// records and publishes beside it; values within `rtol` (relative) are
+/// accepted when the shapes agree and the published file is the one
+/// recorded. An unreadable published file is an error (exit 2).
+pub fn compare(
+    opened: &Opened,
+    fresh: &[(&str, Vec<u8>)],
+    rtol: Option<f64>,
+) -> Result<Comparison, Problem> {
+    let mut out = Comparison::default();
+    for rec in &opened.manifest.compared.outputs {
+        let path = rec.path.clone();
+        let Some((_, bytes)) = fresh.iter().find(|(n, _)| *n == rec.path) else {
+            out.drift.push(Drift::NotProduced { path });
+            out.drifted = true;
+            continue;
+        };
+        // A published file is compared with the recomputed one, so twice
+        // its size (plus room for longer numbers) bounds what is read.
+        let limit = (bytes.len() as u64).saturating_mul(2) + (1 << 20);
+        let published = match opened.published(&rec.path, limit)? {
+            Published::Bytes(b) => Some(b),
+            Published::Absent => None,
+            Published::TooLarge(n) => {
+                out.drift.push(Drift::PublishedTooLarge {
+                    path,
+                    bytes: n,
+                    recomputed: bytes.len(),
+                });
+                out.drifted = true;
+                continue;
+            }
+        };
+        let fresh_hash = hash_bytes(bytes);
+        let pub_ok = published
+            .as_ref()
+            .is_none_or(|b| hash_bytes(b) == rec.blake3);
+        if fresh_hash == rec.blake3 && pub_ok {
+            continue;
+        }
+        // Compare the values against the published file when there is one.
+        let Some(reference) = published else {
+            out.drift.push(Drift::NoPublished {
+                path,
+                recomputed_hash: fresh_hash,
+                recorded_hash: rec.blake3.clone(),
+            });
+            out.drifted = true;
+            continue;
+        };
+        let d = super::diff_csv(&reference, bytes);
+        if !pub_ok && fresh_hash == rec.blake3 {
+            out.drift.push(Drift::EditedAfterRun { path: path.clone() });
+        }
+        let within = rtol.is_some_and(|r| d.shape.is_empty() && d.max_rel() <= r) && pub_ok;
+        if within {
+            out.tolerated = out.tolerated.max(d.max_rel());
+            continue;
+        }
+        out.drifted = true;
+        for s in &d.shape {
+            out.drift.push(Drift::Shape {
+                path: path.clone(),
+                what: s.clone(),
+            });
+        }
+        if let Some((column, age, a, b)) = &d.first {
+            out.drift.push(Drift::Values {
+                path: path.clone(),
+                column: column.clone(),
+                age: age.clone(),
+                published: a.clone(),
+                recomputed: b.clone(),
+                max_rel: d.max_rel(),
+            });
+        }
+    }
+    Ok(out)
 }
