@@ -16,6 +16,7 @@ use std::time::{Duration, Instant};
 use crate::cache::Store;
 use crate::check::{self, CheckError, CheckOptions};
 use crate::diagnostic::Problem;
+use crate::ensemble::{self, EnsembleError, EnsembleRun};
 use crate::figures::data::{Column, RunData};
 use crate::figures::FigureError;
 use crate::manifest::{self, Manifest};
@@ -235,6 +236,19 @@ impl Scenario {
             wall,
             closure_problems,
         })
+    }
+
+    /// Run the scenario as an ensemble: members go to `sink` in member
+    /// order ([`ensemble::FileSink`] streams members.csv, [`ensemble::MemorySink`]
+    /// keeps the numbers), progress to `options.progress`; the state comes
+    /// back, and writing its summary files is a separate step
+    /// ([`EnsembleRun::write`]).
+    pub fn ensemble(
+        &self,
+        options: &ensemble::Options,
+        sink: &mut dyn ensemble::MemberSink,
+    ) -> Result<EnsembleRun, EnsembleError> {
+        ensemble::run(self.model(), options, sink)
     }
 }
 

@@ -417,7 +417,16 @@ fn a_member_whose_parameter_is_not_finite_stops_the_run_without_a_members_file()
         progress: None,
     };
     let out = t.path().join("out");
-    let err = hadal::ensemble::run(&m, &opts, &out).unwrap_err();
+    let err =
+        hadal::ensemble::run(&m, &opts, &mut hadal::ensemble::FileSink::new(&out)).unwrap_err();
+    // Typed: the member and the parameter are named, the words as before.
+    assert!(
+        matches!(&err, hadal::ensemble::EnsembleError::In { context, error }
+            if context == "member 0"
+                && matches!(**error, hadal::ensemble::EnsembleError::NotFinite { .. })),
+        "{err:?}"
+    );
+    let err = err.to_string();
     assert!(err.contains("not a finite number"), "{err}");
     assert!(!out.join("members.csv").exists());
     let left: Vec<_> = std::fs::read_dir(&out).unwrap().collect();
@@ -486,9 +495,93 @@ fn ensemble_progress_is_reported_through_the_callback_from_none_to_all_members()
             move |done, total| log.lock().unwrap().push((done, total)),
         ))),
     };
-    hadal::ensemble::run(&m, &opts, &t.path().join("out")).unwrap();
+    hadal::ensemble::run(&m, &opts, &mut hadal::ensemble::MemorySink::default()).unwrap();
     let seen = seen.lock().unwrap().clone();
     assert_eq!(seen.first(), Some(&(0, 6)), "{seen:?}");
     assert_eq!(seen.last(), Some(&(6, 6)), "{seen:?}");
     assert!(seen.windows(2).all(|w| w[0].0 <= w[1].0), "{seen:?}");
+}
+
+#[test]
+fn the_library_returns_members_as_numbers_and_writes_the_files_of_the_command_line() {
+    // The command line streams members.csv through the file sink; a library
+    // caller can keep the members in memory and write the summaries as a
+    // separate step: the same numbers and the same summary bytes.
+    let t = tempfile::tempdir().unwrap();
+    std::fs::write(t.path().join("s.hadal"), STUDY).unwrap();
+    hadal(
+        t.path(),
+        &[
+            "ensemble",
+            "s.hadal",
+            "--no-cache",
+            "--out",
+            "cli",
+            "--no-plots",
+        ],
+    );
+    let cli = outputs(&t.path().join("cli"));
+
+    let scenario = hadal::api::load(&t.path().join("s.hadal"), &Default::default()).unwrap();
+    let opts = hadal::ensemble::Options {
+        members: None,
+        seed: None,
+        shard: (1, 1),
+        threads: Some(2),
+        keep_series: false,
+        store: None,
+        progress: None,
+    };
+    let lib_dir = t.path().join("lib");
+    let ran = scenario
+        .ensemble(&opts, &mut hadal::ensemble::FileSink::new(&lib_dir))
+        .unwrap();
+    ran.write(&lib_dir).unwrap();
+    assert!(
+        outputs(&lib_dir) == cli,
+        "library files differ from the CLI's"
+    );
+
+    let mut mem = hadal::ensemble::MemorySink::default();
+    let ran = scenario.ensemble(&opts, &mut mem).unwrap();
+    let mem_dir = t.path().join("mem");
+    std::fs::create_dir_all(&mem_dir).unwrap();
+    ran.write(&mem_dir).unwrap();
+    for n in ["quantiles.csv", "summary.json", "ensemble.state"] {
+        assert!(
+            std::fs::read(mem_dir.join(n)).unwrap() == std::fs::read(lib_dir.join(n)).unwrap(),
+            "{n}"
+        );
+    }
+    assert!(!mem_dir.join("members.csv").exists());
+
+    let text = String::from_utf8(cli[0].1.clone()).unwrap();
+    let mut lines = text.lines();
+    let header: Vec<&str> = lines.next().unwrap().split(',').collect();
+    assert_eq!(mem.columns, header);
+    assert_eq!(mem.len(), 90);
+    for (i, line) in lines.enumerate() {
+        let cells: Vec<&str> = line.split(',').collect();
+        let row = mem.row(i);
+        let (status, numbers) = cells.split_last().unwrap();
+        assert_eq!(&mem.status[i], status, "member {i}");
+        assert_eq!(row.len(), numbers.len());
+        assert_eq!(numbers[0].parse::<f64>().unwrap(), row[0]);
+        for (c, (cell, v)) in numbers.iter().zip(row).enumerate().skip(1) {
+            let want = match *cell {
+                "yes" => "1".to_owned(),
+                "no" => "0".to_owned(),
+                _ => hadal::report::fmt_num(*v),
+            };
+            let got = match *cell {
+                "yes" | "no" => hadal::report::fmt_num(*v),
+                _ => cell.to_string(),
+            };
+            assert_eq!(got, want, "member {i}, column {}", header[c]);
+        }
+    }
+    assert_eq!(ran.state.accepted, {
+        let acc = header.iter().position(|h| *h == "accepted").unwrap();
+        (0..mem.len()).filter(|&i| mem.row(i)[acc] == 1.0).count() as u64
+    });
 }

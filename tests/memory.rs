@@ -175,7 +175,10 @@ fn measure_ensemble(rows: u64, outputs: usize, members: u64, spread: &str) {
         store: None,
         progress: None,
     };
-    let ((state, _), peak) = peak_of(|| hadal::ensemble::run(&m, &opts, out.path()).unwrap());
+    let (ran, peak) = peak_of(|| {
+        hadal::ensemble::run(&m, &opts, &mut hadal::ensemble::FileSink::new(out.path())).unwrap()
+    });
+    let state = ran.state;
     assert_eq!(state.members(), members);
     assert!(
         peak <= estimate,

@@ -99,14 +99,15 @@ pub(crate) fn cmd_ensemble(
             }))
         }),
     };
-    let state = ensemble::run(model, &opts, &dir);
+    // members.csv is streamed to disk as the members run.
+    let ran = ensemble::run(model, &opts, &mut ensemble::FileSink::new(&dir));
     if let Some(b) = &bar {
         b.finish_and_clear();
     }
-    let state = match state {
-        Ok((s, warnings)) => {
-            super::report(&model.sources, &warnings);
-            s
+    let ran = match ran {
+        Ok(r) => {
+            super::report(&model.sources, &r.warnings);
+            r
         }
         Err(_) if crate::cancel::requested() => return super::interrupted(),
         Err(e) => {
@@ -114,9 +115,10 @@ pub(crate) fn cmd_ensemble(
             return EXIT_INVALID;
         }
     };
-    if let Err(e) = ensemble::write_outputs(&state, &dir) {
+    if let Err(e) = ran.write(&dir) {
         return usage_error(e);
     }
+    let state = &ran.state;
     // Stopped after the last member: the outputs are complete, the figures
     // are left out.
     if crate::cancel::requested() {
