@@ -585,3 +585,52 @@ fn the_library_returns_members_as_numbers_and_writes_the_files_of_the_command_li
         (0..mem.len()).filter(|&i| mem.row(i)[acc] == 1.0).count() as u64
     });
 }
+
+#[test]
+fn kept_series_reach_either_sink_with_the_same_bytes() {
+    // `--keep-series` writes series/member_NNNNNNN.csv through the file
+    // sink; the memory sink holds the same text under the member's number.
+    let t = tempfile::tempdir().unwrap();
+    let p = t.path().join("s.hadal");
+    std::fs::write(&p, heat_study("vary q0 ~ uniform(20 TW, 30 TW)")).unwrap();
+    let scenario = hadal::api::load(&p, &Default::default()).unwrap();
+    let opts = hadal::ensemble::Options {
+        members: Some(5),
+        seed: None,
+        shard: (2, 2),
+        threads: Some(2),
+        keep_series: true,
+        store: None,
+        progress: None,
+    };
+    let dir = t.path().join("out");
+    scenario
+        .ensemble(&opts, &mut hadal::ensemble::FileSink::new(&dir))
+        .unwrap();
+    let mut mem = hadal::ensemble::MemorySink::default();
+    scenario.ensemble(&opts, &mut mem).unwrap();
+    // Shard 2 of 2 of five members: members 2, 3 and 4.
+    assert_eq!(
+        mem.series.iter().map(|s| s.0).collect::<Vec<_>>(),
+        [2, 3, 4]
+    );
+    let mut files: Vec<_> = std::fs::read_dir(dir.join("series"))
+        .unwrap()
+        .map(|e| e.unwrap().file_name().into_string().unwrap())
+        .collect();
+    files.sort();
+    assert_eq!(
+        files,
+        [
+            "member_0000002.csv",
+            "member_0000003.csv",
+            "member_0000004.csv"
+        ]
+    );
+    for (i, csv) in &mem.series {
+        let on_disk = std::fs::read(dir.join(format!("series/member_{i:07}.csv"))).unwrap();
+        assert!(on_disk == *csv, "member {i}");
+        assert!(csv.starts_with(b"age"), "member {i}");
+    }
+    assert_eq!(mem.row(0)[0], 2.0);
+}
