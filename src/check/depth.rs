@@ -166,15 +166,7 @@ impl Checker {
             }
         }
         if let Some(cycle) = cycle {
-            let mut names: Vec<String> = cycle.iter().map(|&d| self.defs[d].name.clone()).collect();
-            names.push(names[0].clone());
-            let mut p = Problem::error(
-                "H0406",
-                format!(
-                    "definitions depend on each other in a cycle: {}",
-                    names.join(" -> ")
-                ),
-            );
+            let (names, mut p) = self.cycle_problem(&cycle);
             for (i, &d) in cycle.iter().enumerate() {
                 let span = body(&self.defs[d]).map_or(self.defs[d].span, |e| e.span);
                 let what = match self.defs[d].kind {

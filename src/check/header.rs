@@ -400,6 +400,27 @@ impl Checker {
     }
 
     /// H0201 for a name that should be a parameter, with the nearest one.
+    /// The parameter `name` refers to, for a stage's `set` or an ensemble's
+    /// `vary`; reports H0201 when there is none and H0408 when the name is
+    /// another kind of definition (`rule` says what only parameters may do).
+    fn parameter(&mut self, name: &syntax::Ident, rule: &str, help: &str) -> Option<DefId> {
+        let Some(&id) = self.symbols.get(&name.text) else {
+            self.unknown_parameter(name);
+            return None;
+        };
+        if !matches!(self.defs[id].kind, DefKind::Param) {
+            let word = self.defs[id].kind.word();
+            self.error(
+                Problem::error("H0408", format!("`{}` is a {word}; {rule}", name.text))
+                    .label(name.span, "not a parameter")
+                    .label(self.defs[id].span, "defined here")
+                    .help(help),
+            );
+            return None;
+        }
+        Some(id)
+    }
+
     fn unknown_parameter(&mut self, name: &syntax::Ident) {
         let params: Vec<String> = self
             .defs
@@ -416,23 +437,13 @@ impl Checker {
     }
 
     fn stage_set(&mut self, p: &syntax::Ident, value: &syntax::Expr, stage: &mut Stage) {
-        let Some(&id) = self.symbols.get(&p.text) else {
-            self.unknown_parameter(p);
+        let Some(id) = self.parameter(
+            p,
+            "a stage can set only parameters",
+            "declare it with `param` to let stages override it",
+        ) else {
             return;
         };
-        if !matches!(self.defs[id].kind, DefKind::Param) {
-            let word = self.defs[id].kind.word();
-            self.error(
-                Problem::error(
-                    "H0408",
-                    format!("`{}` is a {word}; a stage can set only parameters", p.text),
-                )
-                .label(p.span, "not a parameter")
-                .label(self.defs[id].span, "defined here")
-                .help("declare it with `param` to let stages override it"),
-            );
-            return;
-        }
         let (x, t) = self.check_expr(value);
         let want = self.defs[id].dim;
         let what = format!("the value of `{}`", p.text);
@@ -983,23 +994,11 @@ impl Checker {
         clauses: &[syntax::Clause],
         span: Span,
     ) -> Option<Vary> {
-        let Some(&param) = self.symbols.get(&name.text) else {
-            self.unknown_parameter(name);
-            return None;
-        };
-        if !matches!(self.defs[param].kind, DefKind::Param) {
-            let word = self.defs[param].kind.word();
-            self.error(
-                Problem::error(
-                    "H0408",
-                    format!("`{}` is a {word}; an ensemble varies parameters", name.text),
-                )
-                .label(name.span, "not a parameter")
-                .label(self.defs[param].span, "defined here")
-                .help("declare it with `param` to vary it"),
-            );
-            return None;
-        }
+        let param = self.parameter(
+            name,
+            "an ensemble varies parameters",
+            "declare it with `param` to vary it",
+        )?;
         let dim = self.defs[param].dim;
         let syntax::ExprKind::Call { func, args } = &dist.kind else {
             self.error(

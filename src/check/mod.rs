@@ -459,18 +459,28 @@ impl Checker {
         }
     }
 
-    fn report_cycle(&mut self, id: DefId) {
-        let pos = self.stack.iter().position(|&d| d == id).unwrap_or(0);
-        let cycle: Vec<DefId> = self.stack[pos..].to_vec();
+    /// The H0406 problem for definitions that depend on each other in the
+    /// order of `cycle`, with the names along it, the first again at the
+    /// end (so `names[i + 1]` is what `cycle[i]` uses).
+    pub(crate) fn cycle_problem(&self, cycle: &[DefId]) -> (Vec<String>, Problem) {
         let mut names: Vec<String> = cycle.iter().map(|&d| self.defs[d].name.clone()).collect();
-        names.push(self.defs[id].name.clone());
-        let mut p = Problem::error(
+        if let Some(first) = names.first().cloned() {
+            names.push(first);
+        }
+        let p = Problem::error(
             "H0406",
             format!(
                 "definitions depend on each other in a cycle: {}",
                 names.join(" -> ")
             ),
         );
+        (names, p)
+    }
+
+    fn report_cycle(&mut self, id: DefId) {
+        let pos = self.stack.iter().position(|&d| d == id).unwrap_or(0);
+        let cycle: Vec<DefId> = self.stack[pos..].to_vec();
+        let (names, mut p) = self.cycle_problem(&cycle);
         for (i, &d) in cycle.iter().enumerate() {
             let next = &names[i + 1];
             p = p.label(

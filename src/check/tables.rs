@@ -106,6 +106,15 @@ impl Checker {
                     .help(help.to_owned()),
             );
         };
+        // The header and each record can fail alike (bad UTF-8, a broken quote).
+        let unreadable = |c: &mut Checker, e: csv::Error| {
+            problem(
+                c,
+                whole,
+                format!("cannot read `{}` as CSV: {e}", path.value),
+                "save the file as plain comma-separated text",
+            );
+        };
         match reader.headers() {
             Ok(h) if h.len() == 2 && h.iter().all(|c| c.parse::<f64>().is_ok()) => {
                 // Without a header the first row would silently be dropped.
@@ -144,12 +153,7 @@ impl Checker {
                 return None;
             }
             Err(e) => {
-                problem(
-                    self,
-                    whole,
-                    format!("cannot read `{}` as CSV: {e}", path.value),
-                    "save the file as plain comma-separated text",
-                );
+                unreadable(self, e);
                 return None;
             }
         }
@@ -158,12 +162,7 @@ impl Checker {
             let rec = match rec {
                 Ok(r) => r,
                 Err(e) => {
-                    problem(
-                        self,
-                        whole,
-                        format!("cannot read `{}` as CSV: {e}", path.value),
-                        "save the file as plain comma-separated text",
-                    );
+                    unreadable(self, e);
                     return None;
                 }
             };

@@ -52,19 +52,11 @@ pub struct TextTable {
 
 impl TextTable {
     pub fn parse(bytes: &[u8]) -> Result<TextTable, FigureError> {
-        let mut r = csv::ReaderBuilder::new()
-            .has_headers(true)
-            .flexible(true)
-            .from_reader(bytes);
-        let header = r
-            .headers()
-            .map_err(|e| FigureError::Invalid(format!("bad CSV header: {e}")))?
-            .iter()
-            .map(str::to_owned)
-            .collect();
+        let mut r = csv_reader(bytes);
+        let header = header_of(&mut r)?.iter().map(str::to_owned).collect();
         let mut rows = Vec::new();
         for rec in r.records() {
-            let rec = rec.map_err(|e| FigureError::Invalid(format!("bad CSV row: {e}")))?;
+            let rec = rec.map_err(bad_row)?;
             rows.push(rec.iter().map(str::to_owned).collect());
         }
         Ok(TextTable { header, rows })
@@ -139,16 +131,31 @@ pub fn read_numeric_columns(path: &Path) -> Result<Option<Vec<Column>>, FigureEr
         .map_err(|e| e.at(&path.display().to_string()))
 }
 
-/// Every column of CSV text parsed as numbers (see [`read_numeric_columns`]).
-fn numeric_columns_of(from: impl std::io::Read) -> Result<Vec<Column>, FigureError> {
-    let mut r = csv::ReaderBuilder::new()
+/// A reader of CSV text that starts with a header line. Rows may be
+/// shorter or longer than the header: each caller says what a missing
+/// cell means.
+fn csv_reader<R: std::io::Read>(from: R) -> csv::Reader<R> {
+    csv::ReaderBuilder::new()
         .has_headers(true)
         .flexible(true)
-        .from_reader(from);
-    let bad = |what: &str, e: csv::Error| FigureError::Invalid(format!("bad CSV {what}: {e}"));
-    let mut cols = header_columns(r.headers().map_err(|e| bad("header", e))?);
+        .from_reader(from)
+}
+
+fn header_of<R: std::io::Read>(r: &mut csv::Reader<R>) -> Result<&csv::StringRecord, FigureError> {
+    r.headers()
+        .map_err(|e| FigureError::Invalid(format!("bad CSV header: {e}")))
+}
+
+fn bad_row(e: csv::Error) -> FigureError {
+    FigureError::Invalid(format!("bad CSV row: {e}"))
+}
+
+/// Every column of CSV text parsed as numbers (see [`read_numeric_columns`]).
+fn numeric_columns_of(from: impl std::io::Read) -> Result<Vec<Column>, FigureError> {
+    let mut r = csv_reader(from);
+    let mut cols = header_columns(header_of(&mut r)?);
     let mut rec = csv::StringRecord::new();
-    while r.read_record(&mut rec).map_err(|e| bad("row", e))? {
+    while r.read_record(&mut rec).map_err(bad_row)? {
         for (k, c) in cols.iter_mut().enumerate() {
             c.values.push(parse_num(rec.get(k).unwrap_or("")));
         }
@@ -185,14 +192,8 @@ pub fn decode_series_columns(
     bytes: &[u8],
     keep: impl Fn(&str, &str) -> bool,
 ) -> Result<Vec<Column>, FigureError> {
-    let mut r = csv::ReaderBuilder::new()
-        .has_headers(true)
-        .flexible(true)
-        .from_reader(bytes);
-    let header = r
-        .headers()
-        .map_err(|e| FigureError::Invalid(format!("bad CSV header: {e}")))?
-        .clone();
+    let mut r = csv_reader(bytes);
+    let header = header_of(&mut r)?.clone();
     let body = &bytes[(r.position().byte() as usize).min(bytes.len())..];
     if body.contains(&b'"') {
         let mut cols = numeric_columns_of(bytes)?;
@@ -610,6 +611,16 @@ pub fn parse_members(t: &TextTable) -> Members {
 mod tests {
     use super::*;
 
+    /// Columns with their values as bits, so that NaN holes and -0 compare.
+    fn bits(cols: &[Column]) -> Vec<(String, String, Vec<u64>)> {
+        cols.iter()
+            .map(|c| {
+                let v = c.values.iter().map(|v| v.to_bits()).collect();
+                (c.name.clone(), c.unit.clone(), v)
+            })
+            .collect()
+    }
+
     #[test]
     fn numeric_columns_read_record_by_record_match_the_text_table() {
         let text = "age [Ga],ocean [kg],sea_level [m]\n4.5,1.4e21,-20\n4.4,,inf\n4.3,1e21\n4.2,x,3,extra\n";
@@ -619,14 +630,6 @@ mod tests {
         let streamed = read_numeric_columns(&path).unwrap().unwrap();
         let whole = TextTable::parse(text.as_bytes()).unwrap().numeric_columns();
         // NaN marks holes in both; compare bits.
-        let bits = |cols: &[Column]| -> Vec<(String, String, Vec<u64>)> {
-            cols.iter()
-                .map(|c| {
-                    let v = c.values.iter().map(|v| v.to_bits()).collect();
-                    (c.name.clone(), c.unit.clone(), v)
-                })
-                .collect()
-        };
         assert_eq!(bits(&streamed), bits(&whole));
         assert_eq!(streamed[1].values.len(), 4);
         assert!(read_numeric_columns(&dir.path().join("none.csv"))
@@ -645,14 +648,6 @@ mod tests {
             "age [Ga],v [1]\n1,\"2\"\n",
             "age [Ga],v [1]\n1,2",
         ];
-        let bits = |cols: &[Column]| -> Vec<(String, String, Vec<u64>)> {
-            cols.iter()
-                .map(|c| {
-                    let v = c.values.iter().map(|v| v.to_bits()).collect();
-                    (c.name.clone(), c.unit.clone(), v)
-                })
-                .collect()
-        };
         for text in texts {
             let read = numeric_columns_of(text.as_bytes()).unwrap();
             let decoded = decode_series(text.as_bytes()).unwrap();

@@ -358,22 +358,17 @@ pub fn band_figure(
         }
     }
     for (name, set, c90, c50, style) in sets {
-        fills.push(Fill {
-            label: format!("{name}: 90 % band"),
-            ages: v.ages.clone(),
-            low: scale(&set.q[0]),
-            high: scale(&set.q[4]),
-            color: c90,
-            opacity: 0.35,
-        });
-        fills.push(Fill {
-            label: format!("{name}: 50 % band"),
-            ages: v.ages.clone(),
-            low: scale(&set.q[1]),
-            high: scale(&set.q[3]),
-            color: c50,
-            opacity: 0.4,
-        });
+        // The outer band between quantiles 0 and 4, the inner one between 1 and 3.
+        for (width, low, high, color, opacity) in [(90, 0, 4, c90, 0.35), (50, 1, 3, c50, 0.4)] {
+            fills.push(Fill {
+                label: format!("{name}: {width} % band"),
+                ages: v.ages.clone(),
+                low: scale(&set.q[low]),
+                high: scale(&set.q[high]),
+                color,
+                opacity,
+            });
+        }
         lines.push(Line {
             label: format!("{name}: median"),
             ages: v.ages.clone(),

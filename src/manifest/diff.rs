@@ -109,6 +109,34 @@ fn canonical_dir(manifest: &Path) -> Result<PathBuf, DiffError> {
     Ok(real.parent().unwrap_or(Path::new("/")).to_owned())
 }
 
+/// An entry of one manifest's list matched by key against the other's.
+enum Match<'a, T> {
+    Only(&'a T, Side),
+    Both(&'a T, &'a T),
+}
+
+/// The entries of `a` in order, each with its namesake in `b` or alone,
+/// then the entries only `b` has, in `b`'s order.
+fn match_by<'a, T, K: PartialEq + ?Sized>(
+    a: &'a [T],
+    b: &'a [T],
+    key: impl Fn(&T) -> &K,
+) -> Vec<Match<'a, T>> {
+    let mut out: Vec<Match<'a, T>> = a
+        .iter()
+        .map(|x| match b.iter().find(|y| key(y) == key(x)) {
+            Some(y) => Match::Both(x, y),
+            None => Match::Only(x, Side::A),
+        })
+        .collect();
+    out.extend(
+        b.iter()
+            .filter(|y| !a.iter().any(|x| key(x) == key(y)))
+            .map(|y| Match::Only(y, Side::B)),
+    );
+    out
+}
+
 /// Compare the runs of two manifests (or run folders).
 pub fn diff(a: &Path, b: &Path) -> Result<RunDiff, DiffError> {
     let (pa, pb) = (manifest_path(a), manifest_path(b));
@@ -125,26 +153,18 @@ pub fn diff(a: &Path, b: &Path) -> Result<RunDiff, DiffError> {
     if ca.scenario.canonical_hash != cb.scenario.canonical_hash {
         out.push(Difference::Model);
     }
-    for i in &ca.inputs {
-        match cb.inputs.iter().find(|j| j.path == i.path) {
-            None => out.push(Difference::InputOnlyIn {
+    for m in match_by(&ca.inputs, &cb.inputs, |i| &i.path) {
+        match m {
+            Match::Only(i, side) => out.push(Difference::InputOnlyIn {
                 path: i.path.clone(),
-                side: Side::A,
+                side,
             }),
-            Some(j) if j.blake3 != i.blake3 => out.push(Difference::InputDiffers {
+            Match::Both(i, j) if j.blake3 != i.blake3 => out.push(Difference::InputDiffers {
                 path: i.path.clone(),
                 bytes_a: i.bytes,
                 bytes_b: j.bytes,
             }),
-            _ => {}
-        }
-    }
-    for j in &cb.inputs {
-        if !ca.inputs.iter().any(|i| i.path == j.path) {
-            out.push(Difference::InputOnlyIn {
-                path: j.path.clone(),
-                side: Side::B,
-            });
+            Match::Both(..) => {}
         }
     }
     if ca.overrides != cb.overrides {
@@ -153,26 +173,20 @@ pub fn diff(a: &Path, b: &Path) -> Result<RunDiff, DiffError> {
             b: cb.overrides.clone(),
         });
     }
-    for s in &ca.stages {
-        match cb.stages.iter().find(|t| t.name == s.name) {
-            None => out.push(Difference::StageOnlyIn {
+    for m in match_by(&ca.stages, &cb.stages, |s| &s.name) {
+        match m {
+            Match::Only(s, side) => out.push(Difference::StageOnlyIn {
                 name: s.name.clone(),
-                side: Side::A,
+                side,
             }),
-            Some(t) if t.fingerprint != s.fingerprint => out.push(Difference::StageInputs {
-                name: s.name.clone(),
-                fingerprint_a: s.fingerprint.clone(),
-                fingerprint_b: t.fingerprint.clone(),
-            }),
-            _ => {}
-        }
-    }
-    for t in &cb.stages {
-        if !ca.stages.iter().any(|s| s.name == t.name) {
-            out.push(Difference::StageOnlyIn {
-                name: t.name.clone(),
-                side: Side::B,
-            });
+            Match::Both(s, t) if t.fingerprint != s.fingerprint => {
+                out.push(Difference::StageInputs {
+                    name: s.name.clone(),
+                    fingerprint_a: s.fingerprint.clone(),
+                    fingerprint_b: t.fingerprint.clone(),
+                })
+            }
+            Match::Both(..) => {}
         }
     }
     let (da, db) = (canonical_dir(&pa)?, canonical_dir(&pb)?);
@@ -209,4 +223,26 @@ pub fn diff(a: &Path, b: &Path) -> Result<RunDiff, DiffError> {
         differences: out,
         unreadable,
     })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn entries_pair_by_key_in_the_order_of_a_then_b() {
+        let a = ["x", "y", "z"];
+        let b = ["w", "z", "x", "v"];
+        let seen: Vec<String> = match_by(&a, &b, |s| *s)
+            .into_iter()
+            .map(|m| match m {
+                Match::Only(s, side) => format!("{s} only in {side:?}"),
+                Match::Both(s, t) => format!("{s}={t}"),
+            })
+            .collect();
+        assert_eq!(
+            seen,
+            ["x=x", "y only in A", "z=z", "w only in B", "v only in B"]
+        );
+    }
 }

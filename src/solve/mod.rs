@@ -373,19 +373,11 @@ impl Observer for Obs<'_> {
         }
         if let Some(i) = y1[..self.n_res].iter().position(|&v| v < self.floor) {
             // Locate where it crossed zero on the interpolant.
-            let (mut lo, mut hi) = (t0, t1);
-            for _ in 0..60 {
-                let mid = 0.5 * (lo + hi);
-                if mid <= lo || mid >= hi {
-                    break;
-                }
-                dense.eval(mid, &mut self.scratch);
-                if self.scratch[i] < 0.0 {
-                    hi = mid;
-                } else {
-                    lo = mid;
-                }
-            }
+            let scratch = &mut self.scratch;
+            let hi = bisect(t0, t1, |mid| {
+                dense.eval(mid, scratch);
+                scratch[i] < 0.0
+            });
             self.negative = Some((i, self.start_age - hi, y1[i]));
             return Err(Stop);
         }
@@ -401,20 +393,12 @@ impl Observer for Obs<'_> {
                 let now = regs.0[reg as usize];
                 if first[k].is_none() && prev[k] == 0.0 && now != 0.0 {
                     // Locate the flip by bisection on the interpolant.
-                    let (mut lo, mut hi) = (t0, t1);
-                    for _ in 0..60 {
-                        let mid = 0.5 * (lo + hi);
-                        if mid <= lo || mid >= hi {
-                            break;
-                        }
-                        dense.eval(mid, &mut self.scratch);
-                        prog.eval(regs, &self.scratch, mid, self.start_age - mid);
-                        if regs.0[reg as usize] != 0.0 {
-                            hi = mid;
-                        } else {
-                            lo = mid;
-                        }
-                    }
+                    let (scratch, start_age) = (&mut self.scratch, self.start_age);
+                    let hi = bisect(t0, t1, |mid| {
+                        dense.eval(mid, scratch);
+                        prog.eval(regs, scratch, mid, start_age - mid);
+                        regs.0[reg as usize] != 0.0
+                    });
                     first[k] = Some(self.start_age - hi);
                     prog.eval(regs, y1, t1, self.start_age - t1);
                 }
@@ -423,6 +407,25 @@ impl Observer for Obs<'_> {
         }
         Ok(())
     }
+}
+
+/// Where on [t0, t1] a condition that holds at t1 but not at t0 starts to
+/// hold: bisection until the interval cannot shrink (at most 60 halvings),
+/// returning its upper end, the first time known to satisfy `past(t)`.
+fn bisect(t0: f64, t1: f64, mut past: impl FnMut(f64) -> bool) -> f64 {
+    let (mut lo, mut hi) = (t0, t1);
+    for _ in 0..60 {
+        let mid = 0.5 * (lo + hi);
+        if mid <= lo || mid >= hi {
+            break;
+        }
+        if past(mid) {
+            hi = mid;
+        } else {
+            lo = mid;
+        }
+    }
+    hi
 }
 
 /// An age as messages and reports write it: Ga to four places, or Ma
@@ -974,6 +977,21 @@ pub fn method_word(m: Method) -> &'static str {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn bisection_ends_at_the_first_time_known_past_the_crossing() {
+        let hi = bisect(0.0, 1.0, |t| t >= 0.3);
+        assert!((0.3..0.3 + 1e-15).contains(&hi), "{hi}");
+        // Nothing to halve: the upper end as given.
+        assert_eq!(bisect(2.0, 2.0, |_| true), 2.0);
+        let mut calls = 0;
+        let end = bisect(0.0, 1.0, |_| {
+            calls += 1;
+            false
+        });
+        assert_eq!(end, 1.0);
+        assert!((1..=60).contains(&calls), "{calls}");
+    }
 
     #[test]
     fn rows_that_cannot_be_allocated_are_a_diagnostic() {

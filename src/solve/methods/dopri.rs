@@ -5,7 +5,10 @@
 // Index loops mirror the formulas of the method; iterator chains would hide them.
 #![allow(clippy::needless_range_loop)]
 
-use super::{err_norm, Attempt, Control, Dense, Failure, Stats, Stepper, System};
+use super::{
+    accepted_factor, err_norm, proposed_factor, Attempt, Control, Dense, Failure, Stats, Stepper,
+    System,
+};
 
 // Dormand–Prince 5(4) coefficients.
 const C2: f64 = 1.0 / 5.0;
@@ -172,16 +175,11 @@ impl Stepper for Dopri {
         if err > 1.0 {
             self.last_rejected = true;
             let factor = if err.is_finite() {
-                (0.9 * crate::numeric::pow(err, -0.2)).clamp(0.2, 1.0)
+                proposed_factor(err, -0.2, 1.0)
             } else {
                 0.25
             };
-            return Ok(Attempt {
-                accepted: false,
-                err,
-                worst,
-                factor,
-            });
+            return Ok(Attempt::rejected(err, worst, factor));
         }
         stats.explicit_steps += 1;
         let w = self;
@@ -200,24 +198,9 @@ impl Stepper for Dopri {
                     + D6 * w.k[5][i]
                     + D7 * w.k[6][i]);
         }
-        let factor = if err == 0.0 {
-            10.0
-        } else {
-            (0.9 * crate::numeric::pow(err, -0.2)).clamp(0.2, 10.0)
-        };
-        // No growth right after a rejection.
-        let factor = if w.last_rejected {
-            factor.min(1.0)
-        } else {
-            factor
-        };
+        let factor = accepted_factor(err, -0.2, 10.0, w.last_rejected);
         w.last_rejected = false;
-        Ok(Attempt {
-            accepted: true,
-            err,
-            worst,
-            factor,
-        })
+        Ok(Attempt::accepted(err, worst, factor))
     }
 
     fn y1(&self) -> &[f64] {

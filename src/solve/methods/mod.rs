@@ -227,6 +227,50 @@ pub struct Attempt {
     pub factor: f64,
 }
 
+impl Attempt {
+    /// An accepted step with its error norm and the next step's ratio.
+    fn accepted(err: f64, worst: Option<usize>, factor: f64) -> Attempt {
+        Attempt {
+            accepted: true,
+            err,
+            worst,
+            factor,
+        }
+    }
+
+    /// A rejected attempt, to be retried with `factor` times the step.
+    fn rejected(err: f64, worst: Option<usize>, factor: f64) -> Attempt {
+        Attempt {
+            accepted: false,
+            err,
+            worst,
+            factor,
+        }
+    }
+}
+
+/// The step-size ratio the embedded methods' controller proposes from an
+/// error norm: 0.9 err^exponent (the exponent is -1/(order + 1) of the
+/// error estimate), kept within [0.2, max].
+fn proposed_factor(err: f64, exponent: f64, max: f64) -> f64 {
+    (0.9 * crate::numeric::pow(err, exponent)).clamp(0.2, max)
+}
+
+/// The ratio after an accepted step: `max` for an error of zero, and no
+/// growth right after a rejection (the controller has just been wrong).
+fn accepted_factor(err: f64, exponent: f64, max: f64, after_rejection: bool) -> f64 {
+    let factor = if err == 0.0 {
+        max
+    } else {
+        proposed_factor(err, exponent, max)
+    };
+    if after_rejection {
+        factor.min(1.0)
+    } else {
+        factor
+    }
+}
+
 /// A registered method: its word in `solver method = WORD` and the few
 /// words the H0411 help gives it (empty for none).
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -433,6 +477,24 @@ fn initial_step(y: &[f64], f: &[f64], ctl: &Control, hmax: f64) -> f64 {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn the_controller_grows_to_its_limit_at_zero_error_but_not_after_a_rejection() {
+        assert_eq!(accepted_factor(0.0, -0.2, 10.0, false), 10.0);
+        assert_eq!(accepted_factor(0.0, -1.0 / 3.0, 5.0, true), 1.0);
+        assert_eq!(accepted_factor(1e-30, -0.2, 5.0, false), 5.0);
+        assert_eq!(accepted_factor(0.01, -0.2, 10.0, true), 1.0);
+        assert_eq!(proposed_factor(1e9, -0.2, 1.0), 0.2);
+        // The same operations in the same order as the formula.
+        let f = accepted_factor(0.5, -0.2, 10.0, false);
+        assert_eq!(
+            f.to_bits(),
+            (0.9 * crate::numeric::pow(0.5, -0.2)).to_bits()
+        );
+        let r = Attempt::rejected(2.0, Some(1), proposed_factor(2.0, -0.2, 1.0));
+        assert!(!r.accepted && r.factor < 1.0 && r.worst == Some(1));
+        assert!(Attempt::accepted(0.5, None, f).accepted);
+    }
 
     struct Decay(f64);
     impl System for Decay {

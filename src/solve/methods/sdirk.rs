@@ -10,7 +10,10 @@
 // Index loops mirror the formulas of the method; iterator chains would hide them.
 #![allow(clippy::needless_range_loop)]
 
-use super::{err_norm, Attempt, Control, Dense, Failure, Stats, Stepper, System};
+use super::{
+    accepted_factor, err_norm, proposed_factor, Attempt, Control, Dense, Failure, Stats, Stepper,
+    System,
+};
 use crate::solve::linalg::Lu;
 
 /// Alexander's L-stable SDIRK3: gamma is the root of
@@ -123,20 +126,16 @@ impl Sdirk {
             let delta = libm::sqrt(f64::EPSILON) * size.max(1e-300);
             let keep = w.z[c];
             w.z[c] = keep + delta;
-            let d = w.z[c] - keep;
+            let mut d = w.z[c] - keep;
             stats.rhs_evals += 1;
             if !sys.rhs(t, &w.z, &mut w.fz) {
+                // A forward difference left the domain: try a backward one.
                 w.z[c] = keep - delta;
-                let d2 = w.z[c] - keep;
+                d = w.z[c] - keep;
                 stats.rhs_evals += 1;
                 if !sys.rhs(t, &w.z, &mut w.fz) {
                     return false;
                 }
-                for r in 0..n {
-                    w.jac[r * n + c] = (w.fz[r] - f0[r]) / d2;
-                }
-                w.z[c] = keep;
-                continue;
             }
             for r in 0..n {
                 w.jac[r * n + c] = (w.fz[r] - f0[r]) / d;
@@ -315,45 +314,25 @@ impl Stepper for Sdirk {
                 if stats.implicit_steps.is_multiple_of(8) || self.slow {
                     self.have_jac = false;
                 }
-                let factor = if err == 0.0 {
-                    5.0
-                } else {
-                    (0.9 * crate::numeric::pow(err, -1.0 / 3.0)).clamp(0.2, 5.0)
-                };
-                // No growth right after a rejection.
-                let factor = if self.last_rejected {
-                    factor.min(1.0)
-                } else {
-                    factor
-                };
+                let factor = accepted_factor(err, -1.0 / 3.0, 5.0, self.last_rejected);
                 self.last_rejected = false;
-                Ok(Attempt {
-                    accepted: true,
-                    err,
-                    worst,
-                    factor,
-                })
+                Ok(Attempt::accepted(err, worst, factor))
             }
             StepOutcome::Rejected(err, worst) => {
                 self.last_rejected = true;
-                Ok(Attempt {
-                    accepted: false,
+                Ok(Attempt::rejected(
                     err,
                     worst,
-                    factor: (0.9 * crate::numeric::pow(err, -1.0 / 3.0)).clamp(0.2, 1.0),
-                })
+                    proposed_factor(err, -1.0 / 3.0, 1.0),
+                ))
             }
             StepOutcome::NewtonFailed(worst) => {
                 self.last_rejected = true;
                 // With a Jacobian from an earlier point, first retry the
                 // same step with a fresh one (taken at the next attempt's
                 // start); with a fresh one, halve the step.
-                Ok(Attempt {
-                    accepted: false,
-                    err: f64::INFINITY,
-                    worst,
-                    factor: if self.jac_fresh { 0.5 } else { 1.0 },
-                })
+                let factor = if self.jac_fresh { 0.5 } else { 1.0 };
+                Ok(Attempt::rejected(f64::INFINITY, worst, factor))
             }
         }
     }
