@@ -54,13 +54,9 @@ pub(crate) fn cmd_ensemble(
             super::MAX_THREADS
         ));
     }
-    let store = if use_cache {
-        match super::open_store() {
-            Ok(s) => Some(s),
-            Err(code) => return code,
-        }
-    } else {
-        None
+    let store = match super::optional_store(use_cache) {
+        Ok(s) => s,
+        Err(code) => return code,
     };
     let scenario = match load(file, &[]) {
         Ok(s) => s,

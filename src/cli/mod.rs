@@ -345,6 +345,16 @@ pub(crate) fn usage_error(msg: impl std::fmt::Display) -> i32 {
 /// start-up time, so a value past this is a typing mistake.
 pub const MAX_THREADS: usize = 1024;
 
+/// The stage cache when `use_cache` (none with `--no-cache`), or exit 2
+/// when its folder is a file.
+pub(crate) fn optional_store(use_cache: bool) -> Result<Option<crate::cache::Store>, i32> {
+    if use_cache {
+        open_store().map(Some)
+    } else {
+        Ok(None)
+    }
+}
+
 /// The stage cache (`HADAL_CACHE`), or exit 2 when its folder is a file.
 pub(crate) fn open_store() -> Result<crate::cache::Store, i32> {
     let store = crate::cache::Store::new(crate::cache::Store::default_location());

@@ -61,13 +61,9 @@ pub(crate) fn cmd_run(
     };
     let model = scenario.model();
     let name = model.name.clone().unwrap_or_default();
-    let store = if use_cache {
-        match super::open_store() {
-            Ok(s) => Some(s),
-            Err(code) => return code,
-        }
-    } else {
-        None
+    let store = match super::optional_store(use_cache) {
+        Ok(s) => s,
+        Err(code) => return code,
     };
     let mut result = match scenario.run(&api::RunOptions {
         store: store.as_ref(),
