@@ -428,8 +428,11 @@ pub fn read_bounded(path: &Path, limit: u64) -> Result<Vec<u8>, ReadError> {
 
 /// Copy the regular file `from` to `to` atomically (see [`write_atomic`]),
 /// streaming: memory does not depend on the file's size.
-pub fn copy_atomic(from: &Path, to: &Path) -> Result<(), String> {
-    let (mut src, _) = open_regular(from, true).map_err(|e| format!("{}: {e}", from.display()))?;
+pub fn copy_atomic(from: &Path, to: &Path) -> Result<(), CopyError> {
+    let (mut src, _) = open_regular(from, true).map_err(|error| CopyError::Read {
+        path: from.to_owned(),
+        error,
+    })?;
     let tmp = temp_path(to);
     let result = (|| {
         let mut dst = std::fs::File::create(&tmp)?;
@@ -437,11 +440,41 @@ pub fn copy_atomic(from: &Path, to: &Path) -> Result<(), String> {
         dst.sync_all()?;
         std::fs::rename(&tmp, to)
     })();
-    result.map_err(|e| {
+    result.map_err(|error| {
         let _ = std::fs::remove_file(&tmp);
-        format!("cannot write {}: {e}", to.display())
+        CopyError::Write {
+            path: to.to_owned(),
+            error,
+        }
     })
 }
+
+/// Why [`copy_atomic`] failed: its source could not be read, or its
+/// target written.
+#[derive(Debug)]
+pub enum CopyError {
+    Read {
+        path: PathBuf,
+        error: ReadError,
+    },
+    Write {
+        path: PathBuf,
+        error: std::io::Error,
+    },
+}
+
+impl std::fmt::Display for CopyError {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            CopyError::Read { path, error } => write!(f, "{}: {error}", path.display()),
+            CopyError::Write { path, error } => {
+                write!(f, "cannot write {}: {error}", path.display())
+            }
+        }
+    }
+}
+
+impl std::error::Error for CopyError {}
 
 #[cfg(test)]
 mod tests {

@@ -65,7 +65,69 @@ pub struct Store {
 #[derive(Debug, Clone, PartialEq)]
 pub struct Corrupt {
     pub path: PathBuf,
-    pub why: String,
+    pub why: Damage,
+}
+
+/// What is wrong with a cache entry; its words complete "corrupt: FILE: ".
+#[derive(Debug, Clone, PartialEq)]
+pub enum Damage {
+    /// Not a regular file, a link, or unreadable (the reader's words).
+    Unreadable(String),
+    /// Longer than [`MAX_ENTRY_BYTES`].
+    TooLarge {
+        len: u64,
+    },
+    /// Shorter than a header and a checksum.
+    Truncated {
+        len: usize,
+    },
+    /// A length other than the one its header records (`None`: a header
+    /// claiming more than 2^64 bytes).
+    LengthMismatch {
+        len: u64,
+        want: Option<u64>,
+    },
+    BadMagic,
+    KeyMismatch,
+    NameNotKey,
+    Checksum,
+    /// Checked bytes whose payload its reader does not understand.
+    Payload(&'static str),
+}
+
+impl std::fmt::Display for Damage {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            Damage::Unreadable(why) => f.write_str(why),
+            Damage::TooLarge { len } => write!(
+                f,
+                "is {len} bytes, more than the limit of {MAX_ENTRY_BYTES} bytes"
+            ),
+            Damage::Truncated { len } => write!(f, "truncated ({len} bytes)"),
+            Damage::LengthMismatch { len, want } => match want {
+                Some(w) => write!(f, "truncated or padded: {len} bytes, expected {w}"),
+                None => write!(
+                    f,
+                    "truncated or padded: {len} bytes, expected more than 2^64"
+                ),
+            },
+            Damage::BadMagic => f.write_str("not a hadal cache entry (bad magic)"),
+            Damage::KeyMismatch => f.write_str("the entry's key does not match its file name"),
+            Damage::NameNotKey => f.write_str("the file name is not a key"),
+            Damage::Checksum => f.write_str("checksum mismatch (the entry was altered)"),
+            Damage::Payload(why) => f.write_str(why),
+        }
+    }
+}
+
+/// A cache folder that is not one (a file, or a path under a file).
+#[derive(Debug, Clone, PartialEq)]
+pub struct NotADirectory(pub PathBuf);
+
+impl std::fmt::Display for NotADirectory {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(f, "the cache {} is not a directory", self.0.display())
+    }
 }
 
 #[derive(Debug, Clone, Default, PartialEq)]
@@ -97,8 +159,8 @@ impl Store {
     /// Whether the store's folder can be one: absent (it is created on
     /// first write) or a directory. A file there is an I/O problem to
     /// report up front, not an entry that could not be read.
-    pub fn check_root(&self) -> Result<(), String> {
-        let bad = || format!("the cache {} is not a directory", self.root.display());
+    pub fn check_root(&self) -> Result<(), NotADirectory> {
+        let bad = || NotADirectory(self.root.clone());
         match std::fs::metadata(&self.root) {
             Ok(m) if m.is_dir() => Ok(()),
             Ok(_) => Err(bad()),
@@ -235,7 +297,7 @@ impl Store {
                     } else if expected.is_none() {
                         bad.push(Corrupt {
                             path: p,
-                            why: "the file name is not a key".into(),
+                            why: Damage::NameNotKey,
                         });
                     }
                 }
@@ -385,28 +447,24 @@ fn entry_len(header: &[u8]) -> Option<u64> {
 /// file is opened, never through a symbolic link (a link to a device
 /// would be read forever), and a file whose length differs from the one
 /// its header records is refused before its payload is read.
-fn read_entry(path: &Path, out: &mut Vec<u8>) -> Result<Option<std::fs::File>, String> {
+fn read_entry(path: &Path, out: &mut Vec<u8>) -> Result<Option<std::fs::File>, Damage> {
     use std::io::Read;
+    let unreadable = |e: &dyn std::fmt::Display| Damage::Unreadable(e.to_string());
     let (file, len) = match crate::fsutil::open_regular(path, false) {
         Ok(f) => f,
         Err(e) if e.is_not_found() => return Ok(None),
-        Err(e) => return Err(e.to_string()),
+        Err(e) => return Err(unreadable(&e)),
     };
     if len > MAX_ENTRY_BYTES {
-        return Err(format!(
-            "is {len} bytes, more than the limit of {MAX_ENTRY_BYTES} bytes"
-        ));
+        return Err(Damage::TooLarge { len });
     }
     let base = out.len();
     let mut reader = (&file).take(HEADER as u64);
-    reader.read_to_end(out).map_err(|e| e.to_string())?;
+    reader.read_to_end(out).map_err(|e| unreadable(&e))?;
     if out.len() - base == HEADER && out[base..base + MAGIC.len()] == MAGIC[..] {
         match entry_len(&out[base..]) {
             Some(want) if want == len => {}
-            want => {
-                let want = want.map_or_else(|| "more than 2^64".into(), |w| w.to_string());
-                return Err(format!("truncated or padded: {len} bytes, expected {want}"));
-            }
+            want => return Err(Damage::LengthMismatch { len, want }),
         }
     }
     out.reserve(usize::try_from(len).unwrap_or(0).saturating_sub(HEADER));
@@ -415,36 +473,35 @@ fn read_entry(path: &Path, out: &mut Vec<u8>) -> Result<Option<std::fs::File>, S
     (&file)
         .take(rest.saturating_add(1))
         .read_to_end(out)
-        .map_err(|e| e.to_string())?;
+        .map_err(|e| unreadable(&e))?;
     Ok(Some(file))
 }
 
-fn decode<'a>(bytes: &'a [u8], key: Option<&Key>) -> Result<&'a [u8], String> {
+fn decode<'a>(bytes: &'a [u8], key: Option<&Key>) -> Result<&'a [u8], Damage> {
     let header = HEADER;
     if bytes.len() < header + CHECKSUM {
-        return Err(format!("truncated ({} bytes)", bytes.len()));
+        return Err(Damage::Truncated { len: bytes.len() });
     }
     if &bytes[..MAGIC.len()] != MAGIC {
-        return Err("not a hadal cache entry (bad magic)".into());
+        return Err(Damage::BadMagic);
     }
     let stored_key: &[u8] = &bytes[MAGIC.len()..MAGIC.len() + 32];
     if let Some(k) = key {
         if stored_key != k {
-            return Err("the entry's key does not match its file name".into());
+            return Err(Damage::KeyMismatch);
         }
     }
     let want = entry_len(bytes);
     if want != Some(bytes.len() as u64) {
-        let want = want.map_or_else(|| "more than 2^64".into(), |w| w.to_string());
-        return Err(format!(
-            "truncated or padded: {} bytes, expected {want}",
-            bytes.len()
-        ));
+        return Err(Damage::LengthMismatch {
+            len: bytes.len() as u64,
+            want,
+        });
     }
     let len = bytes.len() - header - CHECKSUM;
     let payload = &bytes[header..header + len];
     if entry_checksum(stored_key, payload) != bytes[header + len..] {
-        return Err("checksum mismatch (the entry was altered)".into());
+        return Err(Damage::Checksum);
     }
     Ok(payload)
 }
@@ -513,14 +570,19 @@ mod tests {
         let (n, bad) = store.verify();
         assert_eq!((n, bad.len()), (1, 1));
         let err = store.get(&key).unwrap_err();
-        assert!(err.why.contains("checksum"), "{}", err.why);
+        assert!(err.why.to_string().contains("checksum"), "{}", err.why);
         // A corrupt entry is removed on read.
         assert_eq!(store.get(&key), Ok(None));
         // Truncation too.
         store.put(&key, b"payload bytes").unwrap();
         let bytes = std::fs::read(&path).unwrap();
         std::fs::write(&path, &bytes[..bytes.len() - 5]).unwrap();
-        assert!(store.get(&key).unwrap_err().why.contains("truncated"));
+        assert!(store
+            .get(&key)
+            .unwrap_err()
+            .why
+            .to_string()
+            .contains("truncated"));
     }
 
     #[test]
@@ -535,12 +597,17 @@ mod tests {
             bytes.extend_from_slice(&[0u8; CHECKSUM]);
             assert!(decode(&bytes, Some(&key))
                 .unwrap_err()
+                .to_string()
                 .starts_with("truncated or padded"));
             let path = store.path(&key);
             std::fs::create_dir_all(path.parent().unwrap()).unwrap();
             std::fs::write(&path, &bytes).unwrap();
             let err = store.get(&key).unwrap_err();
-            assert!(err.why.starts_with("truncated or padded"), "{}", err.why);
+            assert!(
+                err.why.to_string().starts_with("truncated or padded"),
+                "{}",
+                err.why
+            );
             assert!(!path.exists(), "a corrupt entry is removed");
         }
     }
@@ -558,7 +625,7 @@ mod tests {
         std::os::unix::fs::symlink(&kept, &path).unwrap();
         let (n, bad) = store.verify();
         assert_eq!((n, bad.len()), (1, 1));
-        assert_eq!(bad[0].why, "is a symbolic link, not a file");
+        assert_eq!(bad[0].why.to_string(), "is a symbolic link, not a file");
         assert_eq!(store.get(&key).unwrap_err().why, bad[0].why);
         assert_eq!(store.get(&key), Ok(None), "the link was removed");
         assert!(kept.exists(), "not what it pointed to");

@@ -28,8 +28,45 @@ pub(super) fn display_name(path: &Path) -> String {
     path.to_string_lossy().replace('\\', "/")
 }
 
+/// Why a scenario, an include or a table could not be taken as text. Its
+/// words complete a sentence naming the file ("cannot read table `t`: ...").
+#[derive(Debug)]
+pub enum SourceError {
+    /// Not a readable regular file, or larger than the limit.
+    Read(crate::fsutil::ReadError),
+    /// Bytes that are not UTF-8, the first bad one at `offset`.
+    NotUtf8 { offset: usize },
+    /// Under `hadal verify`: a file the manifest does not record.
+    NotRecorded,
+    /// Handed over in memory, but longer than the limit.
+    TooLarge { len: u64, limit: u64 },
+    /// The scenario with everything it reads would pass [`MAX_TOTAL_BYTES`].
+    OverTotal,
+}
+
+impl std::fmt::Display for SourceError {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            SourceError::Read(e) => write!(f, "{e}"),
+            SourceError::NotUtf8 { offset } => {
+                write!(f, "is not UTF-8 text (bad byte at offset {offset})")
+            }
+            SourceError::NotRecorded => {
+                f.write_str("is not one of the input files recorded in the manifest")
+            }
+            SourceError::TooLarge { len, limit } => {
+                write!(f, "is {len} bytes, more than the limit of {limit} bytes")
+            }
+            SourceError::OverTotal => write!(
+                f,
+                "the scenario with its includes and tables would pass {MAX_TOTAL_BYTES} bytes read"
+            ),
+        }
+    }
+}
+
 /// Read a scenario file: size-limited, UTF-8, byte-order mark removed.
-pub fn read_text(path: &Path) -> Result<String, String> {
+pub fn read_text(path: &Path) -> Result<String, SourceError> {
     read_limited(path, MAX_SOURCE_BYTES)
 }
 
@@ -37,8 +74,8 @@ pub fn read_text(path: &Path) -> Result<String, String> {
 /// mark blanked). Pipes, devices and sockets are refused unread: opening a
 /// pipe with no writer would block forever (see
 /// [`crate::fsutil::read_bounded`]).
-pub(crate) fn read_limited(path: &Path, limit: u64) -> Result<String, String> {
-    let bytes = crate::fsutil::read_bounded(path, limit).map_err(|e| e.to_string())?;
+pub(crate) fn read_limited(path: &Path, limit: u64) -> Result<String, SourceError> {
+    let bytes = crate::fsutil::read_bounded(path, limit).map_err(SourceError::Read)?;
     decode_source(bytes)
 }
 
@@ -46,12 +83,9 @@ pub(crate) fn read_limited(path: &Path, limit: u64) -> Result<String, String> {
 /// byte-order mark replaced by three spaces. Shared by files read from disk
 /// and files handed over in memory ([`InputFiles`]), so both give the same
 /// text, hence the same model and fingerprints.
-pub fn decode_source(bytes: Vec<u8>) -> Result<String, String> {
-    let mut text = String::from_utf8(bytes).map_err(|e| {
-        format!(
-            "is not UTF-8 text (bad byte at offset {})",
-            e.utf8_error().valid_up_to()
-        )
+pub fn decode_source(bytes: Vec<u8>) -> Result<String, SourceError> {
+    let mut text = String::from_utf8(bytes).map_err(|e| SourceError::NotUtf8 {
+        offset: e.utf8_error().valid_up_to(),
     })?;
     if text.starts_with('\u{feff}') {
         // A byte-order mark; replace by a space so spans keep their offsets.
@@ -77,17 +111,14 @@ impl InputFiles {
     }
 
     /// The text of the file at `path` (resolved as the checker resolves it).
-    fn text(&self, path: &Path, limit: u64) -> Result<String, String> {
+    fn text(&self, path: &Path, limit: u64) -> Result<String, SourceError> {
         let real = std::fs::canonicalize(path).unwrap_or_else(|_| path.to_owned());
-        let bytes = self
-            .files
-            .get(&real)
-            .ok_or("is not one of the input files recorded in the manifest")?;
+        let bytes = self.files.get(&real).ok_or(SourceError::NotRecorded)?;
         if bytes.len() as u64 > limit {
-            return Err(format!(
-                "is {} bytes, more than the limit of {limit} bytes",
-                bytes.len()
-            ));
+            return Err(SourceError::TooLarge {
+                len: bytes.len() as u64,
+                limit,
+            });
         }
         decode_source(bytes.to_vec())
     }
@@ -100,12 +131,10 @@ pub(crate) fn io_words(e: &std::io::Error) -> String {
 impl Checker {
     /// Count `len` more bytes read for this scenario; `Err` with the reason
     /// when that would pass [`MAX_TOTAL_BYTES`].
-    pub(crate) fn take_bytes(&mut self, len: usize) -> Result<(), String> {
+    pub(crate) fn take_bytes(&mut self, len: usize) -> Result<(), SourceError> {
         let total = self.bytes_read.saturating_add(len as u64);
         if total > MAX_TOTAL_BYTES {
-            return Err(format!(
-                "the scenario with its includes and tables would pass {MAX_TOTAL_BYTES} bytes read"
-            ));
+            return Err(SourceError::OverTotal);
         }
         self.bytes_read = total;
         Ok(())
@@ -113,7 +142,7 @@ impl Checker {
 
     /// Read an included file or a table, from the disk or from the
     /// in-memory inputs.
-    pub(crate) fn read_input(&self, path: &Path, limit: u64) -> Result<String, String> {
+    pub(crate) fn read_input(&self, path: &Path, limit: u64) -> Result<String, SourceError> {
         match &self.inputs {
             Some(inputs) => inputs.text(path, limit),
             None => read_limited(path, limit),

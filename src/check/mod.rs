@@ -25,7 +25,7 @@ pub use budget::{ReportSize, MEMORY_BUDGET};
 pub use expr::eval_const;
 pub use header::{MAX_MEMBERS, MAX_REPORT_ROWS};
 use load::display_name;
-pub use load::{decode_source, project_root, read_text, InputFiles};
+pub use load::{decode_source, project_root, read_text, InputFiles, SourceError};
 pub(crate) use load::{io_words, read_limited};
 pub use tables::MAX_TABLE_ROWS;
 
@@ -81,9 +81,9 @@ pub struct Checked {
 
 /// Read, parse and check the scenario at `path` and everything it includes.
 pub fn check_file(path: &Path, options: &CheckOptions) -> Result<Checked, CheckError> {
-    let text = read_limited(path, MAX_SOURCE_BYTES).map_err(|message| CheckError::Io {
+    let text = read_limited(path, MAX_SOURCE_BYTES).map_err(|e| CheckError::Io {
         path: path.to_owned(),
-        message,
+        message: e.to_string(),
     })?;
     let root_dir = project_root(path);
     let name = display_name(path);

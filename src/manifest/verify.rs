@@ -100,9 +100,13 @@ fn unusable(manifest: &Path, why: &str) -> Problem {
 /// Read at most `limit` bytes of a regular file through the one bounded
 /// reader (`fsutil::open_regular`): pipes, devices and folders are refused
 /// unread, and with `follow` false a symbolic link is refused too.
-pub(crate) fn read_regular(path: &Path, limit: u64, follow: bool) -> Result<Vec<u8>, String> {
-    let (file, len) = crate::fsutil::open_regular(path, follow).map_err(|e| e.to_string())?;
-    crate::fsutil::read_to_limit(file, len, limit).map_err(|e| e.to_string())
+pub(crate) fn read_regular(
+    path: &Path,
+    limit: u64,
+    follow: bool,
+) -> Result<Vec<u8>, crate::fsutil::ReadError> {
+    let (file, len) = crate::fsutil::open_regular(path, follow)?;
+    crate::fsutil::read_to_limit(file, len, limit)
 }
 
 /// Why a manifest could not be read.
@@ -135,7 +139,8 @@ impl std::error::Error for ManifestError {}
 
 /// Read and parse a manifest, size-limited; only a regular file.
 pub(crate) fn read_manifest(path: &Path) -> Result<Manifest, ManifestError> {
-    let bytes = read_regular(path, MAX_MANIFEST_BYTES, true).map_err(ManifestError::Read)?;
+    let bytes = read_regular(path, MAX_MANIFEST_BYTES, true)
+        .map_err(|e| ManifestError::Read(e.to_string()))?;
     let m: Manifest =
         serde_json::from_slice(&bytes).map_err(|e| ManifestError::NotAManifest(e.to_string()))?;
     if m.format != super::FORMAT {
@@ -403,7 +408,7 @@ pub fn open(path: &Path) -> Result<Opened, Refusal> {
         let bytes = match read_regular(&real, input.bytes, false) {
             Ok(b) => b,
             Err(why) => {
-                missing.push(fail(why));
+                missing.push(fail(why.to_string()));
                 continue;
             }
         };

@@ -425,7 +425,7 @@ fn get_stage(
     else {
         return Err(crate::cache::Corrupt {
             path: store.path(key),
-            why: "not a stage result of this engine version".into(),
+            why: crate::cache::Damage::Payload("not a stage result of this engine version"),
         });
     };
     if rows {
@@ -453,7 +453,9 @@ fn get_rows(
         Some(v) => Ok(Some(v)),
         None => Err(crate::cache::Corrupt {
             path: store.path(&rkey),
-            why: "not the rows of a stage result of this engine version".into(),
+            why: crate::cache::Damage::Payload(
+                "not the rows of a stage result of this engine version",
+            ),
         }),
     }
 }
