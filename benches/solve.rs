@@ -135,7 +135,7 @@ fn main() {
     // 2. The full solve as `hadal run` does it: compile every stage, watch
     //    events, produce the 451 report rows.
     let full = median(budget, || {
-        black_box(solve::solve(&model).expect("solves"));
+        black_box(hadal::pipeline::solve_all(&model).expect("solves"));
     });
     // 3. Parse and check of the scenario and its includes.
     let check = median(budget, || {

@@ -162,7 +162,7 @@ fn hand_coded_rhs_matches_the_compiled_program() {
 #[test]
 fn hand_coded_final_state_agrees_with_the_compiled_scenario() {
     let m = model();
-    let run = hadal::solve::solve(&m).unwrap_or_else(|p| panic!("solve failed: {p:?}"));
+    let run = hadal::pipeline::solve_all(&m).unwrap_or_else(|p| panic!("solve failed: {p:?}"));
     let map = layout(&m);
     let end = &run.stages.last().expect("three stages").end.0;
     let compiled: Vec<f64> = (0..DIM).map(|i| end[map[i]]).collect();

@@ -87,7 +87,8 @@ state crust = 0 km, rate = 10 km / 1 Gyr * max(0, (2000 K - T_mantle) / 100 K)
 fn solve(text: &str) -> (Model, Run) {
     let dir = tempfile::tempdir().unwrap();
     let m = model_in(dir.path(), text);
-    let run = hadal::solve::solve(&m).unwrap_or_else(|p| panic!("{}: {}", p.code, p.message));
+    let run =
+        hadal::pipeline::solve_all(&m).unwrap_or_else(|p| panic!("{}: {}", p.code, p.message));
     (m, run)
 }
 

@@ -206,7 +206,7 @@ fn a_requested_stop_is_the_interrupted_error() {
     .unwrap()
     .model;
     hadal::cancel::request();
-    let p = hadal::solve::solve(&model).unwrap_err();
+    let p = hadal::pipeline::solve_all(&model).unwrap_err();
     assert_eq!((p.code, p.message.as_str()), ("H0608", "interrupted"));
     let store = hadal::cache::Store::new(dir.path().join("cache"));
     let p = hadal::pipeline::execute(&model, Some(&store)).unwrap_err();

@@ -411,7 +411,7 @@ fn definitions_nested_through_each_other() {
     let n = MAX_DEPTH / 2 - 10;
     for text in [forward(n), backward(n)] {
         let m = assert_ok(dir.path(), &text).model;
-        let run = hadal::solve::solve(&m).expect("solves");
+        let run = hadal::pipeline::solve_all(&m).expect("solves");
         let series = hadal::report::series(&m, &run).expect("reports");
         let col = series.column("o").expect("column o");
         // 2^n overflows to infinity for n > 1023; n is below that.

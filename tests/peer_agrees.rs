@@ -55,7 +55,7 @@ fn rel(a: f64, b: f64) -> f64 {
 /// hadal's final state by component name, with the ledger's delivered
 /// water as `delivered`.
 fn hadal_final(m: &Model) -> Vec<(String, f64)> {
-    let run = hadal::solve::solve(m).unwrap_or_else(|p| panic!("solve failed: {p:?}"));
+    let run = hadal::pipeline::solve_all(m).unwrap_or_else(|p| panic!("solve failed: {p:?}"));
     let end = &run.stages.last().expect("the demo has stages").end.0;
     let order = hadal::compile::state_order(m);
     let mut named: Vec<(String, f64)> = order

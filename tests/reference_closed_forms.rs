@@ -26,7 +26,7 @@ fn model_in(dir: &Path, text: &str) -> Model {
 }
 
 fn run(model: &Model) -> (hadal::solve::Run, Series) {
-    let run = hadal::solve::solve(model).expect("solves");
+    let run = hadal::pipeline::solve_all(model).expect("solves");
     let series = hadal::report::series(model, &run).expect("series");
     (run, series)
 }

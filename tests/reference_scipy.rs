@@ -70,7 +70,7 @@ fn hot_start_matches_scipy_radau_reference() {
     let model = hadal::check::check_file(&path, &Default::default())
         .unwrap_or_else(|e| panic!("hot_start.hadal does not check: {e:?}"))
         .model;
-    let run = hadal::solve::solve(&model).unwrap_or_else(|p| panic!("solve failed: {p:?}"));
+    let run = hadal::pipeline::solve_all(&model).unwrap_or_else(|p| panic!("solve failed: {p:?}"));
     let series =
         hadal::report::series(&model, &run).unwrap_or_else(|p| panic!("report failed: {p:?}"));
 

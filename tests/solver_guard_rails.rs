@@ -19,7 +19,7 @@ fn model_in(dir: &Path, text: &str) -> Model {
 fn solve_err(text: &str) -> (Problem, String) {
     let dir = tempfile::tempdir().unwrap();
     let m = model_in(dir.path(), text);
-    let problem = match hadal::solve::solve(&m) {
+    let problem = match hadal::pipeline::solve_all(&m) {
         Ok(run) => match hadal::report::series(&m, &run) {
             Ok(_) => panic!("expected a failure"),
             Err(p) => p,
@@ -123,7 +123,8 @@ fn a_negative_capacity_in_a_fill_makes_a_diagnostic_not_a_panic() {
              stage all from 2 Ga to 0 Ga\n"
         ),
     );
-    let r = hadal::solve::solve(&m).and_then(|run| hadal::report::series(&m, &run).map(|_| ()));
+    let r =
+        hadal::pipeline::solve_all(&m).and_then(|run| hadal::report::series(&m, &run).map(|_| ()));
     let p = r.expect_err("must fail");
     assert!(p.code.starts_with("H06"), "{}: {}", p.code, p.message);
 }
@@ -264,7 +265,7 @@ fn inventories_near_the_largest_number_close_their_budget_without_overflow() {
              flux f: a -> b = 1e290 kg/yr\nstage all from 2 Ga to 0 Ga\n"
         ),
     );
-    let run = hadal::solve::solve(&m).expect("solves");
+    let run = hadal::pipeline::solve_all(&m).expect("solves");
     let closure = run.stages[0].closure_error;
     assert!(closure.is_finite() && closure < 1e-12, "{closure}");
     let csv = String::from_utf8(hadal::report::stages_csv(&m, &run)).unwrap();
@@ -294,7 +295,7 @@ fn not_a_number_into_a_table_or_a_hypsometry_is_a_diagnostic_not_a_panic() {
                  {output}\nstage all from 2 Ga to 0 Ga\n"
             );
             let m = model_in(dir.path(), &text);
-            let run = hadal::solve::solve(&m).expect("the state is finite");
+            let run = hadal::pipeline::solve_all(&m).expect("the state is finite");
             let p = hadal::report::series(&m, &run).expect_err("a NaN output");
             assert_eq!(p.code, "H0605", "{output}: {}", p.message);
             assert!(p.message.contains("not a number"), "{}", p.message);

@@ -269,7 +269,7 @@ fn an_accepted_table_runs_and_writes_finite_numbers() {
     let mut bytes = "\u{feff}".as_bytes().to_vec();
     bytes.extend_from_slice(GOOD.replace('\n', "\r\n").as_bytes());
     let m = check_with_table(dir.path(), &bytes).expect("checks").model;
-    let run = hadal::solve::solve(&m).expect("solves");
+    let run = hadal::pipeline::solve_all(&m).expect("solves");
     let series = hadal::report::series(&m, &run).expect("reports");
     let csv = String::from_utf8(series.to_csv()).unwrap();
     assert!(!csv.contains("NaN") && !csv.contains("inf"), "{csv}");

@@ -513,7 +513,7 @@ event half = b > a
             .collect()
     }
 
-    /// The walks of a single run, of `solve::solve` and of an ensemble
+    /// The walks of a single run, of `pipeline::solve_all` and of an ensemble
     /// member (programs compiled once, resumed after shared stages) give
     /// the same bits, stage by stage, and see each event once.
     #[test]

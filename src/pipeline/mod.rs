@@ -27,7 +27,7 @@ use crate::graph::{self, DepGraph, Node};
 use crate::model::{DefKind, Model};
 use crate::report;
 use crate::solve::{self, methods::Stats, Rows, Run, StageRun, State, ENGINE_VERSION};
-pub use driver::{Driver, Walk};
+pub use driver::{solve_all, Driver, Walk};
 
 /// Whether a stage was taken from the cache or computed, and why.
 #[derive(Debug, Clone, PartialEq)]

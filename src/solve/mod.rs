@@ -963,12 +963,6 @@ fn stiffest(
     Some((def.name.clone(), def.span))
 }
 
-/// Integrate every stage in order, without the stage cache: the walk of
-/// [`crate::pipeline::Driver::uncached`], for callers of the solver alone.
-pub fn solve(model: &Model) -> Result<Run, Problem> {
-    crate::pipeline::driver::solve_all(model)
-}
-
 /// A stage's method setting as written in `solver method = WORD`.
 pub fn method_word(m: Method) -> &'static str {
     m.name()

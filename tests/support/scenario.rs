@@ -52,7 +52,8 @@ impl Project {
             ),
             Err(e) => panic!("{name}: {e:?}"),
         };
-        let run = hadal::solve::solve(&model).unwrap_or_else(|p| panic!("{name}: solve: {p:?}"));
+        let run =
+            hadal::pipeline::solve_all(&model).unwrap_or_else(|p| panic!("{name}: solve: {p:?}"));
         let series =
             hadal::report::series(&model, &run).unwrap_or_else(|p| panic!("{name}: report: {p:?}"));
         let expectations = hadal::report::expectations(&model, &run);
