@@ -397,3 +397,24 @@ fn mismatches_name_both_dimensions() {
     assert_eq!(codes("const x = sqrt(8 m^3)\n"), vec!["H0304"]);
     assert_eq!(codes("const x = 3 fortnights\n"), vec!["H0203"]);
 }
+
+#[test]
+fn the_prelude_holds_pi_and_the_gravitational_constant() {
+    // CODATA 2018 (Tiesinga et al. 2021, Reviews of Modern Physics 93):
+    // G = 6.67430e-11 m^3 kg^-1 s^-2. Expressed back in SI it must read the
+    // published digits; `pi` is the double nearest the circle constant.
+    let g = val("gravitational_constant / (1 m^3/kg/s^2)");
+    assert!(close(g, 6.67430e-11, 1e-15), "{g:e}");
+    assert_eq!(val("pi"), std::f64::consts::PI);
+    assert_eq!(
+        dim("gravitational_constant * 1 kg * 1 s^2 / 1 m^3"),
+        Dim::NONE
+    );
+    // Periodic functions of constants fold at check time.
+    assert!(close(val("sin(pi / 6)"), 0.5, 1e-15));
+    assert!(close(val("cos(pi / 3)"), 0.5, 1e-15));
+    assert_eq!(
+        val("floor(2.7)") + val("ceil(2.2)") + val("sign(-3 kg)"),
+        4.0
+    );
+}

@@ -72,6 +72,68 @@ pub fn pow(a: f64, b: f64) -> f64 {
 }
 
 /// The natural logarithm.
+/// The circular and hyperbolic functions and their inverses, in pure Rust
+/// (`libm`) so that every platform computes the same bits.
+#[inline]
+pub fn sin(x: f64) -> f64 {
+    libm::sin(x)
+}
+
+#[inline]
+pub fn cos(x: f64) -> f64 {
+    libm::cos(x)
+}
+
+#[inline]
+pub fn tan(x: f64) -> f64 {
+    libm::tan(x)
+}
+
+#[inline]
+pub fn asin(x: f64) -> f64 {
+    libm::asin(x)
+}
+
+#[inline]
+pub fn acos(x: f64) -> f64 {
+    libm::acos(x)
+}
+
+#[inline]
+pub fn atan(x: f64) -> f64 {
+    libm::atan(x)
+}
+
+#[inline]
+pub fn tanh(x: f64) -> f64 {
+    libm::tanh(x)
+}
+
+#[inline]
+pub fn floor(x: f64) -> f64 {
+    libm::floor(x)
+}
+
+#[inline]
+pub fn ceil(x: f64) -> f64 {
+    libm::ceil(x)
+}
+
+/// -1, 0 or 1 by the sign of `x`; 0 for both zeros, NaN for NaN (unlike
+/// `f64::signum`, which gives 1 for +0).
+#[inline]
+pub fn sign(x: f64) -> f64 {
+    if x > 0.0 {
+        1.0
+    } else if x < 0.0 {
+        -1.0
+    } else if x == 0.0 {
+        0.0
+    } else {
+        f64::NAN
+    }
+}
+
 #[inline]
 pub fn ln(x: f64) -> f64 {
     libm::log(x)
