@@ -17,16 +17,12 @@ use std::process::Command;
 use proptest::prelude::*;
 use proptest::test_runner::{Config, TestRunner};
 
-/// SplitMix64: a seeded stream for the shuffles, so a failing seed replays.
-struct Mix(u64);
+/// The library's SplitMix64 for the shuffles, so a failing seed replays.
+struct Mix(hadal::ensemble::SplitMix);
 
 impl Mix {
     fn next(&mut self) -> u64 {
-        self.0 = self.0.wrapping_add(0x9e37_79b9_7f4a_7c15);
-        let mut z = self.0;
-        z = (z ^ (z >> 30)).wrapping_mul(0xbf58_476d_1ce4_e5b9);
-        z = (z ^ (z >> 27)).wrapping_mul(0x94d0_49bb_1331_11eb);
-        z ^ (z >> 31)
+        self.0.next()
     }
     /// A whole number below `n`.
     fn below(&mut self, n: usize) -> usize {
@@ -197,7 +193,7 @@ fn reordered_and_reformatted_demos_reuse_every_stage_and_give_the_same_bytes() {
     runner
         .run(&any::<u64>(), |seed| {
             variant.set(variant.get() + 1);
-            let mut rng = Mix(seed);
+            let mut rng = Mix(hadal::ensemble::SplitMix(seed));
             let dir = work.path().join(format!("variant-{}", variant.get()));
             copy_tree(&original, &dir);
             for f in scenario_files(&dir) {

@@ -15,11 +15,13 @@ pub const DEFAULT_MEMBERS: u64 = 1000;
 
 /// SplitMix64 (Steele, Lea & Flood 2014): small, fast, and good enough to
 /// seed and to draw a handful of values per member (and for the random
-/// arguments of unit tests elsewhere in the crate).
-pub(crate) struct SplitMix(pub(crate) u64);
+/// arguments of tests, and the hostile corpus's cases).
+pub struct SplitMix(pub u64);
 
 impl SplitMix {
-    pub(crate) fn next(&mut self) -> u64 {
+    // Not an iterator: the stream never ends, and callers draw by hand.
+    #[allow(clippy::should_implement_trait)]
+    pub fn next(&mut self) -> u64 {
         self.0 = self.0.wrapping_add(0x9E37_79B9_7F4A_7C15);
         let mut z = self.0;
         z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
@@ -27,7 +29,7 @@ impl SplitMix {
         z ^ (z >> 31)
     }
     /// Uniform in (0, 1), never 0.
-    pub(crate) fn unit(&mut self) -> f64 {
+    pub fn unit(&mut self) -> f64 {
         ((self.next() >> 11) as f64 + 0.5) / (1u64 << 53) as f64
     }
     fn normal(&mut self) -> f64 {

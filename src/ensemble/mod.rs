@@ -24,9 +24,9 @@ mod run;
 pub mod sketch;
 mod write;
 
-#[cfg(test)]
-pub(crate) use design::SplitMix;
-pub use design::{design, first_varying_stage, member_values, with_params, DEFAULT_MEMBERS};
+pub use design::{
+    design, first_varying_stage, member_values, with_params, SplitMix, DEFAULT_MEMBERS,
+};
 pub use error::EnsembleError;
 pub use merge::merge_dirs;
 pub use run::run;

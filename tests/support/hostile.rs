@@ -15,17 +15,12 @@ use std::path::{Path, PathBuf};
 use std::process::{Command, Stdio};
 use std::time::{Duration, Instant};
 
-/// SplitMix64: cheap, seedable, the same stream on every machine.
-#[derive(Clone)]
-pub struct Mix(pub u64);
+/// The library's SplitMix64 with the draws the corpus needs.
+pub struct Mix(pub hadal::ensemble::SplitMix);
 
 impl Mix {
     pub fn next(&mut self) -> u64 {
-        self.0 = self.0.wrapping_add(0x9e37_79b9_7f4a_7c15);
-        let mut z = self.0;
-        z = (z ^ (z >> 30)).wrapping_mul(0xbf58_476d_1ce4_e5b9);
-        z = (z ^ (z >> 27)).wrapping_mul(0x94d0_49bb_1331_11eb);
-        z ^ (z >> 31)
+        self.0.next()
     }
     pub fn below(&mut self, n: usize) -> usize {
         (self.next() % n.max(1) as u64) as usize
@@ -348,7 +343,9 @@ pub const FAMILIES: u64 = 30;
 
 /// Case `index` of the corpus for `seed`.
 pub fn generate(seed: u64, index: u64) -> Case {
-    let mut rng = Mix(seed ^ index.wrapping_mul(0x2545_f491_4f6c_dd1d));
+    let mut rng = Mix(hadal::ensemble::SplitMix(
+        seed ^ index.wrapping_mul(0x2545_f491_4f6c_dd1d),
+    ));
     rng.next();
     let family = index % FAMILIES;
     let f = "s.hadal";
